@@ -1,0 +1,3 @@
+"""danpack's packer: float DAN -> one int8 bundle, and the checks around it."""
+
+__version__ = "0.1.0"

@@ -1,0 +1,67 @@
+"""Writing a bundle: deterministic bytes (sorted keys, no timestamps), atomic replace.
+
+The layout is the one `runtime.bundle` reads and the README specifies.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from pathlib import Path
+
+import msgpack
+import numpy as np
+
+from runtime.bundle import FORMAT_NAME, FORMAT_VERSION
+
+
+def _sorted(obj):
+    """Maps with sorted keys, recursively, so equal content gives equal bytes."""
+    if isinstance(obj, dict):
+        return {k: _sorted(obj[k]) for k in sorted(obj)}
+    if isinstance(obj, (list, tuple)):
+        return [_sorted(v) for v in obj]
+    return obj
+
+
+def _tensor(array: np.ndarray) -> dict:
+    dtype = {np.dtype("i1"): "int8", np.dtype("<f4"): "float32"}[array.dtype.newbyteorder("<")]
+    return {"dtype": dtype, "shape": list(array.shape), "data": np.ascontiguousarray(array, dtype=array.dtype.newbyteorder("<")).tobytes()}
+
+
+def encode_payload(manifest: dict, vocab: list[str], graph: bytes, tensors: dict[str, np.ndarray]) -> bytes:
+    """The payload bytes (what the checksum covers)."""
+    body = {
+        "graph": graph,
+        "manifest": _sorted(manifest),
+        "tensors": {name: _tensor(tensors[name]) for name in sorted(tensors)},
+        "vocab": "\n".join(vocab),
+    }
+    return msgpack.packb(body, use_bin_type=True)
+
+
+def encode_bundle(payload: bytes) -> bytes:
+    """The file bytes around a payload."""
+    outer = {"format": FORMAT_NAME, "payload": payload, "sha256": hashlib.sha256(payload).digest(), "version": FORMAT_VERSION}
+    return msgpack.packb(outer, use_bin_type=True)
+
+
+def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
+    """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        raise
+    return path

@@ -1,0 +1,13 @@
+"""`danpack` command line: thin wrappers that parse options and call library functions.
+
+Each command module registers itself on `app` when imported.
+"""
+
+from .app import app
+
+# Command modules: importing one registers its command(s).
+from . import pack  # noqa: E402,F401  (pack, inspect, export-onnx)
+
+
+def main() -> None:
+    app()

@@ -1,0 +1,129 @@
+"""`danpack pack`, `danpack inspect`, `danpack export-onnx`."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from runtime import read_bundle
+from runtime.errors import DanpackError
+
+from ..inspect import describe_bundle, export_onnx
+from ..bundle import write_atomic
+from ..pack import PackOptions, pack_model
+from ..progress import Steps
+from .app import app
+from .common import fail, human_bytes
+
+
+def _read_keep_words(path: Optional[Path]) -> tuple[str, ...]:
+    if path is None:
+        return ()
+    try:
+        return tuple(w.strip() for w in path.read_text(encoding="utf-8").splitlines() if w.strip())
+    except (OSError, UnicodeDecodeError) as e:
+        fail(f"{path}: cannot read keep-words ({e}); give a UTF-8 file with one token per line")
+
+
+@app.command("pack")
+def pack_command(
+    model_dir: Path = typer.Argument(..., help="Float model directory (config.json, vocab.txt, weights.npz or weights.safetensors)."),
+    output: Path = typer.Option(..., "--output", "-o", help="Bundle file to write (replaced atomically)."),
+    corpus: list[Path] = typer.Option([], "--corpus", "-c", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every reachable row is kept."),
+    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
+    coverage: float = typer.Option(0.995, help="Keep the most frequent rows until this share of the corpus's known tokens is covered."),
+    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows instead of a coverage target."),
+    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes."),
+    keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, e.g. negations."),
+    pruned: str = typer.Option("auto", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
+    fold: str = typer.Option("auto", help="Fold the first hidden layer into the table: auto (when narrower than the embedding), yes, no."),
+    json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
+) -> None:
+    """Prune, quantise (int8, per-row scale), fold and export a float DAN into one bundle."""
+    try:
+        options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field, coverage=coverage, top=top,
+                              max_bytes=max_bytes, keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
+        steps = Steps(5 + (max_bytes is not None), quiet=quiet or json_out)
+        result = pack_model(model_dir, output, options, steps)
+    except DanpackError as e:
+        fail(str(e))
+    plan = result.plan
+    summary = {
+        "bundle": str(result.path), "bytes": result.bytes, "float_bytes": result.source_bytes,
+        "ratio": round(result.source_bytes / result.bytes, 2),
+        "rows_kept": int(plan.keep), "rows_float": result.source_rows, "table_rows": result.rows, "table_width": result.width,
+        "coverage": round(plan.coverage, 6), "corpus_texts": plan.corpus_texts, "corpus_tokens": plan.corpus_tokens,
+        "unreachable_rows": plan.unreachable, "unreachable_examples": list(plan.unreachable_examples),
+        "unknown_keep_words": list(plan.unknown_keep_words), "pruned_policy": result.policy, "folded": result.folded,
+        "breakdown": result.breakdown,
+    }
+    if json_out:
+        typer.echo(json.dumps(summary, indent=2, ensure_ascii=False))
+        return
+    typer.echo(f"wrote {result.path}: {human_bytes(result.bytes)} "
+               f"(float model {human_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
+    if plan.has_corpus:
+        typer.echo(f"kept {plan.keep:,} of {result.source_rows:,} rows, covering {plan.coverage:.2%} of the "
+                   f"{plan.known_tokens:,} known tokens in {plan.corpus_texts:,} corpus texts")
+    else:
+        typer.echo(f"no corpus given: kept every reachable row ({plan.keep:,} of {result.source_rows:,}); "
+                   "quantisation only — pass --corpus to prune to the deployment vocabulary")
+    if plan.unreachable:
+        typer.echo(f"dropped {plan.unreachable:,} rows the tokenizer can never produce, e.g. "
+                   + ", ".join(repr(t) for t in plan.unreachable_examples[:5]))
+    if plan.unknown_keep_words:
+        typer.echo(f"keep-words the float model does not know (not added): {', '.join(plan.unknown_keep_words[:10])}")
+    typer.echo(f"table {result.rows:,} x {result.width} int8{' (first hidden layer folded in)' if result.folded else ''}; "
+               f"pruned tokens at run time: {result.policy}")
+    typer.echo("bytes: " + ", ".join(f"{k} {human_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
+
+
+@app.command("inspect")
+def inspect_command(
+    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
+    json_out: bool = typer.Option(False, "--json", help="Print everything as JSON."),
+) -> None:
+    """Show a bundle's manifest, checksum and where its bytes go."""
+    try:
+        info = describe_bundle(read_bundle(bundle))
+    except DanpackError as e:
+        fail(str(e))
+    if json_out:
+        typer.echo(json.dumps(info, indent=2, ensure_ascii=False))
+        return
+    m = info["manifest"]
+    typer.echo(f"bundle   {bundle}")
+    typer.echo(f"sha256   {info['sha256']}")
+    typer.echo(f"size     {human_bytes(info['bytes'])} ({info['bytes']:,} bytes)")
+    typer.echo(f"labels   {', '.join(info['labels'])}")
+    t = m["table"]
+    typer.echo(f"table    {t['rows']:,} x {t['width']} {t['dtype']}, {info['tokens']:,} tokens"
+               f"{', first hidden layer folded in' if t['folded'] else ''}")
+    typer.echo(f"layers   " + " -> ".join(f"{'folded' if not l['weight'] else 'gemm'}+{l['activation'] or 'softmax'}" for l in m["layers"]))
+    typer.echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
+    typer.echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
+               f"{human_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
+    typer.echo(f"packer   {m['packer']}")
+    typer.echo("bytes    " + ", ".join(f"{k} {human_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
+
+
+@app.command("export-onnx")
+def export_onnx_command(
+    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
+    output: Path = typer.Option(..., "--output", "-o", help="Self-contained .onnx file to write."),
+) -> None:
+    """Write the bundle's graph with its tensors embedded, for hosts in other languages.
+
+    Inputs: ids (batch, tokens) int64 padded with 0, counts (batch,) int64. Outputs: probs, logits.
+    Tokenize and map tokens to rows as the manifest says (see `danpack inspect --json`).
+    """
+    try:
+        model = export_onnx(read_bundle(bundle))
+    except DanpackError as e:
+        fail(str(e))
+    write_atomic(output, model.SerializeToString())
+    typer.echo(f"wrote {output} ({human_bytes(output.stat().st_size)})")

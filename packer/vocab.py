@@ -1,0 +1,134 @@
+"""Choosing the deployment vocabulary: which rows of the float table the bundle keeps.
+
+Rows are ranked by how often the model's own tokenizer produces their token in the
+deployment corpora; the most frequent are kept until a token-coverage target, a row
+count, or (with the packer's help) a byte budget is reached. Rows the tokenizer can
+never produce are dropped and reported; keep-words are always kept when known.
+"""
+
+from __future__ import annotations
+
+from collections import Counter
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from runtime.tokenize import Tokenizer
+
+
+@dataclass(frozen=True)
+class VocabOptions:
+    """How many rows to keep."""
+
+    coverage: float = 0.995  # keep frequent rows until this share of known corpus tokens is covered
+    top: int | None = None  # or keep exactly the N most frequent rows (overrides coverage)
+    keep_words: tuple[str, ...] = ()  # tokens always kept when the model knows them
+
+
+@dataclass(frozen=True)
+class VocabPlan:
+    """The outcome of selection, with what the summary reports."""
+
+    ranked_rows: np.ndarray  # (R,) int64: reachable float rows, most frequent first (ties: row order)
+    row_counts: np.ndarray  # (R,) int64: corpus count of each ranked row
+    forced: int  # how many leading ranked rows are forced (keep-words, unknown-token row)
+    keep: int  # how many leading ranked rows are kept
+    corpus_texts: int
+    corpus_tokens: int  # all tokens the tokenizer produced
+    known_tokens: int  # of those, tokens the float model has a row for
+    unreachable: int  # float rows the tokenizer can never produce
+    unreachable_examples: tuple[str, ...]
+    unknown_keep_words: tuple[str, ...]  # keep-words the float model does not know (reported, never invented)
+    has_corpus: bool
+
+    @property
+    def kept_rows(self) -> np.ndarray:
+        return self.ranked_rows[: self.keep]
+
+    @property
+    def coverage(self) -> float:
+        """Share of known corpus tokens whose row is kept (1.0 without a corpus)."""
+        if not self.has_corpus or self.known_tokens == 0:
+            return 1.0
+        return float(self.row_counts[: self.keep].sum()) / self.known_tokens
+
+    def with_keep(self, keep: int) -> "VocabPlan":
+        """The same ranking with a different cut (never below the forced rows)."""
+        from dataclasses import replace
+
+        return replace(self, keep=max(self.forced, min(keep, len(self.ranked_rows))))
+
+
+def find_unreachable(tokenizer: Tokenizer, vocab: Sequence[str]) -> np.ndarray:
+    """(V,) bool: True where the tokenizer can never produce the row's token."""
+    return np.fromiter((not tokenizer.is_reachable(t) for t in vocab), dtype=bool, count=len(vocab))
+
+
+def count_tokens(tokenizer: Tokenizer, texts: Iterable[str]) -> tuple[Counter, int]:
+    """Token frequencies over texts, and the number of texts."""
+    counts: Counter = Counter()
+    n = 0
+    for text in texts:
+        counts.update(tokenizer.tokenize(text))
+        n += 1
+    return counts, n
+
+
+def plan_vocab(
+    vocab: Sequence[str],
+    tokenizer: Tokenizer,
+    corpus: Iterable[str] | None,
+    options: VocabOptions,
+    always_rows: Sequence[int] = (),
+) -> VocabPlan:
+    """Rank the reachable rows by corpus frequency and cut by coverage or top-N."""
+    unreachable = find_unreachable(tokenizer, vocab)  # (V,)
+    index = {token: row for row, token in enumerate(vocab)}
+    freq = np.zeros(len(vocab), dtype=np.int64)  # (V,)
+    corpus_tokens = corpus_texts = 0
+    if corpus is not None:
+        counter, corpus_texts = count_tokens(tokenizer, corpus)
+        corpus_tokens = sum(counter.values())
+        for token, c in counter.items():
+            row = index.get(token)
+            if row is not None:
+                freq[row] = c
+    known_tokens = int(freq.sum())
+
+    unknown_keep = tuple(w for w in options.keep_words if w not in index)
+    forced = [index[w] for w in options.keep_words if w in index] + list(always_rows)
+    forced = list(dict.fromkeys(r for r in forced if not unreachable[r]))  # unique, order kept
+    forced_set = set(forced)
+    reachable = np.flatnonzero(~unreachable)  # (R,)
+    rest = np.array([r for r in reachable if r not in forced_set], dtype=np.int64) if forced_set else reachable
+    # most frequent first; stable sort keeps row order among ties (deterministic)
+    rest = rest[np.argsort(-freq[rest], kind="stable")]
+    ranked = np.concatenate([np.array(forced, dtype=np.int64), rest]).astype(np.int64)
+    row_counts = freq[ranked]
+
+    if corpus is None:
+        keep = len(ranked)
+    elif options.top is not None:
+        keep = options.top
+    else:
+        keep = _rows_for_coverage(row_counts, len(forced), known_tokens, options.coverage)
+    examples = tuple(vocab[r] for r in np.flatnonzero(unreachable)[:8])
+    plan = VocabPlan(
+        ranked_rows=ranked, row_counts=row_counts, forced=len(forced), keep=len(ranked),
+        corpus_texts=corpus_texts, corpus_tokens=corpus_tokens, known_tokens=known_tokens,
+        unreachable=int(unreachable.sum()), unreachable_examples=examples,
+        unknown_keep_words=unknown_keep, has_corpus=corpus is not None,
+    )
+    return plan.with_keep(keep)
+
+
+def _rows_for_coverage(row_counts: np.ndarray, forced: int, known: int, target: float) -> int:
+    """Smallest cut (>= forced rows, >= 1) whose kept rows cover `target` of the known tokens."""
+    if known == 0:
+        return max(forced, 1)
+    covered = np.cumsum(row_counts)  # (R,)
+    need = target * known
+    cut = int(np.searchsorted(covered, need - 1e-9 * known, side="left")) + 1
+    seen = int(np.count_nonzero(row_counts))  # never keep unseen rows for coverage
+    return max(forced, min(cut, max(seen, forced)), 1)

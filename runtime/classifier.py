@@ -1,0 +1,70 @@
+"""The device-side classifier: tokenizer + deployment vocabulary + a backend."""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Sequence
+
+import numpy as np
+
+from .backends import BACKENDS, open_backend
+from .bundle import Bundle, read_bundle
+from .encode import Encoder
+from .errors import BundleError, DanpackError
+from .forward import encode_batch
+from .tokenize import Tokenizer
+
+PROBE_TOLERANCE = 1e-4  # float32 differences between backends are ~1e-7; damage is far larger
+
+
+class Classifier:
+    """Classifies texts with a verified bundle; safe to call from several threads at once."""
+
+    def __init__(self, bundle: Bundle, backend: str = "onnxruntime", threads: int = 1) -> None:
+        self.bundle = bundle
+        self.encoder = Encoder(Tokenizer(bundle.tokenizer), bundle.vocab, bundle.oov_row)
+        self.backend = open_backend(bundle, backend, threads)
+        self._check_probe()
+
+    def _check_probe(self) -> None:
+        """Re-run the packer's probe sequences: a backend that computes differently is refused at load."""
+        probe = self.bundle.manifest["probe"]
+        if not probe["ids"]:
+            return
+        ids, counts = encode_batch(probe["ids"])
+        probs = self.backend.run(ids, counts)[0]  # (P, C)
+        worst = float(np.abs(probs - np.asarray(probe["probs"], dtype=np.float32)).max())
+        if not worst <= PROBE_TOLERANCE:
+            raise BundleError(f"the {self.backend.name} backend disagrees with the packer on the bundle's probe "
+                              f"(max difference {worst:.2e} > {PROBE_TOLERANCE}); the bundle or the runtime is damaged")
+
+    @property
+    def labels(self) -> tuple[str, ...]:
+        return self.bundle.labels
+
+    @property
+    def manifest(self) -> dict:
+        return self.bundle.manifest
+
+    def run(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """(B,) texts -> ((B, C) probabilities, (B, C) logits)."""
+        ids, counts = self.encoder.encode(texts)  # (B, T), (B,)
+        return self.backend.run(ids, counts)
+
+    def predict_proba(self, texts: Sequence[str]) -> np.ndarray:
+        """(B,) texts -> (B, C) probabilities in label order."""
+        return self.run(texts)[0]
+
+    def predict(self, texts: Sequence[str]) -> list[str]:
+        """(B,) texts -> B labels."""
+        probs = self.predict_proba(texts)
+        return [self.labels[i] for i in probs.argmax(axis=1)]
+
+
+def load(path: str | os.PathLike, backend: str = "onnxruntime", threads: int = 1) -> Classifier:
+    """Read, verify and open a bundle. Raises BundleError (a DanpackError) on any bad bundle."""
+    if backend not in BACKENDS:
+        raise DanpackError(f"backend {backend!r} is not one of {BACKENDS}")
+    if not isinstance(threads, int) or threads < 1:
+        raise DanpackError(f"threads must be an integer >= 1, found {threads!r}")
+    return Classifier(read_bundle(path), backend, threads)

@@ -1,0 +1,33 @@
+"""Texts -> padded token ids, through the one tokenizer and a vocabulary.
+
+A token outside the vocabulary goes to `oov_id` (an unknown-token row, or the
+pruned-rest row of a bundle) or, when `oov_id` is None, is left out of the mean.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+from .forward import encode_batch
+from .tokenize import Tokenizer
+
+
+class Encoder:
+    """Maps texts to (ids, counts) for `runtime.forward` and the ONNX graph."""
+
+    def __init__(self, tokenizer: Tokenizer, vocab: Sequence[str], oov_id: int | None) -> None:
+        self.tokenizer = tokenizer
+        self.index = {token: row for row, token in enumerate(vocab)}
+        self.oov_id = oov_id
+
+    def token_ids(self, text: str) -> list[int]:
+        """Row ids of one text's tokens, in order, after the OOV policy."""
+        get, oov = self.index.get, self.oov_id
+        ids = [get(token, oov) for token in self.tokenizer.tokenize(text)]
+        return ids if oov is not None else [i for i in ids if i is not None]
+
+    def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts."""
+        return encode_batch([self.token_ids(text) for text in texts])
