@@ -96,7 +96,7 @@ def _read_config(path: Path) -> dict:
         raise _fail(path, f"field 'format' is {config.get('format')!r}, expected {FORMAT_NAME!r}",
                     "is this a danpack float model directory?")
     version = config.get("version")
-    if version != FORMAT_VERSION:
+    if type(version) is not int or version != FORMAT_VERSION:
         raise _fail(path, f"field 'version' is {version!r}; this danpack reads version {FORMAT_VERSION}",
                     "upgrade danpack or re-save the model with this version")
     unknown = set(config) - CONFIG_KEYS
@@ -137,6 +137,10 @@ def _read_vocab(path: Path) -> tuple[str, ...]:
     for line, token in enumerate(tokens, start=1):
         if token == "" or token.strip() == "":
             raise _fail(path, f"line {line} holds an empty or blank token", "every row needs a distinct, non-empty token")
+        if token != token.strip():
+            hint = " (Windows line endings? save with \\n endings)" if token.endswith("\r") else ""
+            raise _fail(path, f"line {line} token {token!r} has leading or trailing whitespace{hint}",
+                        "strip the token; whitespace can never be part of a token")
         if token in seen:
             raise _fail(path, f"line {line} repeats the token {token!r} of line {seen[token]}",
                         "tokens must be unique: merge or drop the duplicate row")
@@ -173,6 +177,8 @@ def _take_tensor(path: Path, arrays: dict, name: str, ndim: int) -> np.ndarray:
     if name not in arrays:
         raise _fail(path, f"tensor {name!r} is missing", f"tensors present: {sorted(arrays)}")
     a = arrays[name]
+    if not isinstance(a, np.ndarray):
+        raise _fail(path, f"tensor {name!r} is not an array (found {type(a).__name__})", "save it with numpy or safetensors")
     if a.dtype not in (np.float32, np.float16):
         raise _fail(path, f"tensor {name!r} has dtype {a.dtype}, expected float32 or float16")
     if a.ndim != ndim:
@@ -212,6 +218,11 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
         raise _fail(config_path, f"field 'oov' is {oov!r}",
                     'expected {"policy": "skip"} or {"policy": "unk", "token": "<unk>"}')
     unk_token = oov.get("token") if oov["policy"] == "unk" else None
+    if oov["policy"] == "unk" and (not isinstance(unk_token, str) or not unk_token):
+        raise _fail(config_path, f"field 'oov' token is {unk_token!r}, expected the unknown-token string, e.g. \"<unk>\"")
+    extra_oov = set(oov) - {"policy", "token"}
+    if extra_oov:
+        raise _fail(config_path, f"field 'oov' has unknown keys {sorted(extra_oov)}", "allowed: policy, token")
     metadata = config.get("metadata", {})
     if not isinstance(metadata, dict):
         raise _fail(config_path, f"field 'metadata' must be an object, found {type(metadata).__name__}")
@@ -284,6 +295,7 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
     target = Path(model_dir)
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    backup = None
     try:
         (tmp / "config.json").write_text(json.dumps(model_config(model), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
         (tmp / "vocab.txt").write_text("".join(t + "\n" for t in model.vocab), encoding="utf-8")
@@ -295,7 +307,6 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
             from safetensors.numpy import save_file
 
             save_file(tensors, str(tmp / "weights.safetensors"))
-        backup = None
         if target.exists():
             backup = target.with_name(f".{target.name}.old-{os.getpid()}")
             os.replace(target, backup)
@@ -304,6 +315,8 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
             shutil.rmtree(backup, ignore_errors=True)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
+        if backup is not None and backup.exists() and not target.exists():
+            os.replace(backup, target)  # the final rename failed: put the old model back
         raise
     return target
 
