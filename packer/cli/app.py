@@ -1,5 +1,7 @@
 """The one typer app behind the `danpack` command; each command lives in its own module."""
 
+from typing import Optional
+
 import typer
 
 app = typer.Typer(
@@ -10,3 +12,19 @@ app = typer.Typer(
     add_completion=False,
     pretty_exceptions_show_locals=False,
 )
+
+
+def _show_version(value: bool) -> None:
+    if value:
+        from packer import __version__
+
+        typer.echo(f"danpack {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def root(
+    version: Optional[bool] = typer.Option(None, "--version", callback=_show_version, is_eager=True,
+                                           help="Print the version and exit."),
+) -> None:
+    """Keeps every command a subcommand, however many are registered."""

@@ -1,0 +1,101 @@
+"""`danpack convert-torch`: a PyTorch DAN state_dict -> float model directory (thin wrapper)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from runtime.errors import DanpackError
+from runtime.tokenize import TokenizerSpec
+
+from ..torch_convert import ConversionReport, ConvertOptions, convert_checkpoint
+from .app import app
+from .common import fail, human_bytes
+
+
+def _padding(value: str) -> tuple[int | None, bool]:
+    """--padding-row: 'auto' (detect), 'none' (keep every row) or a row number -> (row, detect)."""
+    if value == "auto":
+        return None, True
+    if value == "none":
+        return None, False
+    try:
+        return int(value), False
+    except ValueError:
+        raise DanpackError(f"--padding-row {value!r}: expected a row number, 'auto' or 'none'") from None
+
+
+def _describe(report: ConversionReport) -> list[str]:
+    """The summary printed on stdout: what was found, how it maps, what was written."""
+    ck, lines = report.checkpoint, []
+    kind = "PyTorch state_dict" if ck.kind == "torch" else "safetensors"
+    lines.append(f"checkpoint  {ck.path} ({kind}, {len(ck.keys)} tensors)")
+    mapped = {key: ours for ours, key, _ in report.mapping}
+    width = max(len(k) for k in ck.keys)
+    lines.append("tensors found:")
+    for key in ck.keys:
+        target = mapped.get(key) or ("(ignored on request)" if key in report.layout.ignored else "")
+        shape = "x".join(str(s) for s in ck.shapes[key]) or "scalar"
+        lines.append(f"  {key:<{width}}  {shape:<12} {ck.dtypes[key]:<9} -> {target}")
+    for ours, key, _ in report.mapping:
+        if key not in ck.shapes:
+            lines.append(f"  {'':<{width}}  {'':<12} {'':<9}    {ours}: {key}")
+    hidden = " -> ".join(str(h) for h in report.hidden_sizes)
+    stack = f"hidden {hidden} ({report.activation}) -> " if report.hidden_sizes else ""
+    lines.append(f"layers      embedding {report.vocab_size}x{report.embedding_dim} -> {stack}output {len(report.labels)}")
+    lines.append(f"rows        table {report.table_rows}, vocabulary {report.vocab_size}, dropped {len(report.dropped)}")
+    for d in report.dropped:
+        token = "no token" if d.token is None else repr(d.token)
+        lines.append(f"  dropped row {d.row} ({token}): {d.reason}")
+    lines.append(f"labels      {len(report.labels)}: {', '.join(report.labels)}")
+    lines.append(f"wrote       {report.output_dir} (weights.{report.weights_format}, {human_bytes(report.bytes_written)}), "
+                 "re-loaded and validated")
+    return lines
+
+
+@app.command("convert-torch")
+def convert_torch(
+    checkpoint: Path = typer.Argument(..., help="state_dict saved with torch.save, or a .safetensors file of it."),
+    vocab: Path = typer.Option(..., "--vocab", help="One token per line (line i = row i), or JSON list / token->row map."),
+    labels: str = typer.Option(..., "--labels", help="File with one label per line, or a comma-separated list."),
+    output: Path = typer.Option(..., "-o", "--output", help="Model directory to write."),
+    activation: Optional[str] = typer.Option(None, "--activation", help="relu or tanh (needed when there are hidden layers)."),
+    bag_mode: str = typer.Option("mean", "--bag-mode", help="nn.EmbeddingBag mode the model used: mean|sum|max."),
+    embedding_key: Optional[str] = typer.Option(None, "--embedding-key", help="The embedding table's key (when ambiguous)."),
+    layer_keys: Optional[str] = typer.Option(None, "--layer-keys", help="Linear layers in forward order, comma-separated."),
+    ignore_key: list[str] = typer.Option([], "--ignore-key", help="A tensor or module prefix the model does not use."),
+    state_key: Optional[str] = typer.Option(None, "--state-key", help="Entry holding the state_dict in a training checkpoint."),
+    padding_row: str = typer.Option("auto", "--padding-row", help="Row to drop as padding: N, 'auto' or 'none'."),
+    normalization: str = typer.Option("NFKC", "--normalization", help="Tokenizer Unicode form: NFC|NFKC|NFD|NFKD|none."),
+    case: str = typer.Option("lower", "--case", help="Tokenizer case: lower|casefold|keep."),
+    max_tokens: int = typer.Option(512, "--max-tokens", help="Tokens kept per text."),
+    oov: str = typer.Option("skip", "--oov", help="Unknown tokens: skip (leave the mean) or unk (use --unk-token)."),
+    unk_token: str = typer.Option("<unk>", "--unk-token", help="Vocabulary token for unknown words with --oov unk."),
+    weights_format: str = typer.Option("npz", "--weights-format", help="npz or safetensors."),
+    overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing model directory."),
+) -> None:
+    """Convert a PyTorch-trained DAN (state_dict) into a float model directory."""
+    try:
+        row, detect = _padding(padding_row)
+        options = ConvertOptions(
+            activation=activation,
+            bag_mode=bag_mode,
+            embedding_key=embedding_key,
+            layer_keys=tuple(k.strip() for k in layer_keys.split(",") if k.strip()) if layer_keys else None,
+            ignore_keys=tuple(ignore_key),
+            state_key=state_key,
+            padding_row=row,
+            detect_padding=detect,
+            tokenizer=TokenizerSpec(normalization=normalization, case=case, max_tokens=max_tokens),
+            oov_policy=oov,
+            unk_token=unk_token,
+            weights_format=weights_format,
+        )
+        report = convert_checkpoint(checkpoint, vocab, labels, output, options, overwrite=overwrite)
+    except DanpackError as e:
+        fail(str(e))
+    for note in report.warnings:
+        typer.echo(f"danpack: note: {note}", err=True)
+    typer.echo("\n".join(_describe(report)))
