@@ -14,6 +14,11 @@ import msgpack
 import numpy as np
 
 from runtime.bundle import FORMAT_NAME, FORMAT_VERSION
+from runtime.errors import DanpackError
+
+
+class OutputError(DanpackError):
+    """An output file cannot be written (missing permission, a file where a folder should be, disk full)."""
 
 
 def _sorted(obj):
@@ -50,18 +55,23 @@ def encode_bundle(payload: bytes) -> bytes:
 def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
     """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    except OSError as e:
+        raise OutputError(f"{path}: cannot write here ({e.strerror or e}); choose another output path") from e
     try:
         with os.fdopen(fd, "wb") as f:
             f.write(data)
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as e:
         try:
             os.unlink(tmp)
         except FileNotFoundError:
             pass
+        if isinstance(e, OSError):
+            raise OutputError(f"{path}: writing failed ({e.strerror or e}); the previous file, if any, is intact") from e
         raise
     return path

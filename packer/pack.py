@@ -190,22 +190,30 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
     return data, breakdown, folded, rows, width
 
 
-def _fit_budget(model, plan, budget, build) -> VocabPlan:
-    """The largest cut of the ranking whose bundle fits `budget` bytes."""
+def _fit_budget(model: FloatModel, plan: VocabPlan, budget: int, fold_mode: str, quantize: bool, build) -> VocabPlan:
+    """The largest cut of the ranking whose bundle fits `budget` bytes (exact: checked by building)."""
     smallest = plan.with_keep(max(plan.forced, 1))
     base = len(build(smallest)[0])
     if base > budget:
         raise PackError(f"--max-bytes {budget} is below the smallest possible bundle ({base} bytes with "
                         f"{smallest.keep} row(s)); raise the budget")
-    width = model.layers[0].bias.shape[0] if should_fold(model.embedding.shape[1], model.layers, "auto") else model.embedding.shape[1]
+    dim = model.embedding.shape[1]
+    width = int(model.layers[0].bias.shape[0]) if should_fold(dim, model.layers, fold_mode) else dim
     ranked = plan.ranked_rows[smallest.keep :]
-    # per-row cost: int8 row, float32 scale, token bytes and its newline; msgpack headers grow by a few bytes at most
-    costs = np.array([width + 4 + len(model.vocab[r].encode("utf-8")) + 1 for r in ranked], dtype=np.int64)
-    extra = int(np.searchsorted(np.cumsum(costs), budget - base - 16, side="right"))
-    candidate = plan.with_keep(smallest.keep + extra)
-    while candidate.keep > smallest.keep and len(build(candidate)[0]) > budget:
-        candidate = plan.with_keep(candidate.keep - max(1, (candidate.keep - smallest.keep) // 100))
-    return candidate
+    # per-row cost: the row (int8 or float32), its float32 scale, the token and its newline
+    per_row = width * (1 if quantize else 4) + (4 if quantize else 0)
+    costs = np.fromiter((per_row + len(model.vocab[r].encode("utf-8")) + 1 for r in ranked), np.int64, len(ranked))
+    keep = smallest.keep + int(np.searchsorted(np.cumsum(costs), budget - base, side="right"))
+
+    def fits(k: int) -> bool:
+        return len(build(plan.with_keep(k))[0]) <= budget
+
+    # msgpack headers may grow by a few bytes at size boundaries: settle the estimate row by row
+    while keep > smallest.keep and not fits(keep):
+        keep -= 1
+    while keep < len(plan.ranked_rows) and fits(keep + 1):
+        keep += 1
+    return plan.with_keep(keep)
 
 
 def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, options: PackOptions = PackOptions(),
@@ -232,7 +240,7 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
 
     if options.max_bytes is not None:
         with steps.step(f"fitting the byte budget ({options.max_bytes:,} bytes)"):
-            plan = _fit_budget(model, plan, options.max_bytes, build)
+            plan = _fit_budget(model, plan, options.max_bytes, options.fold, options.quantize, build)
     with steps.step("quantising, folding and exporting the graph"):
         data, breakdown, folded, rows, width = build(plan)
     with steps.step("verifying the bundle with the runtime reader"):

@@ -39,7 +39,7 @@ class VocabPlan:
     known_tokens: int  # of those, tokens the float model has a row for
     unreachable: int  # float rows the tokenizer can never produce
     unreachable_examples: tuple[str, ...]
-    unknown_keep_words: tuple[str, ...]  # keep-words the float model does not know (reported, never invented)
+    unknown_keep_words: tuple[str, ...]  # keep-words the float model does not know or no text can produce
     has_corpus: bool
 
     @property
@@ -84,6 +84,7 @@ def plan_vocab(
 ) -> VocabPlan:
     """Rank the reachable rows by corpus frequency and cut by coverage or top-N."""
     unreachable = find_unreachable(tokenizer, vocab)  # (V,)
+    unreachable[list(always_rows)] = False  # the unknown-token row is kept though no text produces it ("<unk>")
     index = {token: row for row, token in enumerate(vocab)}
     freq = np.zeros(len(vocab), dtype=np.int64)  # (V,)
     corpus_tokens = corpus_texts = 0
@@ -96,7 +97,8 @@ def plan_vocab(
                 freq[row] = c
     known_tokens = int(freq.sum())
 
-    unknown_keep = tuple(w for w in options.keep_words if w not in index)
+    # keep-words the model lacks, or has only on rows no text can reach: reported, never invented
+    unknown_keep = tuple(w for w in options.keep_words if w not in index or unreachable[index[w]])
     forced = [index[w] for w in options.keep_words if w in index] + list(always_rows)
     forced = list(dict.fromkeys(r for r in forced if not unreachable[r]))  # unique, order kept
     forced_set = set(forced)

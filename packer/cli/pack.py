@@ -122,8 +122,7 @@ def export_onnx_command(
     Tokenize and map tokens to rows as the manifest says (see `danpack inspect --json`).
     """
     try:
-        model = export_onnx(read_bundle(bundle))
+        write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
     except DanpackError as e:
         fail(str(e))
-    write_atomic(output, model.SerializeToString())
     typer.echo(f"wrote {output} ({human_bytes(output.stat().st_size)})")

@@ -1,0 +1,249 @@
+"""The `danpack pack`, `inspect` and `export-onnx` commands (packer/cli/pack.py) through typer's CliRunner.
+
+External references: `hashlib.sha256` and `msgpack` (the format's codec) recompute the checksum the
+commands print; `onnxruntime.InferenceSession` and `onnx.checker` load the exported file; the file
+size comes from the operating system (`Path.stat`). Usage errors exit 2 (click/typer convention).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+from pathlib import Path
+
+import msgpack
+import numpy as np
+import onnx
+import onnxruntime as ort
+import pytest
+from helpers import LABELS, make_corpus, make_model, random_texts, token, zipf_texts
+from typer.testing import CliRunner
+
+import runtime
+from packer.cli import app
+
+RUNNER = CliRunner()
+
+
+def invoke(*args: str):
+    return RUNNER.invoke(app, [str(a) for a in args], catch_exceptions=False)
+
+
+@pytest.fixture(scope="module")
+def inputs(tmp_path_factory):
+    root = tmp_path_factory.mktemp("cli")
+    vocab = [token(i) for i in range(150)] + ["Hello"]  # "Hello" can never be produced (lower-casing)
+    model_dir = make_model(root, vocab=vocab, dim=16, hidden=(8,), seed=21)
+    corpus = make_corpus(root, zipf_texts(vocab[:120], 200, seed=22, unknown_rate=0.05), fmt="jsonl")
+    return root, model_dir, corpus
+
+
+@pytest.fixture(scope="module")
+def packed(inputs):
+    root, model_dir, corpus = inputs
+    out = root / "packed.danpack"
+    result = invoke("pack", model_dir, "-o", out, "--corpus", corpus, "--coverage", "0.9")
+    assert result.exit_code == 0, result.stderr
+    return out, result
+
+
+# --- pack --------------------------------------------------------------------------------------
+
+def test_pack_writes_a_bundle_and_prints_a_summary(packed):
+    out, result = packed
+    lines = result.stdout.splitlines()
+    bundle = runtime.read_bundle(out)
+    size = out.stat().st_size
+    assert lines[0].startswith(f"wrote {out}: ") and "smaller" in lines[0]
+    kept = re.match(r"kept (\d+) of 151 rows, covering (\d+\.\d\d)% of the ([\d,]+) known tokens in 200 corpus texts",
+                    lines[1])
+    assert kept, lines[1]
+    assert int(kept.group(1)) == len(bundle.vocab) and float(kept.group(2)) >= 90.0
+    assert lines[2] == "dropped 1 rows the tokenizer can never produce, e.g. 'Hello'"
+    table = bundle.manifest["table"]
+    assert lines[3] == (f"table {table['rows']:,} x {table['width']} int8 (first hidden layer folded in); "
+                        "pruned tokens at run time: skip")
+    assert lines[4].startswith("bytes: table ")
+    assert len(lines) == 5
+    assert size == bundle.size
+    # progress went to stderr, numbered; stdout holds only the summary
+    assert re.search(r"^\[1/5\] reading float model", result.stderr, re.M)
+    assert "[5/5] writing" in result.stderr and "[1/5]" not in result.stdout
+    clf = runtime.load(out)
+    assert clf.labels == LABELS and len(clf.predict(["w1 w2", "Hello"])) == 2
+
+
+def test_pack_json_summary(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    out = tmp_path / "j.danpack"
+    result = invoke("pack", model_dir, "-o", out, "-c", corpus, "--top", "40", "--pruned", "rest", "--json")
+    assert result.exit_code == 0, result.stderr
+    summary = json.loads(result.stdout)  # nothing but JSON on stdout
+    size = out.stat().st_size
+    assert summary["bundle"] == str(out) and summary["bytes"] == size
+    assert sum(summary["breakdown"].values()) == size
+    assert summary["rows_kept"] == 40 and summary["table_rows"] == 41 and summary["rows_float"] == 151
+    assert summary["pruned_policy"] == "rest" and summary["folded"] is True and summary["table_width"] == 8
+    assert summary["unreachable_rows"] == 1 and summary["unreachable_examples"] == ["Hello"]
+    assert summary["corpus_texts"] == 200 and summary["ratio"] == round(summary["float_bytes"] / size, 2)
+    assert result.stderr == ""  # --json implies no progress
+
+
+def test_pack_without_corpus_and_with_keep_words(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    words = tmp_path / "keep.txt"
+    words.write_text("w3\nnot-in-model\n\n", encoding="utf-8")
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "--keep-words", words, "-q")
+    assert result.exit_code == 0, result.stderr
+    assert "no corpus given: kept every reachable row (150 of 151)" in result.stdout
+    assert "keep-words the float model does not know (not added): not-in-model" in result.stdout
+    assert result.stderr == ""  # -q
+
+
+# --- inspect -----------------------------------------------------------------------------------
+
+def _payload_sha(path: Path) -> str:
+    return hashlib.sha256(msgpack.unpackb(path.read_bytes(), raw=False)["payload"]).hexdigest()
+
+
+def test_inspect_human(packed):
+    out, _ = packed
+    result = invoke("inspect", out)
+    assert result.exit_code == 0, result.stderr
+    fields = {line.split()[0]: line.split(None, 1)[1] for line in result.stdout.splitlines()}
+    assert list(fields) == ["bundle", "sha256", "size", "labels", "table", "layers", "pruned", "source", "packer", "bytes"]
+    assert fields["bundle"] == str(out)
+    assert fields["sha256"] == _payload_sha(out)
+    assert f"({out.stat().st_size:,} bytes)" in fields["size"]
+    assert fields["labels"] == ", ".join(LABELS)
+    assert fields["layers"] == "folded+relu -> gemm+softmax"
+    assert fields["pruned"].startswith("skip; coverage ")
+
+
+def test_inspect_json_breakdown_sums_to_the_file_size(packed):
+    out, _ = packed
+    result = invoke("inspect", out, "--json")
+    assert result.exit_code == 0, result.stderr
+    info = json.loads(result.stdout)
+    size = out.stat().st_size
+    assert info["bytes"] == size and sum(info["breakdown"].values()) == size
+    assert set(info["breakdown"]) == {"table", "scales", "layers", "vocab", "graph", "other"}
+    assert all(v >= 0 for v in info["breakdown"].values())
+    t = info["manifest"]["table"]
+    assert info["breakdown"]["table"] == t["rows"] * t["width"]  # int8: one byte per element
+    assert info["breakdown"]["scales"] == 4 * t["rows"]  # one float32 per row
+    assert info["sha256"] == _payload_sha(out)
+    assert info["labels"] == list(LABELS) and "probe" not in info["manifest"]
+
+
+# --- export-onnx -------------------------------------------------------------------------------
+
+def test_export_onnx_runs_in_onnxruntime_and_matches_the_bundle(packed, tmp_path):
+    out, _ = packed
+    target = tmp_path / "sub" / "model.onnx"
+    result = invoke("export-onnx", out, "-o", target)
+    assert result.exit_code == 0, result.stderr
+    assert result.stdout.startswith(f"wrote {target} (")
+    onnx.checker.check_model(onnx.load(str(target)), full_check=True)
+    session = ort.InferenceSession(str(target), providers=["CPUExecutionProvider"])
+    clf = runtime.load(out)
+    texts = random_texts([token(i) for i in range(151)], 100, seed=23)
+    ids, counts = clf.encoder.encode(texts)
+    probs, logits = session.run(["probs", "logits"], {"ids": ids, "counts": counts})
+    np.testing.assert_allclose(probs, clf.predict_proba(texts), rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(logits, clf.run(texts)[1], rtol=1e-6, atol=1e-6)
+
+
+# --- bad inputs exit 2 with a message naming the file -------------------------------------------
+
+def _assert_usage_error(result, *needles: str) -> None:
+    assert result.exit_code == 2, (result.exit_code, result.stdout, result.stderr)
+    assert result.stdout == ""
+    for needle in needles:
+        assert needle in result.stderr, f"{needle!r} not in {result.stderr!r}"
+
+
+def test_missing_model_dir(tmp_path):
+    missing = tmp_path / "no-such-model"
+    out = tmp_path / "x.danpack"
+    _assert_usage_error(invoke("pack", missing, "-o", out), "danpack: error:", str(missing), "is not a directory")
+    assert not out.exists()
+
+
+def test_model_dir_without_weights(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    broken = tmp_path / "broken"
+    broken.mkdir()
+    for name in ("config.json", "vocab.txt"):
+        (broken / name).write_bytes((model_dir / name).read_bytes())
+    _assert_usage_error(invoke("pack", broken, "-o", tmp_path / "x.danpack"), str(broken), "no weights file")
+
+
+@pytest.mark.parametrize("value", ["1.5", "0", "-0.2"])
+def test_bad_coverage(inputs, tmp_path, value):
+    _, model_dir, corpus = inputs
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--coverage", value),
+                        f"coverage {float(value)} must be in (0, 1]")
+
+
+def test_bad_pruned_policy(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "--pruned", "drop"),
+                        "pruned-token policy 'drop' is not one of skip, unk, rest, auto")
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--pruned", "unk"),
+                        "'unk' needs a model with an unknown-token row")
+
+
+def test_missing_corpus(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    missing = tmp_path / "comments-march.txt"
+    out = tmp_path / "x.danpack"
+    _assert_usage_error(invoke("pack", model_dir, "-o", out, "--corpus", missing), str(missing), "no such file")
+    assert not out.exists()
+
+
+def test_corpus_without_the_text_field(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--text-field", "comment"),
+                        f"{corpus}:1", "'comment'")
+
+
+def test_missing_keep_words_file(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    missing = tmp_path / "negations.txt"
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "--keep-words", missing),
+                        str(missing), "keep-words")
+
+
+def test_budget_too_small(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--max-bytes", "100"),
+                        "--max-bytes 100 is below the smallest possible bundle")
+
+
+def test_inspect_and_export_refuse_bad_bundles(tmp_path):
+    garbage = tmp_path / "garbage.danpack"
+    garbage.write_bytes(b"\x93\x01\x02\x03")
+    missing = tmp_path / "missing.danpack"
+    for path in (garbage, missing):
+        _assert_usage_error(invoke("inspect", path), str(path))
+        _assert_usage_error(invoke("export-onnx", path, "-o", tmp_path / "m.onnx"), str(path))
+    assert not (tmp_path / "m.onnx").exists()
+
+
+def test_missing_required_output_is_a_usage_error(inputs):
+    _, model_dir, _ = inputs
+    result = invoke("pack", model_dir)
+    assert result.exit_code == 2 and "--output" in result.stderr
+
+
+def test_unwritable_output_exits_2_naming_the_path(inputs, packed, tmp_path):
+    _, model_dir, _ = inputs
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a directory\n", encoding="utf-8")
+    target = blocker / "model.danpack"
+    result = RUNNER.invoke(app, ["pack", str(model_dir), "-o", str(target)])
+    _assert_usage_error(result, str(target))
+    result = RUNNER.invoke(app, ["export-onnx", str(packed[0]), "-o", str(blocker / "m.onnx")])
+    _assert_usage_error(result, str(blocker / "m.onnx"))
