@@ -1,4 +1,4 @@
-"""Writing a bundle: deterministic bytes (sorted keys, no timestamps), atomic replace.
+"""Encoding a bundle: deterministic bytes (sorted keys, no timestamps); `packer.files` writes them.
 
 The layout is the one `runtime.bundle` reads and the README specifies.
 """
@@ -6,19 +6,11 @@ The layout is the one `runtime.bundle` reads and the README specifies.
 from __future__ import annotations
 
 import hashlib
-import os
-import tempfile
-from pathlib import Path
 
 import msgpack
 import numpy as np
 
 from runtime.bundle import FORMAT_NAME, FORMAT_VERSION
-from runtime.errors import DanpackError
-
-
-class OutputError(DanpackError):
-    """An output file cannot be written (missing permission, a file where a folder should be, disk full)."""
 
 
 def _sorted(obj):
@@ -50,28 +42,3 @@ def encode_bundle(payload: bytes) -> bytes:
     """The file bytes around a payload."""
     outer = {"format": FORMAT_NAME, "payload": payload, "sha256": hashlib.sha256(payload).digest(), "version": FORMAT_VERSION}
     return msgpack.packb(outer, use_bin_type=True)
-
-
-def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
-    """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
-    path = Path(path)
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
-    except OSError as e:
-        raise OutputError(f"{path}: cannot write here ({e.strerror or e}); choose another output path") from e
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException as e:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        if isinstance(e, OSError):
-            raise OutputError(f"{path}: writing failed ({e.strerror or e}); the previous file, if any, is intact") from e
-        raise
-    return path

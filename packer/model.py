@@ -28,6 +28,8 @@ from runtime.errors import ModelError, TokenizerError
 from runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
 from runtime.tokenize import Tokenizer, TokenizerSpec
 
+from .files import current_umask
+
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1
 WEIGHT_FILES = ("weights.safetensors", "weights.npz")
@@ -295,6 +297,7 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
     target = Path(model_dir)
     target.parent.mkdir(parents=True, exist_ok=True)
     tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    os.chmod(tmp, 0o777 & ~current_umask())  # mkdtemp makes 0700 directories; a model gets the usual permissions
     backup = None
     try:
         (tmp / "config.json").write_text(json.dumps(model_config(model), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")

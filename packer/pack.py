@@ -19,7 +19,8 @@ from runtime.forward import forward_logits, softmax
 from runtime.tokenize import Tokenizer
 
 from . import __version__
-from .bundle import encode_bundle, encode_payload, write_atomic
+from .bundle import encode_bundle, encode_payload
+from .files import write_atomic
 from .fold import fold_first_layer, should_fold
 from .graph import GraphSpec, build_graph, check_graph
 from .model import FloatModel, load_model, model_bytes, model_digest

@@ -19,10 +19,10 @@ import msgpack
 import numpy as np
 import pytest
 
-from packer.bundle import OutputError
+from packer.files import OutputError
 from helpers import make_corpus, make_float_model, make_model, random_texts, token, zipf_texts
 
-import packer.bundle as bundle_module
+import packer.files as bundle_module
 from packer.fold import should_fold
 from packer.model import load_model, save_model
 from packer.pack import PackOptions, pack_model

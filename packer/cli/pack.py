@@ -12,7 +12,7 @@ from runtime import read_bundle
 from runtime.errors import DanpackError
 
 from ..inspect import describe_bundle, export_onnx
-from ..bundle import write_atomic
+from ..files import write_atomic
 from ..pack import PackOptions, pack_model
 from ..progress import Steps
 from .app import app

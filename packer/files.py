@@ -1,0 +1,53 @@
+"""Writing files safely: atomic replace with the usual permissions, errors that name the path."""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from pathlib import Path
+
+from runtime.errors import DanpackError
+
+
+class OutputError(DanpackError):
+    """An output file cannot be written (missing permission, a file where a folder should be, disk full)."""
+
+
+def current_umask() -> int:
+    """The process umask, read without changing it (Linux), else by setting it back at once."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("Umask:"):
+                    return int(line.split()[1], 8)
+    except (OSError, ValueError):
+        pass
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
+def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
+    """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
+    path = Path(path)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+    except OSError as e:
+        raise OutputError(f"{path}: cannot write here ({e.strerror or e}); choose another output path") from e
+    try:
+        os.fchmod(fd, 0o666 & ~current_umask())  # mkstemp makes 0600 files; a bundle gets the usual permissions
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException as e:
+        try:
+            os.unlink(tmp)
+        except FileNotFoundError:
+            pass
+        if isinstance(e, OSError):
+            raise OutputError(f"{path}: writing failed ({e.strerror or e}); the previous file, if any, is intact") from e
+        raise
+    return path
