@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+from functools import cached_property
 from collections.abc import Sequence
 
 import numpy as np
@@ -59,6 +60,25 @@ class Classifier:
         """(B,) texts -> B labels."""
         probs = self.predict_proba(texts)
         return [self.labels[i] for i in probs.argmax(axis=1)]
+
+    @cached_property
+    def drift_bound(self):
+        """The bundle's quantisation drift bound, computed on first use: callers who never certify pay nothing."""
+        from .certify import drift_bound
+
+        return drift_bound(self.bundle)
+
+    def predict_certified(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
+        """(B,) texts -> (B labels, (B, C) probabilities, (B,) bool): True where int8 quantisation provably
+        cannot have changed the label (the float model predicts the same; see runtime/certify.py)."""
+        from .certify import certify_packed, encode_kept
+
+        bound = self.drift_bound
+        ids, counts, kept = encode_kept(self.encoder, texts)  # (B, T), (B,), (B,)
+        probs, logits = self.backend.run(ids, counts)  # (B, C), (B, C)
+        top = probs.argmax(axis=1)  # (B,)
+        certified = certify_packed(bound, logits, ids, counts, kept) & (top == logits.argmax(axis=1))
+        return [self.labels[i] for i in top], probs, certified
 
 
 def load(path: str | os.PathLike, backend: str = "onnxruntime", threads: int = 1) -> Classifier:

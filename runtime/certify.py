@@ -1,0 +1,231 @@
+"""Which predictions int8 quantisation provably cannot change: a per-text bound on logit drift.
+
+Method: interval bound propagation (IBP; Gowal et al. 2018, "On the effectiveness of interval
+bound propagation for training verifiably robust models" — cited from memory) of the table's
+rounding error through the network. Each activation is relaxed to its Lipschitz constant 1
+(ReLU and tanh are 1-Lipschitz), so the bound is linear in the per-text table error δ:
+
+    |logits_packed − logits_float| ≤ b = δ · g + c        (per class, per text)
+
+  r_t   radius of table row t: every dequantised element lies within r_t of the exact float
+        element (the embedding row, or the row of E·W1ᵀ when the first layer is folded in)
+  δ     (1/n) Σ_k r_{t_k} over the text's n tokens, plus the float32 rounding of both means
+  g     |W_L| ··· |W_2| (|W_1| 1), or |W_L| ··· |W_2| 1 when W_1 is folded into the table
+  c     float32 rounding of every later layer in both computations (same for all texts)
+
+The bound holds both ways, so a prediction is certified from the PACKED logits alone:
+z'_top − z'_c > b_top + b_c for every other class c  ⇒  the float model's top class is the same.
+
+float32 rounding, derived with the standard bound for a computed dot product or sum of k terms,
+|fl(Σ x_i y_i) − Σ x_i y_i| ≤ γ_k Σ |x_i y_i|, γ_k = k·u / (1 − k·u), u = 2⁻²⁴ (Higham, "Accuracy
+and Stability of Numerical Algorithms", 2nd ed., §3.1; from memory). It holds for any summation
+order, with or without fused multiply-add, so it covers numpy's BLAS and onnxruntime's kernels.
+Every term is listed where it is computed below; README-level summary:
+  * quantiser: q = rint(fl(x/s)) misses x/s by at most 1/2 + 128u, so r_t = (1/2 + 2⁻¹⁶)·s_t;
+  * masked means (packed and float): γ_{n+2} · (1/n) Σ (|packed row| + |float row|) per coordinate;
+  * each Gemm + bias, in both computations: γ_{in+1} (|W| |a| + |b|), with |a| bounded per layer;
+  * tanh: at most TANH_ERROR absolute per element in either backend (measured; see the tests);
+  * a folded table also carries the float32 rounding of E·W1ᵀ and, on the float side, of the
+    first matmul W1·mean(E): both are at most γ_k Σ_d |W1_hd| |E_td|, a quantity the bundle does
+    not hold. The runtime assumes Σ_d |W1_hd| |E_td| ≤ FOLD_MASS_STEPS · s_t for every kept row;
+    packer/bound.py verifies this premise on the actual rows and reports any row that breaks it.
+Not covered: tokens the bundle does not know (pruned or unknown) and tokens mapped to its
+out-of-vocabulary row. Texts holding one are never certified.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+
+from .bundle import Bundle
+from .encode import Encoder
+from .errors import BundleError
+from .forward import encode_batch
+
+U = 2.0**-24  # unit roundoff of float32, round to nearest (IEEE 754 binary32: 24-bit significand)
+HALF_STEP = 0.5 + 2.0**-16  # radius of int8 rounding in steps: 1/2, plus ≥ 128u for fl(x/s) (see module doc)
+FOLD_MASS_STEPS = 4096.0  # assumed bound on Σ_d |W1_hd||E_td| per folded row, in steps (≈ 32 × its largest entry)
+TANH_ERROR = 2.0**-20  # absolute error allowed per float32 tanh (measured worst: numpy 1u, onnxruntime 5.5u)
+INFLATE = 1.0 + 2.0**-20  # covers the float64 rounding of this module's own arithmetic (far below 2⁻⁴⁰ relative)
+
+
+def gamma(k):
+    """γ_k = k·u / (1 − k·u) for float32; infinite where k·u ≥ 1 (no bound). Scalar or array."""
+    k = np.asarray(k, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(k * U < 1.0, k * U / (1.0 - k * U), np.inf)
+
+
+@dataclass(frozen=True)
+class DriftBound:
+    """What the per-text bound needs, computed once from a bundle's tensors (linear in δ)."""
+
+    radius: np.ndarray  # (R,) float64: r_t, table-space radius of row t
+    spread: np.ndarray  # (R,) float64: bound on |packed row| + |float row| elements (for the means' rounding)
+    fold_mass: np.ndarray  # (R,) float64: bound on Σ_d |W1_hd||E_td| (folded tables; zeros otherwise)
+    fold_terms: int  # D + 1: terms of the float side's first matmul (0 when not folded)
+    gain: np.ndarray  # (C,) float64: g = |W_L| ··· (|W_1| 1)
+    allowance: np.ndarray  # (C,) float64: c, float32 rounding of the layers in both computations
+    certifiable: np.ndarray  # (R,) bool: False for the out-of-vocabulary / pruned-rest row
+    max_tokens: int  # the tokenizer's cap on n
+
+
+def read_steps(bundle: Bundle) -> np.ndarray:
+    """(R,) float64 quantisation step per row: the int8 scale, or max|row|/127 for a float32 table."""
+    table = bundle.tensors["table"]  # (R, W)
+    if bundle.manifest["table"]["dtype"] == "int8":
+        return bundle.tensors["scales"].astype(np.float64)  # (R,)
+    return np.abs(table).max(axis=1).astype(np.float64) / 127.0  # (R,)
+
+
+def _row_magnitude(bundle: Bundle, steps: np.ndarray) -> np.ndarray:
+    """(R,) largest |element| of each dequantised row (computed with the steps the bound uses)."""
+    table = bundle.tensors["table"]  # (R, W)
+    if bundle.manifest["table"]["dtype"] == "int8":
+        return np.abs(table.astype(np.int16)).max(axis=1).astype(np.float64) * steps  # int16: |−128| fits
+    return np.abs(table).max(axis=1).astype(np.float64)
+
+
+def _embedding_dim(bundle: Bundle) -> int:
+    source = bundle.manifest.get("source")
+    dim = source.get("embedding_dim") if isinstance(source, dict) else None
+    if not isinstance(dim, int) or isinstance(dim, bool) or dim < 1:
+        raise BundleError(f"manifest field 'source.embedding_dim' is {dim!r}, expected a positive integer; "
+                          "a folded bundle needs it to certify predictions: repack with `danpack pack`")
+    return dim
+
+
+def _layers(bundle: Bundle) -> list[tuple[np.ndarray | None, np.ndarray, str | None]]:
+    t = bundle.tensors
+    return [(t.get(f"layer.{i}.weight") if spec["weight"] else None, t[f"layer.{i}.bias"], spec["activation"])
+            for i, spec in enumerate(bundle.manifest["layers"])]
+
+
+def drift_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
+                min_fold_mass: np.ndarray | None = None) -> DriftBound:
+    """Row radii, gain and float32 allowance of a bundle (well under a second for a 400k-row table).
+
+    `min_radius` / `min_fold_mass` (R,): per-row values measured by the packer against the float
+    model; the bound then uses the larger of assumed and measured (the device never passes them).
+    """
+    steps = read_steps(bundle)  # (R,)
+    magnitude = _row_magnitude(bundle, steps)  # (R,)
+    quantized = bundle.manifest["table"]["dtype"] == "int8"
+    layers = _layers(bundle)
+    folded = layers[0][0] is None
+    max_tokens = int(bundle.tokenizer.max_tokens)
+    rows = steps.shape[0]
+
+    # 1. per-row terms, in table space
+    fold_terms = _embedding_dim(bundle) + 1 if folded else 0
+    fold_mass = FOLD_MASS_STEPS * steps if folded else np.zeros(rows)  # (R,)
+    # |dequantised − exact|: int8 rounding, plus the float32 rounding of E·W1ᵀ (≤ γ_D Σ|W1||E|) when folded
+    radius = (HALF_STEP * steps if quantized else np.zeros(rows)) + gamma(max(fold_terms - 1, 0)) * fold_mass
+    if min_fold_mass is not None:
+        fold_mass = np.maximum(fold_mass, min_fold_mass)
+    if min_radius is not None:
+        radius = np.maximum(radius, min_radius)
+    spread = 2.0 * magnitude + radius  # |packed row| ≤ magnitude, |float row| ≤ magnitude + radius
+    certifiable = np.ones(rows, dtype=bool)
+    if bundle.oov_row is not None:
+        certifiable[bundle.oov_row] = False
+
+    # 2. bound on |mean| for both computations (feeds the first layer's rounding)
+    # packed |mean| ≤ max magnitude; float |mean| ≤ max (magnitude + radius), or after W1 (folded) + its rounding
+    worst_row = (magnitude + 2.0 * radius + gamma(max_tokens + fold_terms) * fold_mass)[certifiable]
+    mean_bound = float(worst_row.max() if worst_row.size else 0.0) * (1.0 + float(gamma(max_tokens + 2)))
+
+    # 3. allowance c, layer by layer; e is the rounding error carried, m the |activation| bound
+    width = bundle.tensors["table"].shape[1]
+    e = np.zeros(width)  # (W,)
+    m = np.full(width, mean_bound)  # (W,)
+    for weight, bias, activation in layers:
+        b = np.abs(bias.astype(np.float64))  # (out,)
+        if weight is not None:
+            w = np.abs(weight.astype(np.float64))  # (out, in)
+            k = float(gamma(w.shape[1] + 1))  # one dot product of `in` terms plus the bias
+            mass = w @ m + b  # (out,): bound on Σ|W||a| + |b|
+            e = w @ e + 2.0 * k * mass  # two computations (packed, float), each rounded once
+        else:  # folded first layer: only the bias add is computed at run time (the matmul is in the table)
+            k = float(gamma(1))
+            mass = m + b
+            e = e + 2.0 * k * mass
+        m = (1.0 + k) * mass
+        if activation == "tanh":  # 1-Lipschitz; each backend's tanh may miss by TANH_ERROR
+            e = e + 2.0 * TANH_ERROR
+            m = np.minimum(m, 1.0 + TANH_ERROR)
+        # relu: 1-Lipschitz and exact in float32; e and m carry over unchanged
+    return DriftBound(radius, spread, fold_mass, fold_terms, gain_vector(layers), e * INFLATE, certifiable, max_tokens)
+
+
+def gain_vector(layers: list[tuple[np.ndarray | None, np.ndarray, str | None]]) -> np.ndarray:
+    """(C,) g: the largest Σ_j |∂z_c/∂x_j| over every activation pattern, so |Δz_c| ≤ δ·g_c for |Δx| ≤ δ.
+
+    The map from the mean x to the logits is W_L D_{L−1} W_{L−1} ··· D_1 W_1 with each D_l diagonal and
+    its entries in [0, 1] (the slope of a 1-Lipschitz non-decreasing activation between two points:
+    ReLU, tanh). The rows of that product are bounded by interval arithmetic, from the logits back to
+    the table. Never larger than |W_L| ··· |W_1| 1, and equal to it in the worst case.
+    """
+    weight = layers[-1][0].astype(np.float64)  # (C, H)
+    lo, hi = weight.copy(), weight.copy()  # (C, H): interval of each Jacobian entry
+    for weight, _, activation in reversed(layers[:-1]):
+        if activation is not None:  # × D: a slope in [0, 1] widens each interval to include 0
+            lo, hi = np.minimum(lo, 0.0), np.maximum(hi, 0.0)
+        if weight is not None:  # × W: interval times a matrix of exact numbers
+            pos, neg = np.maximum(weight, 0.0).astype(np.float64), np.minimum(weight, 0.0).astype(np.float64)
+            lo, hi = lo @ pos + hi @ neg, hi @ pos + lo @ neg  # (C, in)
+    return np.maximum(np.abs(lo), np.abs(hi)).sum(axis=1)  # (C,): worst |row| · 1 over the box
+
+
+def text_deltas(bound: DriftBound, ids: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """(B, T) ids, (B,) counts -> (B,) δ: the table-space drift of each text's mean, float32 rounding included."""
+    mask = np.arange(ids.shape[1])[None, :] < counts[:, None]  # (B, T)
+    n = np.maximum(counts, 1).astype(np.float64)  # (B,)
+    radius = np.where(mask, bound.radius[ids], 0.0).sum(axis=1) / n  # (B,)
+    spread = np.where(mask, bound.spread[ids], 0.0).sum(axis=1) / n  # (B,)
+    delta = radius + gamma(counts + 2) * spread  # both means: n products and sums, one division
+    if bound.fold_terms:  # float side: mean of E (n terms) then W1· (D terms, plus bias), per unit of fold mass
+        mass = np.where(mask, bound.fold_mass[ids], 0.0).sum(axis=1) / n  # (B,)
+        delta = delta + gamma(counts + bound.fold_terms) * mass
+    return np.where(counts > 0, delta, 0.0)  # no tokens: both means are exactly zero
+
+
+def logit_bounds(bound: DriftBound, ids: np.ndarray, counts: np.ndarray) -> np.ndarray:
+    """(B, T) ids, (B,) counts -> (B, C) bound on |logits_packed − logits_float| per text and class."""
+    delta = text_deltas(bound, ids, counts)  # (B,)
+    return (delta[:, None] * bound.gain[None, :] + bound.allowance[None, :]) * INFLATE  # (B, C)
+
+
+def encode_kept(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) bool: every token has its own row)."""
+    index, oov, tokenize = encoder.index, encoder.oov_id, encoder.tokenizer.tokenize
+    id_lists, kept = [], np.ones(len(texts), dtype=bool)
+    for i, text in enumerate(texts):
+        rows = [index.get(token) for token in tokenize(text)]
+        if any(r is None or r == oov for r in rows):  # pruned, unknown, or on the out-of-vocabulary row
+            kept[i] = False
+            rows = [oov if r is None else r for r in rows] if oov is not None else [r for r in rows if r is not None]
+        id_lists.append(rows)
+    ids, counts = encode_batch(id_lists)
+    return ids, counts, kept
+
+
+def certify_margins(logits: np.ndarray, bounds: np.ndarray) -> np.ndarray:
+    """(B, C) logits and (B, C) bounds -> (B,) bool: the top class beats every other by more than both bounds."""
+    z = logits.astype(np.float64)  # differences of float32 values: exact in float64, or within 2⁻⁵³ ≪ the allowance
+    top = z.argmax(axis=1)  # (B,)
+    rows = np.arange(z.shape[0])
+    margin = z[rows, top][:, None] - z  # (B, C)
+    need = bounds[rows, top][:, None] + bounds  # (B, C)
+    ok = (margin > need) | (np.arange(z.shape[1])[None, :] == top[:, None])
+    return ok.all(axis=1) & np.isfinite(bounds).all(axis=1)
+
+
+def certify_packed(bound: DriftBound, logits: np.ndarray, ids: np.ndarray, counts: np.ndarray,
+                   kept: np.ndarray) -> np.ndarray:
+    """(B,) bool from the packed logits: True where the float model provably predicts the same class."""
+    in_rows = np.where(np.arange(ids.shape[1])[None, :] < counts[:, None], bound.certifiable[ids], True).all(axis=1)
+    return kept & in_rows & certify_margins(logits, logit_bounds(bound, ids, counts))
