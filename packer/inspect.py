@@ -25,7 +25,7 @@ def size_breakdown(bundle: Bundle) -> dict[str, int]:
 def describe_bundle(bundle: Bundle) -> dict:
     """A JSON-ready description for `danpack inspect`."""
     manifest = {k: v for k, v in bundle.manifest.items() if k != "probe"}
-    return {
+    info = {
         "sha256": bundle.sha256,
         "bytes": bundle.size,
         "labels": list(bundle.labels),
@@ -33,6 +33,11 @@ def describe_bundle(bundle: Bundle) -> dict:
         "breakdown": size_breakdown(bundle),
         "manifest": manifest,
     }
+    if bundle.manifest["table"]["dtype"] == "int8":
+        from .bound import worst_case_bound
+
+        info["drift_bound"] = worst_case_bound(bundle)
+    return info
 
 
 def export_onnx(bundle: Bundle) -> onnx.ModelProto:

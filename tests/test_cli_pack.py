@@ -112,7 +112,9 @@ def test_inspect_human(packed):
     result = invoke("inspect", out)
     assert result.exit_code == 0, result.stderr
     fields = {line.split()[0]: line.split(None, 1)[1] for line in result.stdout.splitlines()}
-    assert list(fields) == ["bundle", "sha256", "size", "labels", "table", "layers", "pruned", "source", "packer", "bytes"]
+    assert list(fields) == ["bundle", "sha256", "size", "labels", "table", "layers", "pruned", "source", "packer", "bytes",
+                            "bound"]
+    assert "cannot be changed by quantisation" in result.stdout  # the drift bound's guaranteed-safe margin
     assert fields["bundle"] == str(out)
     assert fields["sha256"] == _payload_sha(out)
     assert f"({out.stat().st_size:,} bytes)" in fields["size"]

@@ -11,6 +11,7 @@ import typer
 from runtime import read_bundle
 from runtime.errors import DanpackError
 
+from ..bound import describe_bound
 from ..inspect import describe_bundle, export_onnx
 from ..files import write_atomic
 from ..pack import PackOptions, pack_model
@@ -109,6 +110,9 @@ def inspect_command(
                f"{human_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
     typer.echo(f"packer   {m['packer']}")
     typer.echo("bytes    " + ", ".join(f"{k} {human_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
+    if "drift_bound" in info:
+        for line in describe_bound(info["drift_bound"]):
+            typer.echo(f"bound    {line}")
 
 
 @app.command("export-onnx")

@@ -1,0 +1,328 @@
+"""`danpack-run BUNDLE [INPUT|-]`: classify a stream of texts on the device, one answer per input line.
+
+A Unix filter: plain lines or JSONL in, JSONL or TSV out, in input order, one output record per input
+record, always. Records are classified in micro-batches that are answered early when the input pauses,
+so an interactive pipe gets each answer at once and a file gets full batches. A record that cannot be
+classified (bad bytes, bad JSON, no text, an overlong line) gets an error record in its place and the
+stream goes on. `classify_stream` is the library function; `main` only parses options and calls it.
+"""
+
+from __future__ import annotations
+
+import argparse
+import signal
+import sys
+import threading
+import time
+from contextlib import contextmanager
+from dataclasses import dataclass
+from typing import BinaryIO
+
+from .backends import BACKENDS
+from .classifier import Classifier, load
+from .errors import DanpackError
+from .stream_lines import read_batches
+from .stream_records import JsonlFormatter, TsvFormatter, make_parser
+
+PROG = "danpack-run"
+FORMATS = ("jsonl", "tsv")
+EXIT_OK, EXIT_RECORD_ERRORS, EXIT_USAGE = 0, 1, 2
+EXIT_SIGPIPE = 128 + signal.SIGPIPE  # what a shell reports for a filter whose reader went away (141)
+EXIT_SIGINT = 128 + signal.SIGINT  # what a shell reports after Ctrl-C (130)
+
+
+class StreamError(DanpackError):
+    """Stream options that cannot be honoured (batch size 0, top-k past the label count, ...)."""
+
+
+@dataclass(frozen=True)
+class StreamConfig:
+    """How `classify_stream` reads and writes records."""
+
+    jsonl: bool = False  # each input line is a JSON object (else each line is the text itself)
+    text_field: str = "text"  # JSONL field holding the text; every other field passes through
+    id_field: str | None = None  # JSONL field shown in the TSV id column (None: no id column)
+    output: str = "jsonl"  # "jsonl" or "tsv"
+    top_k: int | None = None  # only the k most probable labels (None: all labels in JSONL, the best in TSV)
+    header: bool = False  # TSV: write a header line first
+    batch: int = 64  # most records per classifier call (amortises the per-call cost)
+    max_wait_ms: float = 5.0  # answer a partial batch once its oldest line waited this long for company
+    max_line_bytes: int = 1 << 20  # longer lines become error records; their bytes are skipped, not held
+    classify_empty: bool = False  # plain text: classify an empty line as "" instead of an error record
+
+    def __post_init__(self) -> None:
+        def positive(name: str, value) -> None:
+            if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+                raise StreamError(f"stream option {name} must be an integer >= 1, found {value!r}")
+
+        positive("batch", self.batch)
+        positive("max_line_bytes", self.max_line_bytes)
+        if self.top_k is not None:
+            positive("top_k", self.top_k)
+        if not self.max_wait_ms >= 0:
+            raise StreamError(f"stream option max_wait_ms must be >= 0, found {self.max_wait_ms!r}")
+        if self.output not in FORMATS:
+            raise StreamError(f"output format {self.output!r} is not one of {FORMATS}")
+        if self.id_field is not None and (not self.jsonl or self.output != "tsv"):
+            raise StreamError("an id column exists only for JSONL input shown as TSV (--jsonl --format tsv)")
+        if self.id_field is not None and self.id_field == self.text_field:
+            raise StreamError(f"the id field and the text field are both {self.id_field!r}; name two different fields")
+        if self.header and self.output != "tsv":
+            raise StreamError("a header line exists only for TSV output (--format tsv)")
+
+
+@dataclass(frozen=True)
+class StreamStats:
+    """What a stream did: records in (= records out), error records among them, batches, wall time."""
+
+    records: int
+    errors: int
+    batches: int
+    seconds: float
+
+    @property
+    def lines_per_second(self) -> float:
+        return self.records / self.seconds if self.seconds > 0 else 0.0
+
+
+class StreamInterrupted(KeyboardInterrupt):
+    """Ctrl-C during a stream: every answered record was written; `stats` counts them."""
+
+    def __init__(self, stats: StreamStats) -> None:
+        super().__init__("interrupted")
+        self.stats = stats
+
+
+@contextmanager
+def _sigint_held():
+    """Hold Ctrl-C back while a batch is written and counted, so it never cuts a record in half.
+
+    A Python-level handler, not a thread signal mask: the kernel may hand SIGINT to any thread
+    (onnxruntime's, the BLAS pool's), and Python then interrupts the main thread all the same.
+    """
+    if threading.current_thread() is not threading.main_thread():  # only the main thread gets SIGINT
+        yield
+        return
+    caught: list[int] = []
+    previous = signal.signal(signal.SIGINT, lambda signum, frame: caught.append(signum))
+    try:
+        yield
+    finally:
+        signal.signal(signal.SIGINT, previous)
+        if caught:  # a Ctrl-C that came meanwhile takes effect now, after the batch is out
+            if callable(previous):
+                previous(signal.SIGINT, None)
+            elif previous == signal.SIG_DFL:
+                signal.raise_signal(signal.SIGINT)
+
+
+def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
+                    config: StreamConfig = StreamConfig()) -> StreamStats:
+    """Classify every line of `source` into `sink` (both binary); returns the counts.
+
+    Raises StreamInterrupted on Ctrl-C (after writing every answered batch) and lets OSError from the
+    sink (BrokenPipeError when the reader went away) propagate.
+    """
+    if config.top_k is not None and config.top_k > len(classifier.labels):
+        raise StreamError(f"top-k {config.top_k} is more than the bundle's {len(classifier.labels)} labels "
+                          f"({', '.join(classifier.labels)})")
+    parse = make_parser(config.jsonl, config.text_field, config.max_line_bytes, config.classify_empty)
+    if config.output == "tsv":
+        formatter = TsvFormatter(classifier.labels, config.top_k, config.id_field, config.header)
+    else:
+        formatter = JsonlFormatter(classifier.labels, config.top_k)
+    start = time.perf_counter()
+    records = errors = batches = 0
+
+    def stats() -> StreamStats:
+        return StreamStats(records, errors, batches, time.perf_counter() - start)
+
+    try:
+        if formatter.header:
+            with _sigint_held():
+                sink.write(formatter.header)
+        for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes):
+            parsed = [parse(raw, records + i) for i, raw in enumerate(lines, start=1)]
+            texts = [p[1] for p in parsed if p[3] is None]
+            probs = classifier.predict_proba(texts) if texts else None  # (N, C)
+            data = formatter.format(parsed, probs)
+            with _sigint_held():  # one write and one flush per batch
+                sink.write(data)
+                sink.flush()
+                records += len(parsed)
+                errors += len(parsed) - len(texts)
+                batches += 1
+    except KeyboardInterrupt:
+        raise StreamInterrupted(stats()) from None
+    return stats()
+
+
+# --- command line --------------------------------------------------------------------------------
+
+DESCRIPTION = "Classify texts with a danpack bundle: one answer per input line, in input order."
+
+EPILOG = """\
+output records (JSONL, the default):
+  {"line":3,"id":"c-17","label":"positive","probs":{"negative":0.07,"positive":0.93}}
+  "line" is the 1-based input line; other JSONL input fields pass through after it (an input field
+  named line, label, probs or error comes out as input_<name>); "probs" lists every label in label
+  order, or with --top-k the k most probable, most probable first. Probabilities are float32 written
+  in the shortest form that reads back as the same float32.
+  A record that cannot be classified gets, in its place: {"line":4,"error":"reason"}
+  (plus its passthrough fields when it was a JSON object).
+
+output records (--format tsv):
+  columns line, [id: with --jsonl, the --id-field value], label, probability,
+  [label_2, probability_2 ... with --top-k], error;
+  an error row leaves label and probability empty; tab, newline, CR and backslash inside a value
+  are written as \\t \\n \\r \\\\.
+
+error records, one per bad input line:
+  empty line; line longer than --max-line-bytes (skipped without being held in memory); a NUL byte
+  (binary data, never a comment); bytes that are not UTF-8; and with --jsonl: invalid JSON (also
+  NaN / Infinity, numbers out of range, nesting too deep), a JSON value that is not an object, a
+  missing text field, a text field that is not a string or holds U+0000. Lines end at LF; one CR
+  before it is dropped (CRLF files); a UTF-8 byte order mark at the start of the input is dropped.
+  A line of spaces is classified (it has no tokens), and so is an empty JSONL text "".
+
+exit status:
+  0 every record was classified (or --lenient); 1 some record got an error record;
+  2 bad usage or unreadable bundle/input; 130 interrupted (Ctrl-C) after writing every answered
+  record; 141 the reader of the output went away (as `| head` does).
+"""
+
+
+def _version() -> str:
+    try:
+        from importlib.metadata import version
+
+        return version("danpack")
+    except Exception:  # not installed as a distribution (e.g. run from a source tree)
+        return "unknown"
+
+
+def _positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected an integer >= 1, found {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected an integer >= 1, found {text!r}")
+    return value
+
+
+def _non_negative_float(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number >= 0, found {text!r}") from None
+    if not value >= 0 or value == float("inf"):
+        raise argparse.ArgumentTypeError(f"expected a finite number >= 0, found {text!r}")
+    return value
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The option parser of danpack-run."""
+    p = argparse.ArgumentParser(prog=PROG, description=DESCRIPTION, epilog=EPILOG,
+                                formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("bundle", metavar="BUNDLE", help="bundle file written by `danpack pack`")
+    p.add_argument("input", metavar="INPUT", nargs="?", default="-",
+                   help="file of texts, one per line; '-' or nothing reads standard input")
+    p.add_argument("--jsonl", action="store_true",
+                   help="each input line is a JSON object whose text field is classified; other fields pass through")
+    p.add_argument("--text-field", metavar="NAME", default=None,
+                   help="JSONL field holding the text (default: text; needs --jsonl)")
+    p.add_argument("--id-field", metavar="NAME", default=None,
+                   help="JSONL field shown as the second TSV column (default: id; needs --jsonl and --format tsv)")
+    p.add_argument("--format", choices=FORMATS, default="jsonl",
+                   help="output: one JSON object per line (default) or tab-separated columns")
+    p.add_argument("--header", action="store_true", help="TSV: write a header line naming the columns")
+    p.add_argument("--top-k", metavar="K", type=_positive_int, default=None,
+                   help="only the K most probable labels (JSONL: in probs; TSV: K label/probability column pairs)")
+    p.add_argument("--backend", choices=BACKENDS, default="onnxruntime",
+                   help="onnxruntime (default) or the pure numpy forward pass")
+    p.add_argument("--threads", metavar="N", type=_positive_int, default=1,
+                   help="onnxruntime intra-op threads (default: 1, right for a small board)")
+    p.add_argument("--batch", metavar="N", type=_positive_int, default=StreamConfig.batch,
+                   help=f"most records per classifier call (default: {StreamConfig.batch})")
+    p.add_argument("--max-wait-ms", metavar="MS", type=_non_negative_float, default=StreamConfig.max_wait_ms,
+                   help="answer a partial batch when the input pauses this long "
+                        f"(default: {StreamConfig.max_wait_ms:g}; 0 answers whatever has arrived)")
+    p.add_argument("--max-line-bytes", metavar="N", type=_positive_int, default=StreamConfig.max_line_bytes,
+                   help=f"longer lines get an error record and are skipped (default: {StreamConfig.max_line_bytes})")
+    p.add_argument("--classify-empty", action="store_true",
+                   help="classify an empty line as the empty text instead of giving it an error record")
+    p.add_argument("--lenient", action="store_true", help="exit 0 even when some records got error records")
+    p.add_argument("--verbose", action="store_true",
+                   help="print a summary to stderr at the end: records, errors, lines per second")
+    p.add_argument("--version", action="version", version=f"{PROG} {_version()}")
+    return p
+
+
+def _config_from_args(parser: argparse.ArgumentParser, args: argparse.Namespace) -> StreamConfig:
+    if args.text_field is not None and not args.jsonl:
+        parser.error("--text-field names a JSONL field: add --jsonl")
+    id_field = args.id_field
+    if id_field is None and args.jsonl and args.format == "tsv":
+        id_field = "id"  # JSONL input shown as TSV keeps an id column
+    try:
+        return StreamConfig(jsonl=args.jsonl, text_field="text" if args.text_field is None else args.text_field,
+                            id_field=id_field, output=args.format, top_k=args.top_k, header=args.header,
+                            batch=args.batch, max_wait_ms=args.max_wait_ms, max_line_bytes=args.max_line_bytes,
+                            classify_empty=args.classify_empty)
+    except StreamError as e:
+        parser.error(str(e))
+
+
+def _say(message: str) -> None:
+    print(f"{PROG}: {message}", file=sys.stderr, flush=True)
+
+
+def _summary(stats: StreamStats, note: str = "") -> None:
+    _say(f"{stats.records:,} records, {stats.errors:,} errors, {stats.batches:,} batches, "
+         f"{stats.seconds:.2f} s, {stats.lines_per_second:,.0f} lines/s{note}")
+
+
+def _run(argv: list[str] | None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    config = _config_from_args(parser, args)
+    try:
+        source = sys.stdin.buffer if args.input == "-" else open(args.input, "rb")
+    except OSError as e:
+        _say(f"error: cannot open input {args.input}: {e.strerror or e}")
+        return EXIT_USAGE
+    try:
+        try:
+            classifier = load(args.bundle, backend=args.backend, threads=args.threads)
+            stats = classify_stream(classifier, source, sys.stdout.buffer, config)
+        except DanpackError as e:  # an unreadable bundle, or options the bundle cannot honour (--top-k)
+            _say(f"error: {e}")
+            return EXIT_USAGE
+        except StreamInterrupted as e:
+            if args.verbose:
+                _summary(e.stats, " (interrupted)")
+            return EXIT_SIGINT
+        except BrokenPipeError:  # the reader went away (`| head`): stop quietly, as a filter killed by SIGPIPE
+            return EXIT_SIGPIPE
+        except OSError as e:  # an input that fails to read, an output that fails to write (disk full)
+            _say(f"error: {e}")
+            return EXIT_USAGE
+    finally:
+        if source is not sys.stdin.buffer:
+            source.close()
+    if args.verbose:
+        _summary(stats)
+    return EXIT_OK if stats.errors == 0 or args.lenient else EXIT_RECORD_ERRORS
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the `danpack-run` console script; returns the exit status."""
+    try:
+        return _run(argv)
+    except KeyboardInterrupt:  # Ctrl-C while loading, before any record was read
+        return EXIT_SIGINT
+
+
+if __name__ == "__main__":
+    sys.exit(main())
