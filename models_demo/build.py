@@ -1,0 +1,135 @@
+"""Build the demo models from their seeds: the shipped ones, byte for byte, or GloVe ones on demand.
+
+    python -m models_demo.build                      # rewrite models_demo/shipped/{sentiment,topic}
+    python -m models_demo.build --check              # rebuild in a temp dir, compare bytes with shipped/
+    python -m models_demo.build --regime finetune --task sentiment --out DIR   # DIR/sentiment (~80 MB)
+
+The data come from `models_demo.scenario` (seed DEFAULT_SEED, default sizes); the training
+run from the `TrainConfig` below. Rebuilding on the same kind of machine gives the same
+bytes (numpy picks SIMD kernels per CPU, so another CPU may differ in the last bits).
+"""
+
+from __future__ import annotations
+
+import filecmp
+import sys
+import tempfile
+import time
+from dataclasses import replace
+from pathlib import Path
+
+import typer
+
+from packer.model import FloatModel, model_bytes, save_model
+
+from . import scenario
+from .glove import Pretrained
+from .trainer import TrainConfig, TrainError, evaluate, train_model
+
+SHIPPED_DIR = Path(__file__).resolve().parent / "shipped"
+MODEL_FILES = ("config.json", "vocab.txt", "weights.safetensors")
+
+# The demo models' training runs. Hidden layers narrower than the 50-wide table, so the
+# packer can fold the first layer into the table.
+CONFIGS: dict[str, TrainConfig] = {
+    "random": TrainConfig(regime="random", hidden_sizes=(32,), seed=11),
+    # frozen vectors need a wider layer to make up for the table that cannot adapt
+    "fixed": TrainConfig(regime="fixed", hidden_sizes=(256,), word_dropout=0.0, seed=11),
+    "finetune": TrainConfig(regime="finetune", hidden_sizes=(32,), seed=11),
+}
+
+
+def build_model(
+    task: str,
+    regime: str = "random",
+    data_seed: int = scenario.DEFAULT_SEED,
+    sizes: scenario.ScenarioSizes = scenario.ScenarioSizes(),
+    config: TrainConfig | None = None,
+    pretrained: Pretrained | None = None,
+    log=None,
+) -> FloatModel:
+    """Generate the task's data, train, measure test accuracy; all of it goes into the metadata."""
+    if task not in scenario.TASKS:
+        raise TrainError(f"task {task!r} is not one of {sorted(scenario.TASKS)}")
+    if config is None:
+        if regime not in CONFIGS:
+            raise TrainError(f"regime {regime!r} is not one of {sorted(CONFIGS)}")
+        config = CONFIGS[regime]
+    train = scenario.generate_split(task, "train", sizes.train, data_seed)
+    dev = scenario.generate_split(task, "dev", sizes.dev, data_seed)
+    test = scenario.generate_split(task, "test", sizes.test, data_seed)
+    model = train_model(config, train, dev, scenario.TASKS[task], pretrained=pretrained, log=log)
+    metadata = {
+        "task": task,
+        "scenario": "drivers' comments on public EV chargers (invented demo data)",
+        "data": {"generator": "models_demo.scenario", "generator_version": scenario.GENERATOR_VERSION,
+                 "seed": data_seed, "sizes": {"train": sizes.train, "dev": sizes.dev, "test": sizes.test}},
+        **model.metadata,
+        "test_comments": len(test),
+        "test_accuracy": round(evaluate(model, test), 6),
+        "rebuild": f"python -m models_demo.build --task {task} --regime {config.regime}",
+    }
+    return replace(model, metadata=metadata)
+
+
+def write_model(model: FloatModel, model_dir: Path) -> Path:
+    """Save with safetensors weights (npz embeds zip timestamps, so it is not byte-stable)."""
+    return save_model(model, model_dir, weights_format="safetensors")
+
+
+def differing_files(a: Path, b: Path) -> list[str]:
+    """Names of the model files that differ between two model directories."""
+    return [n for n in MODEL_FILES if not ((a / n).exists() and (b / n).exists() and filecmp.cmp(a / n, b / n, shallow=False))]
+
+
+cli = typer.Typer(add_completion=False, pretty_exceptions_show_locals=False)
+
+
+@cli.command()
+def build_command(
+    task: str = typer.Option("all", "--task", help="sentiment, topic or all."),
+    regime: str = typer.Option("random", "--regime", help="random (shipped), fixed or finetune (GloVe)."),
+    out: Path | None = typer.Option(None, "--out", help="Parent directory: each model goes to OUT/<task>. "
+                                    "Default for the random regime: models_demo/shipped."),
+    data_seed: int = typer.Option(scenario.DEFAULT_SEED, "--data-seed", help="Seed of the scenario data."),
+    check: bool = typer.Option(False, "--check", help="Rebuild in a temp dir and compare bytes with OUT."),
+) -> None:
+    """Train the demo models from their seeds and write them (or check them)."""
+    tasks = list(scenario.TASKS) if task == "all" else [task]
+    if regime not in CONFIGS or any(t not in scenario.TASKS for t in tasks):
+        print(f"error: --task must be one of {sorted(scenario.TASKS)} or 'all', --regime one of {sorted(CONFIGS)}",
+              file=sys.stderr)
+        raise typer.Exit(code=2)
+    if out is None and regime != "random":
+        print("error: GloVe models hold a 400,000-row table (~80 MB) and are never shipped; pass --out DIR",
+              file=sys.stderr)
+        raise typer.Exit(code=2)
+    target = out if out is not None else SHIPPED_DIR
+    pretrained = None
+    if regime != "random":
+        from .glove import load_glove
+
+        pretrained = load_glove()
+    failed = []
+    with tempfile.TemporaryDirectory(prefix="danpack-build-") as scratch:
+        for name in tasks:
+            started = time.perf_counter()
+            model = build_model(name, regime, data_seed, pretrained=pretrained)
+            seconds = time.perf_counter() - started
+            dest = (Path(scratch) if check else target) / name
+            write_model(model, dest)
+            meta = model.metadata
+            print(f"{name} ({regime}): dev {meta['dev_accuracy']:.4f}  test {meta['test_accuracy']:.4f}  "
+                  f"{len(model.vocab)} rows  {model_bytes(dest)} bytes  trained in {seconds:.1f} s", file=sys.stderr)
+            if check:
+                differ = differing_files(dest, target / name)
+                print(f"{target / name}\t{'identical' if not differ else 'DIFFERS: ' + ', '.join(differ)}")
+                failed += differ
+            else:
+                print(dest)
+    if failed:
+        raise typer.Exit(code=1)
+
+
+if __name__ == "__main__":
+    cli()
