@@ -1,0 +1,545 @@
+"""`danpack check` figures: the packed bundle against its float original on one evaluation set.
+
+Both models classify the same texts: the float original through the reference numpy
+forward pass over its full float32 vocabulary, the bundle through `runtime.load`. The
+figures are a flat dict (`CheckResult.figures`, keys described in `FIGURES`), so a later
+figure is one more key and one more line in `FIGURES`. docs/check.md defines each figure.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+import numpy as np
+
+import runtime
+from runtime.errors import DanpackError
+
+from .model import FloatModel, load_model, model_bytes, model_digest
+from .progress import Steps
+from .quantize import dequantize_rows
+from .textfile import iter_records
+
+if TYPE_CHECKING:
+    from .latency import LatencyOptions
+
+KL_EPSILON = 1e-12  # added to both distributions before the log: keeps KL finite when a probability underflows
+DEFAULT_LABEL_FIELD = "label"  # the label field looked for when --label-field is not given
+
+
+class CheckError(DanpackError):
+    """Inputs of a check that do not fit together (unknown label, bundle of other labels, empty set, ...)."""
+
+
+@dataclass(frozen=True)
+class FigureInfo:
+    """How a figure is named and shown."""
+
+    title: str  # short human name
+    unit: str  # share (0..1, shown as %), points, count, bytes, ratio, ms, rate, prob, nats, p
+
+
+# Every figure of `CheckResult.figures`; None in the dict means "not measured" (no labels, --no-latency).
+FIGURES: dict[str, FigureInfo] = {
+    "texts": FigureInfo("texts evaluated", "count"),
+    "accuracy_float": FigureInfo("accuracy of the float original", "share"),
+    "accuracy_packed": FigureInfo("accuracy of the bundle", "share"),
+    "accuracy_drop_points": FigureInfo("accuracy drop (float - packed)", "points"),
+    "accuracy_drop_ci_low": FigureInfo("drop, paired bootstrap interval low", "points"),
+    "accuracy_drop_ci_high": FigureInfo("drop, paired bootstrap interval high", "points"),
+    "accuracy_drop_exact_low": FigureInfo("drop, exact conditional interval low", "points"),
+    "accuracy_drop_exact_high": FigureInfo("drop, exact conditional interval high", "points"),
+    "only_float_correct": FigureInfo("texts only the float original gets right", "count"),
+    "only_packed_correct": FigureInfo("texts only the bundle gets right", "count"),
+    "mcnemar_p": FigureInfo("exact McNemar p-value", "p"),
+    "agreement": FigureInfo("prediction agreement", "share"),
+    "disagreements": FigureInfo("texts predicted differently", "count"),
+    "mean_abs_prob_diff": FigureInfo("mean probability change", "prob"),
+    "max_abs_prob_diff": FigureInfo("largest probability change", "prob"),
+    "mean_kl": FigureInfo("mean KL(float || packed)", "nats"),
+    "max_kl": FigureInfo("largest KL(float || packed)", "nats"),
+    "tokens": FigureInfo("tokens in the evaluation set", "count"),
+    "float_known_tokens": FigureInfo("tokens the float original knows", "count"),
+    "pruned_tokens": FigureInfo("known tokens the bundle pruned", "count"),
+    "pruned_token_share": FigureInfo("share of known tokens pruned", "share"),
+    "texts_with_pruned_share": FigureInfo("share of texts with a pruned token", "share"),
+    "bundle_bytes": FigureInfo("bundle size", "bytes"),
+    "float_bytes": FigureInfo("float original size", "bytes"),
+    "size_ratio": FigureInfo("size ratio (float / bundle)", "ratio"),
+    "latency_p50_ms_float": FigureInfo("single-text p50, float ONNX", "ms"),
+    "latency_p95_ms_float": FigureInfo("single-text p95, float ONNX", "ms"),
+    "latency_p50_ms_packed": FigureInfo("single-text p50, bundle", "ms"),
+    "latency_p95_ms_packed": FigureInfo("single-text p95, bundle", "ms"),
+    "latency_ratio": FigureInfo("single-text p50 ratio (bundle / float)", "ratio"),
+    "latency_p95_ratio": FigureInfo("single-text p95 ratio (bundle / float)", "ratio"),
+    "throughput_float": FigureInfo("batched throughput, float ONNX", "rate"),
+    "throughput_packed": FigureInfo("batched throughput, bundle", "rate"),
+    "throughput_ratio": FigureInfo("throughput ratio (bundle / float)", "ratio"),
+}
+LATENCY_KEYS = tuple(k for k in FIGURES if k.startswith(("latency_", "throughput_")))
+LABEL_KEYS = tuple(k for k in FIGURES if k.startswith(("accuracy_", "only_", "mcnemar")))
+
+
+@dataclass(frozen=True)
+class CheckOptions:
+    """What `danpack check` can be told about the evaluation (thresholds live in packer.verdict)."""
+
+    text_field: str = "text"  # field (JSONL) or column (CSV/TSV) holding the text
+    label_field: str | None = None  # None: "label" when the file has it, else an unlabelled check
+    backend: str = "onnxruntime"  # runtime backend the bundle is run with
+    batch_size: int = 256  # texts per forward call while evaluating (bounds memory)
+    bootstrap: int = 2000  # paired bootstrap resamples for the accuracy-drop interval
+    seed: int = 20240617  # fixed: the same inputs always give the same bootstrap interval
+    confidence: float = 0.95  # level of both intervals of the accuracy drop
+    show_disagreements: int = 5  # texts listed where the two predictions differ
+    tokens_per_disagreement: int = 8  # tokens listed per such text, largest mean shift first
+
+    def __post_init__(self) -> None:
+        if self.batch_size < 1:
+            raise CheckError(f"batch size {self.batch_size} must be at least 1")
+        if self.bootstrap < 100:
+            raise CheckError(f"bootstrap resamples {self.bootstrap} must be at least 100 (e.g. 2000)")
+        if not 0.5 <= self.confidence < 1.0:
+            raise CheckError(f"confidence {self.confidence} must be in [0.5, 1), e.g. 0.95")
+        if self.show_disagreements < 0:
+            raise CheckError(f"--show-disagreements {self.show_disagreements} must be 0 or more")
+
+
+@dataclass(frozen=True)
+class EvalSet:
+    """The evaluation texts, their labels (None when unlabelled) and where they came from."""
+
+    texts: tuple[str, ...]
+    labels: tuple[str, ...] | None
+    path: str
+    sha256: str
+    text_field: str
+    label_field: str | None
+
+
+@dataclass(frozen=True)
+class CheckResult:
+    """Everything the reports show: flat figures, per-class recall, disagreements, inputs, warnings."""
+
+    figures: dict  # key -> float | int | None, keys of FIGURES
+    per_class: list  # [{label, support, recall_float, recall_packed}] (empty when unlabelled)
+    disagreements: list  # top texts where the two predictions differ (see docs/check.md)
+    inputs: dict  # bundle / reference / eval descriptions (paths, sha256, labels, sizes)
+    settings: dict  # options that shaped the figures (seed, resamples, epsilon, latency settings)
+    warnings: tuple[str, ...] = ()
+
+
+# ---- statistics (exact binomial arithmetic in log space; no scipy at run time) -----------------
+
+def _log_binom_pmf(n: int, p: float) -> np.ndarray:
+    """(n + 1,) log P(X = k) for X ~ Binomial(n, p), 0 < p < 1."""
+    k = np.arange(n + 1)
+    log_fact = np.array([math.lgamma(i + 1.0) for i in range(n + 1)])  # (n + 1,)
+    log_choose = log_fact[n] - log_fact - log_fact[::-1]
+    return log_choose + k * math.log(p) + (n - k) * math.log1p(-p)
+
+
+def _binom_cdf(k: int, n: int, p: float) -> float:
+    """P(X <= k) for X ~ Binomial(n, p), exact up to float rounding."""
+    if k < 0:
+        return 0.0
+    if k >= n:
+        return 1.0
+    if p <= 0.0:
+        return 1.0
+    if p >= 1.0:
+        return 0.0
+    logs = _log_binom_pmf(n, p)[: k + 1]
+    top = logs.max()
+    return float(min(1.0, math.exp(top) * np.exp(logs - top).sum()))
+
+
+def mcnemar_exact_p(only_a: int, only_b: int) -> float:
+    """Exact McNemar test: two-sided binomial p-value of the discordant split against 1/2.
+
+    With p = 1/2 the binomial is symmetric, so the two-sided p-value (the mass of outcomes no
+    more likely than the one observed) is 2 * P(X <= min(b, c)), capped at 1.
+    """
+    n = only_a + only_b
+    if n == 0:
+        return 1.0
+    return min(1.0, 2.0 * _binom_cdf(min(only_a, only_b), n, 0.5))
+
+
+def clopper_pearson(k: int, n: int, confidence: float = 0.95) -> tuple[float, float]:
+    """Exact (Clopper-Pearson) interval for a binomial proportion k / n, by bisection on the CDF."""
+    if n <= 0:
+        return 0.0, 1.0
+    alpha = 1.0 - confidence
+
+    def solve(f: Callable[[float], float]) -> float:  # f increasing in p, root in (0, 1)
+        lo, hi = 0.0, 1.0
+        for _ in range(80):
+            mid = (lo + hi) / 2
+            lo, hi = (mid, hi) if f(mid) < 0 else (lo, mid)
+        return (lo + hi) / 2
+
+    # lower: P(X >= k | p) = alpha / 2 ; upper: P(X <= k | p) = alpha / 2
+    low = 0.0 if k == 0 else solve(lambda p: (1.0 - _binom_cdf(k - 1, n, p)) - alpha / 2)
+    high = 1.0 if k == n else solve(lambda p: alpha / 2 - _binom_cdf(k, n, p))
+    return low, high
+
+
+def exact_drop_interval(only_float: int, only_packed: int, texts: int,
+                        confidence: float = 0.95) -> tuple[float, float]:
+    """Interval of the accuracy drop in points, exact conditional on the number of discordant texts.
+
+    The drop is (b - c) / N = d (2 pi - 1) / N with d = b + c discordant texts and pi the share
+    of them only the float original gets right; Clopper-Pearson on pi, mapped through that line.
+    """
+    d = only_float + only_packed
+    if d == 0 or texts == 0:
+        return 0.0, 0.0
+    low, high = clopper_pearson(only_float, d, confidence)
+    scale = 100.0 * d / texts
+    return scale * (2 * low - 1), scale * (2 * high - 1)
+
+
+def bootstrap_drop_interval(only_float: int, only_packed: int, texts: int, resamples: int, seed: int,
+                            confidence: float = 0.95) -> tuple[float, float]:
+    """Paired bootstrap percentile interval of the accuracy drop in points.
+
+    Resampling N texts with replacement and taking mean(correct_float - correct_packed) depends
+    only on how many drawn texts are float-only-right (+1) and packed-only-right (-1), so a
+    multinomial draw of those counts is the same bootstrap, at a cost independent of N.
+    """
+    if texts == 0:
+        return 0.0, 0.0
+    rng = np.random.default_rng(seed)
+    shares = [only_float / texts, only_packed / texts]
+    counts = rng.multinomial(texts, shares + [max(0.0, 1.0 - sum(shares))], size=resamples)  # (R, 3)
+    drops = 100.0 * (counts[:, 0] - counts[:, 1]) / texts  # (R,)
+    tail = 100.0 * (1.0 - confidence) / 2
+    low, high = np.percentile(drops, [tail, 100.0 - tail])
+    return float(low), float(high)
+
+
+def kl_divergence(p: np.ndarray, q: np.ndarray, eps: float = KL_EPSILON) -> np.ndarray:
+    """(B, C), (B, C) -> (B,) KL(p || q) in nats, with `eps` added to both before the log."""
+    p64, q64 = p.astype(np.float64), q.astype(np.float64)
+    kl = (p64 * (np.log(p64 + eps) - np.log(q64 + eps))).sum(axis=1)  # (B,)
+    return np.maximum(kl, 0.0)  # eps can push an exact 0 a hair below zero
+
+
+# ---- inputs -------------------------------------------------------------------------------------
+
+def file_sha256(path: str | os.PathLike) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def read_eval_set(path: str | os.PathLike, labels: Sequence[str], text_field: str = "text",
+                  label_field: str | None = None) -> EvalSet:
+    """Read texts (and labels, when the file has them) from JSONL, CSV or TSV.
+
+    Without `label_field`, the field "label" is used when the first record has it. Every record
+    must then have a label, and each label must be one of `labels`.
+    """
+    path = Path(path)
+    known = set(labels)
+    texts: list[str] = []
+    gold: list[str] = []
+    field_name = label_field
+    for number, record in enumerate(iter_records(path, text_field), start=1):
+        if number == 1:
+            if label_field is None:
+                field_name = DEFAULT_LABEL_FIELD if DEFAULT_LABEL_FIELD in record else None
+            elif label_field not in record:
+                raise CheckError(f"{path}: record 1 has no field {label_field!r} (fields: {sorted(record)}); "
+                                 "name the label field with --label-field, or leave it out for an unlabelled check")
+        texts.append(record[text_field])
+        if field_name is None:
+            continue
+        if field_name not in record:
+            raise CheckError(f"{path}: record {number} has no field {field_name!r} but record 1 has one; "
+                             "label every record or none")
+        value = record[field_name]
+        if isinstance(value, int) and not isinstance(value, bool):
+            value = str(value)
+        if not isinstance(value, str) or value not in known:
+            raise CheckError(f"{path}: record {number}: label {value!r} is not one of the model's labels "
+                             f"{list(labels)}; fix the label or pass the matching --reference model")
+        gold.append(value)
+    if not texts:
+        raise CheckError(f"{path}: holds no records; an evaluation set needs at least one text")
+    return EvalSet(tuple(texts), tuple(gold) if field_name is not None else None, str(path),
+                   file_sha256(path), text_field, field_name)
+
+
+# ---- running both models ------------------------------------------------------------------------
+
+def run_batched(predict: Callable[[Sequence[str]], np.ndarray], texts: Sequence[str], batch_size: int,
+                steps: Steps | None = None, what: str = "") -> np.ndarray:
+    """(N,) texts -> (N, C) probabilities, `batch_size` texts per call (progress every ~10%)."""
+    out = []
+    every = max(1, len(texts) // batch_size // 10)
+    for i, start in enumerate(range(0, len(texts), batch_size)):
+        out.append(np.asarray(predict(texts[start : start + batch_size]), dtype=np.float32))  # (b, C)
+        if steps is not None and len(texts) > 20 * batch_size and (i + 1) % every == 0:
+            steps.note(f"{what}: {min(len(texts), start + batch_size):,} / {len(texts):,} texts")
+    return np.concatenate(out, axis=0)  # (N, C)
+
+
+def align_labels(bundle_labels: Sequence[str], model_labels: Sequence[str], bundle_path: str) -> np.ndarray:
+    """Column order taking the bundle's outputs into the float model's label order, matched by name."""
+    if sorted(bundle_labels) != sorted(model_labels):
+        raise CheckError(f"{bundle_path}: the bundle's labels {list(bundle_labels)} are not the float model's "
+                         f"labels {list(model_labels)}; pass the --reference model this bundle was packed from")
+    return np.array([list(bundle_labels).index(label) for label in model_labels], dtype=np.int64)  # (C,)
+
+
+# ---- figures ------------------------------------------------------------------------------------
+
+def accuracy_figures(gold: np.ndarray, pred_float: np.ndarray, pred_packed: np.ndarray,
+                     options: CheckOptions) -> dict:
+    """Accuracy of each, the drop in points, its two intervals and the exact McNemar p-value."""
+    n = len(gold)
+    right_f, right_p = pred_float == gold, pred_packed == gold  # (N,) bool
+    only_f = int(np.count_nonzero(right_f & ~right_p))
+    only_p = int(np.count_nonzero(~right_f & right_p))
+    acc_f, acc_p = float(right_f.mean()), float(right_p.mean())
+    boot = bootstrap_drop_interval(only_f, only_p, n, options.bootstrap, options.seed, options.confidence)
+    exact = exact_drop_interval(only_f, only_p, n, options.confidence)
+    return {
+        "accuracy_float": acc_f,
+        "accuracy_packed": acc_p,
+        "accuracy_drop_points": 100.0 * (only_f - only_p) / n,  # = 100 (acc_f - acc_p), exactly
+        "accuracy_drop_ci_low": boot[0],
+        "accuracy_drop_ci_high": boot[1],
+        "accuracy_drop_exact_low": exact[0],
+        "accuracy_drop_exact_high": exact[1],
+        "only_float_correct": only_f,
+        "only_packed_correct": only_p,
+        "mcnemar_p": mcnemar_exact_p(only_f, only_p),
+    }
+
+
+def agreement_figures(probs_float: np.ndarray, probs_packed: np.ndarray) -> dict:
+    """Agreement of the argmax, and how far the probabilities moved (per text: max over classes)."""
+    agree = probs_float.argmax(axis=1) == probs_packed.argmax(axis=1)  # (N,)
+    moved = np.abs(probs_float.astype(np.float64) - probs_packed).max(axis=1)  # (N,)
+    kl = kl_divergence(probs_float, probs_packed)  # (N,)
+    return {
+        "agreement": float(agree.mean()),
+        "disagreements": int(np.count_nonzero(~agree)),
+        "mean_abs_prob_diff": float(moved.mean()),
+        "max_abs_prob_diff": float(moved.max()),
+        "mean_kl": float(kl.mean()),
+        "max_kl": float(kl.max()),
+    }
+
+
+def per_class_recall(gold: np.ndarray, pred_float: np.ndarray, pred_packed: np.ndarray,
+                     labels: Sequence[str]) -> list[dict]:
+    """Recall of each label for both models (None for a label absent from the set)."""
+    rows = []
+    for c, label in enumerate(labels):
+        mask = gold == c
+        support = int(mask.sum())
+        rows.append({
+            "label": label,
+            "support": support,
+            "recall_float": float((pred_float[mask] == c).mean()) if support else None,
+            "recall_packed": float((pred_packed[mask] == c).mean()) if support else None,
+        })
+    return rows
+
+
+@dataclass(frozen=True)
+class TokenView:
+    """Each text's tokens as the float original sees them, and which ones the bundle pruned."""
+
+    tokens: list  # per text: tokens the float model knows (entering its mean), in order
+    counts: np.ndarray  # (N,) tokens entering the float mean (its n)
+    pruned: list  # per text: set of tokens the float model knows and the bundle does not
+
+
+def view_tokens(model: FloatModel, bundle_vocab: Sequence[str], texts: Sequence[str]) -> tuple[TokenView, dict]:
+    """Tokenize with the float model's tokenizer; count tokens known to it and pruned from the bundle."""
+    encoder = model.encoder()
+    float_index, bundle_index = encoder.index, set(bundle_vocab)
+    total = known = pruned = with_pruned = 0
+    seen, counts, pruned_sets = [], np.zeros(len(texts), np.int64), []
+    for i, text in enumerate(texts):
+        tokens = encoder.tokenizer.tokenize(text)
+        kept = [t for t in tokens if t in float_index]
+        gone = [t for t in kept if t not in bundle_index]
+        total += len(tokens)
+        known += len(kept)
+        pruned += len(gone)
+        with_pruned += bool(gone)
+        seen.append(kept)
+        counts[i] = len(tokens) if encoder.oov_id is not None else len(kept)  # tokens in the float mean
+        pruned_sets.append(set(gone))
+    figures = {
+        "tokens": total,
+        "float_known_tokens": known,
+        "pruned_tokens": pruned,
+        "pruned_token_share": pruned / known if known else 0.0,
+        "texts_with_pruned_share": with_pruned / len(texts),
+    }
+    return TokenView(seen, counts, pruned_sets), figures
+
+
+class MeanShift:
+    """How far each token's packing moved a text's mean vector, in the bundle table's space.
+
+    For a kept token: ||float row - dequantised bundle row|| / n; for a pruned token:
+    ||float row|| / n under the skip policy, ||float row - dequantised OOV row|| / n under unk
+    or rest; n is the number of tokens in the float original's mean. When the bundle folds the
+    first hidden layer, float rows are mapped through that layer's weight first.
+    """
+
+    def __init__(self, model: FloatModel, bundle: runtime.Bundle) -> None:
+        self.model = model
+        self.float_index = {t: i for i, t in enumerate(model.vocab)}
+        self.bundle_index = {t: i for i, t in enumerate(bundle.vocab)}
+        t = bundle.tensors
+        self.table, self.scales = t["table"], t.get("scales") if t["table"].dtype == np.int8 else None
+        self.project = model.layers[0].weight.T if bundle.manifest["table"].get("folded") else None  # (D, H1)
+        self.oov_row = bundle.oov_row
+        width = model.embedding.shape[1] if self.project is None else self.project.shape[1]
+        self.usable = self.table.shape[1] == width
+
+    def _bundle_row(self, row: int) -> np.ndarray:
+        r = self.table[row : row + 1]  # (1, W)
+        if self.scales is None:
+            return r[0].astype(np.float32)
+        return dequantize_rows(r, self.scales[row : row + 1])[0]  # (W,)
+
+    def _float_row(self, token: str) -> np.ndarray:
+        row = self.model.embedding[self.float_index[token]]  # (D,)
+        return row if self.project is None else row @ self.project  # (W,)
+
+    def shifts(self, tokens: Sequence[str], pruned: set, n: int) -> list[dict]:
+        """One entry per distinct known token: status and shift (largest first)."""
+        if not self.usable or n == 0:
+            return []
+        out = []
+        for token in dict.fromkeys(tokens):
+            mult = tokens.count(token)
+            f = self._float_row(token)
+            if token in pruned:
+                b = np.zeros_like(f) if self.oov_row is None else self._bundle_row(self.oov_row)
+            else:
+                b = self._bundle_row(self.bundle_index[token])
+            shift = mult * float(np.linalg.norm(f.astype(np.float64) - b)) / n
+            out.append({"token": token, "status": "pruned" if token in pruned else "kept", "count": mult,
+                        "shift": shift})
+        out.sort(key=lambda e: (-e["shift"], e["token"]))
+        return out
+
+
+def list_disagreements(texts, gold, labels, probs_float, probs_packed, view: TokenView, shift: MeanShift,
+                       options: CheckOptions) -> list[dict]:
+    """The texts where the argmax differs, the largest probability change first."""
+    pf, pp = probs_float.argmax(axis=1), probs_packed.argmax(axis=1)  # (N,)
+    moved = np.abs(probs_float.astype(np.float64) - probs_packed).max(axis=1)  # (N,)
+    idx = np.flatnonzero(pf != pp)
+    idx = idx[np.lexsort((idx, -moved[idx]))][: options.show_disagreements]  # largest change, then position
+    out = []
+    for i in idx.tolist():
+        tokens = shift.shifts(view.tokens[i], view.pruned[i], int(view.counts[i]))
+        out.append({
+            "index": i,
+            "text": texts[i],
+            "label": None if gold is None else labels[gold[i]],
+            "float": {"label": labels[pf[i]], "prob": float(probs_float[i, pf[i]])},
+            "packed": {"label": labels[pp[i]], "prob": float(probs_packed[i, pp[i]])},
+            "max_abs_prob_diff": float(moved[i]),
+            "pruned": sorted(view.pruned[i]),
+            "tokens": tokens[: options.tokens_per_disagreement],
+        })
+    return out
+
+
+def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval_path: str | os.PathLike,
+              options: CheckOptions = CheckOptions(), latency: LatencyOptions | None = None,
+              steps: Steps | None = None) -> CheckResult:
+    """Evaluate the bundle against its float original; `latency` (LatencyOptions or None) adds timings."""
+    steps = steps or Steps(6, quiet=True)
+    warnings: list[str] = []
+    with steps.step(f"reading float original {model_dir}"):
+        model = load_model(model_dir)
+        float_sha = model_digest(model_dir)
+    with steps.step(f"reading bundle {bundle_path}"):
+        clf = runtime.load(bundle_path, backend=options.backend)
+        bundle = clf.bundle
+    order = align_labels(bundle.labels, model.labels, str(bundle_path))
+    labels = model.labels
+    if list(bundle.labels) != list(labels):
+        warnings.append(f"the bundle lists its labels as {list(bundle.labels)}, the float original as "
+                        f"{list(labels)}; outputs are compared by label name")
+    source_sha = (bundle.manifest.get("source") or {}).get("sha256")
+    if source_sha != float_sha:
+        warnings.append(f"the bundle was packed from a float model with sha256 {str(source_sha)[:16]}…, "
+                        f"not from --reference (sha256 {float_sha[:16]}…)")
+    if bundle.tokenizer != model.tokenizer:
+        warnings.append("the bundle's tokenizer spec differs from the float original's")
+    with steps.step(f"reading evaluation set {eval_path}"):
+        evalset = read_eval_set(eval_path, labels, options.text_field, options.label_field)
+    steps.note(f"{len(evalset.texts):,} texts, " + ("labelled" if evalset.labels is not None else "unlabelled"))
+    texts = list(evalset.texts)
+    with steps.step("running the float original (numpy, full vocabulary, float32)"):
+        probs_float = run_batched(model.predict_proba, texts, options.batch_size, steps, "float")  # (N, C)
+    with steps.step(f"running the bundle ({options.backend})"):
+        probs_packed = run_batched(clf.predict_proba, texts, options.batch_size, steps, "bundle")[:, order]  # (N, C)
+    with steps.step("computing figures"):
+        figures: dict = {"texts": len(texts)}
+        figures.update({k: None for k in LABEL_KEYS})
+        gold = None
+        per_class: list = []
+        pred_f, pred_p = probs_float.argmax(axis=1), probs_packed.argmax(axis=1)  # (N,)
+        if evalset.labels is not None:
+            label_index = {label: i for i, label in enumerate(labels)}
+            gold = np.array([label_index[g] for g in evalset.labels], dtype=np.int64)  # (N,)
+            figures.update(accuracy_figures(gold, pred_f, pred_p, options))
+            per_class = per_class_recall(gold, pred_f, pred_p, labels)
+        figures.update(agreement_figures(probs_float, probs_packed))
+        view, token_figures = view_tokens(model, bundle.vocab, texts)
+        figures.update(token_figures)
+        float_bytes = model_bytes(model_dir)
+        figures.update({"bundle_bytes": bundle.size, "float_bytes": float_bytes,
+                        "size_ratio": float_bytes / bundle.size})
+        shift = MeanShift(model, bundle)
+        if not shift.usable:
+            warnings.append("the bundle's table width does not match the float original's layers; "
+                            "per-token mean shifts are not reported")
+        disagreements = list_disagreements(texts, gold, labels, probs_float, probs_packed, view, shift, options)
+    figures.update({k: None for k in LATENCY_KEYS})
+    latency_info = None
+    if latency is not None:
+        from .latency import measure_check_latency
+
+        with steps.step(f"measuring latency side by side ({latency.texts} single texts, batches of {latency.batch})"):
+            timing = measure_check_latency(model_dir, clf, texts, latency, options.backend)
+        figures.update(timing.figures())
+        latency_info = timing.settings()
+    inputs = {
+        "bundle": {"path": str(bundle_path), "sha256": bundle.sha256, "bytes": bundle.size,
+                   "labels": list(bundle.labels), "source_sha256": source_sha,
+                   "oov_policy": bundle.manifest["oov"]["policy"], "table": dict(bundle.manifest["table"]),
+                   "tokens": len(bundle.vocab)},
+        "reference": {"path": str(model_dir), "sha256": float_sha, "bytes": float_bytes, "labels": list(labels),
+                      "rows": len(model.vocab), "embedding_dim": int(model.embedding.shape[1])},
+        "eval": {"path": evalset.path, "sha256": evalset.sha256, "texts": len(texts),
+                 "text_field": evalset.text_field, "label_field": evalset.label_field,
+                 "labelled": evalset.labels is not None},
+    }
+    settings = {"backend": options.backend, "bootstrap_resamples": options.bootstrap, "seed": options.seed,
+                "confidence": options.confidence, "kl_epsilon": KL_EPSILON, "latency": latency_info}
+    return CheckResult(figures, per_class, disagreements, inputs, settings, tuple(warnings))

@@ -1,0 +1,93 @@
+"""`danpack check`: the bundle against its float original, with a verdict for CI (exit 0 / 1 / 2)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+
+from runtime.errors import DanpackError
+
+from ..check import CheckOptions, run_check
+from ..latency import LatencyOptions
+from ..progress import Steps
+from ..reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
+from ..verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit, parse_tolerances,
+                       resolve_limits)
+from .app import app
+from .common import fail
+
+LIMIT_HELP = "Number, or 'off' to drop the default."
+
+
+@app.command("check")
+def check_command(
+    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
+    reference: Path = typer.Option(..., "--reference", "-r", help="The float model directory the bundle was packed from."),
+    eval_file: Path = typer.Option(..., "--eval", "-e", help="Evaluation texts: JSONL, CSV or TSV with a header; labels optional."),
+    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
+    label_field: Optional[str] = typer.Option(None, help="Field holding the label [default: 'label' when present; else unlabelled]."),
+    max_accuracy_drop: Optional[str] = typer.Option(None, help=f"Largest accuracy drop in points [default: 1.0]. {LIMIT_HELP}"),
+    min_agreement: Optional[str] = typer.Option(None, help=f"Smallest prediction agreement, 0..1 or a percent [default: 0.99]. {LIMIT_HELP}"),
+    max_bytes: Optional[str] = typer.Option(None, help="Largest bundle size in bytes [default: not gated]."),
+    min_size_ratio: Optional[str] = typer.Option(None, help=f"Smallest float bytes / bundle bytes [default: 1.0]. {LIMIT_HELP}"),
+    max_latency_ratio: Optional[str] = typer.Option(None, help="Largest single-text p50 ratio bundle / float [default: not gated]."),
+    baseline: Optional[Path] = typer.Option(None, help="An earlier --report of the same lineage: fail on regressions."),
+    baseline_tolerance: list[str] = typer.Option([], help="NAME=VALUE, repeatable: accuracy=0.5 drop=0.5 agreement=0.5 (points), bytes=5 latency=off (percent)."),
+    report: Optional[Path] = typer.Option(None, help="Write the JSON report (schema danpack-check-report, version 1)."),
+    markdown: Optional[Path] = typer.Option(None, help="Write a Markdown summary for a CI comment."),
+    junit: Optional[Path] = typer.Option(None, help="Write JUnit XML: one test case per gate."),
+    show_disagreements: int = typer.Option(5, help="Texts listed where the two predictions differ."),
+    latency_texts: int = typer.Option(200, help="Single-text calls timed per side."),
+    latency_batch: int = typer.Option(64, help="Texts per batched call when timing throughput."),
+    latency_batches: int = typer.Option(30, help="Batched calls timed per side."),
+    no_latency: bool = typer.Option(False, "--no-latency", help="Skip the latency measurement."),
+    backend: str = typer.Option("onnxruntime", help="Runtime backend: onnxruntime or numpy."),
+    bootstrap: int = typer.Option(2000, help="Paired bootstrap resamples for the accuracy-drop interval."),
+    seed: int = typer.Option(CheckOptions.seed, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
+) -> None:
+    """Compare a bundle with its float original on labelled or unlabelled texts; exit 1 when a gate fails."""
+    try:
+        given = {"max-accuracy-drop": parse_limit(max_accuracy_drop, "max-accuracy-drop"),
+                 "min-agreement": parse_limit(min_agreement, "min-agreement"),
+                 "max-bytes": parse_limit(max_bytes, "max-bytes"),
+                 "min-size-ratio": parse_limit(min_size_ratio, "min-size-ratio"),
+                 "max-latency-ratio": parse_limit(max_latency_ratio, "max-latency-ratio")}
+        limits, explicit = resolve_limits(given)
+        if no_latency and "max-latency-ratio" in explicit:
+            fail("--max-latency-ratio needs the latency measurement; drop --no-latency")
+        tolerances = parse_tolerances(baseline_tolerance)
+        previous = read_report(baseline) if baseline is not None else None
+        options = CheckOptions(text_field=text_field, label_field=label_field, backend=backend, bootstrap=bootstrap,
+                               seed=seed, show_disagreements=show_disagreements)
+        latency = None if no_latency else LatencyOptions(texts=latency_texts, batch=latency_batch,
+                                                         batches=latency_batches)
+        steps = Steps(6 + (latency is not None), quiet=quiet)
+        result = run_check(bundle, reference, eval_file, options, latency, steps)
+        outcomes = evaluate(result.figures, limits, explicit)
+        extra_warnings: list[str] = []
+        baseline_info = None
+        if previous is not None:
+            extra_warnings = baseline_lineage(result.inputs, previous["inputs"])
+            outcomes += compare_baseline(result.figures, previous["figures"], tolerances)
+            baseline_info = {"path": str(baseline), "bundle_sha256": previous["inputs"]["bundle"]["sha256"],
+                             "tolerances": tolerances}
+        verdict = Verdict(outcomes)
+        full = build_report(result, verdict, baseline_info, tuple(extra_warnings))
+    except DanpackError as e:
+        fail(str(e))
+    for w in full["warnings"]:
+        typer.echo(f"danpack: warning: {w}", err=True)
+    typer.echo(render_table(full), nl=False)
+    try:
+        if report is not None:
+            write_report(report, full)
+        if markdown is not None:
+            write_markdown(markdown, full)
+        if junit is not None:
+            write_junit(junit, full)
+    except OSError as e:
+        fail(f"cannot write an output file ({e})")
+    raise typer.Exit(code=verdict.exit_code)
