@@ -69,6 +69,11 @@ FIGURES: dict[str, FigureInfo] = {
     "pruned_tokens": FigureInfo("known tokens the bundle pruned", "count"),
     "pruned_token_share": FigureInfo("share of known tokens pruned", "share"),
     "texts_with_pruned_share": FigureInfo("share of texts with a pruned token", "share"),
+    "certified_share": FigureInfo("texts certified by the drift bound", "share"),
+    "certified_share_of_covered": FigureInfo("certified among texts whose tokens are all kept", "share"),
+    "runtime_certified_share": FigureInfo("texts the device certifies (packed margin)", "share"),
+    "certified_changes": FigureInfo("certified texts whose prediction changed", "count"),
+    "bound_premise_failing_rows": FigureInfo("kept rows outside the bound's premise", "count"),
     "bundle_bytes": FigureInfo("bundle size", "bytes"),
     "float_bytes": FigureInfo("float original size", "bytes"),
     "size_ratio": FigureInfo("size ratio (float / bundle)", "ratio"),
@@ -467,6 +472,29 @@ def list_disagreements(texts, gold, labels, probs_float, probs_packed, view: Tok
     return out
 
 
+CERTIFIED_KEYS = ("certified_share", "certified_share_of_covered", "runtime_certified_share", "certified_changes",
+                  "bound_premise_failing_rows")
+
+
+def certified_figures(model: FloatModel, bundle, texts: Sequence[str], warnings: list[str]) -> dict:
+    """The drift bound's figures (packer.bound); None for a float32 bundle, which quantisation did not touch,
+    and for a bundle not packed from this model (a warning says why)."""
+    if bundle.manifest["table"]["dtype"] != "int8":
+        return {k: None for k in CERTIFIED_KEYS}
+    from .bound import BoundError, certify_texts
+
+    try:
+        summary = certify_texts(model, bundle, texts).to_dict()
+    except BoundError as e:
+        warnings.append(f"no drift-bound figures: {e}")
+        return {k: None for k in CERTIFIED_KEYS}
+    return {"certified_share": summary["certified_share"],
+            "certified_share_of_covered": summary["certified_share_of_covered"],
+            "runtime_certified_share": summary["runtime_certified_share"],
+            "certified_changes": summary["certified_disagreements"],
+            "bound_premise_failing_rows": summary["premise"]["failing_rows"]}
+
+
 def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval_path: str | os.PathLike,
               options: CheckOptions = CheckOptions(), latency: LatencyOptions | None = None,
               steps: Steps | None = None) -> CheckResult:
@@ -515,6 +543,7 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
         float_bytes = model_bytes(model_dir)
         figures.update({"bundle_bytes": bundle.size, "float_bytes": float_bytes,
                         "size_ratio": float_bytes / bundle.size})
+        figures.update(certified_figures(model, bundle, texts, warnings))
         shift = MeanShift(model, bundle)
         if not shift.usable:
             warnings.append("the bundle's table width does not match the float original's layers; "

@@ -156,6 +156,11 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
     rows.append(("pruned share of known tokens", "", format_value(f["pruned_token_share"], "share"),
                  f"{f['pruned_tokens']:,} of {f['float_known_tokens']:,}; in "
                  f"{100 * f['texts_with_pruned_share']:.1f}% of texts"))
+    if f.get("certified_share") is not None:
+        covered = f["certified_share_of_covered"]
+        rows.append(("certified unchanged by int8", "", format_value(f["certified_share"], "share"),
+                     ("" if covered is None else f"{format_value(covered, 'share')} of texts with all tokens kept; ")
+                     + f"device certifies {format_value(f['runtime_certified_share'], 'share')}"))
     rows.append(("size", _size(f["float_bytes"]), _size(f["bundle_bytes"]), f"{f['size_ratio']:.2f}x smaller"))
     if f.get("latency_ratio") is not None:
         lat = s.get("latency") or {}

@@ -43,6 +43,11 @@ THRESHOLDS: tuple[Threshold, ...] = (
     # no default: latency depends on the machine running the check
     Threshold("max-latency-ratio", "latency_ratio", "<=", None, "ratio", "p50 latency ratio bundle / float",
               "latency"),
+    # no default: how much must be provably unchanged is the deployment's call (demo bundles: 75-83%)
+    Threshold("min-certified", "certified_share", ">=", None, "share", "share certified by the drift bound", "bound"),
+    # 0: a certified text that changed class means the bound itself is broken
+    Threshold("max-certified-changes", "certified_changes", "<=", 0, "count", "certified texts that changed class",
+              "bound"),
 )
 
 
@@ -182,7 +187,8 @@ def check_threshold(t: Threshold, value: float | None, limit: float | None, expl
     if limit is None:
         return Outcome(t.name, t.key, t.op, None, value, "skip", "not gated (no limit set)")
     if value is None:
-        why = {"labels": "the evaluation set has no labels", "latency": "latency was not measured"}.get(t.needs, "")
+        why = {"labels": "the evaluation set has no labels", "latency": "latency was not measured",
+               "bound": "no drift bound applies (a float32 table, or a bundle not packed from --reference)"}.get(t.needs, "")
         if explicit:
             raise VerdictError(f"--{t.name} {limit:g} cannot be checked: {why or 'the figure is missing'}"
                                + (" (pass a labelled --eval)" if t.needs == "labels" else "")

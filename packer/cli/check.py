@@ -33,6 +33,8 @@ def check_command(
     max_bytes: Optional[str] = typer.Option(None, help="Largest bundle size in bytes [default: not gated]."),
     min_size_ratio: Optional[str] = typer.Option(None, help=f"Smallest float bytes / bundle bytes [default: 1.0]. {LIMIT_HELP}"),
     max_latency_ratio: Optional[str] = typer.Option(None, help="Largest single-text p50 ratio bundle / float [default: not gated]."),
+    min_certified: Optional[str] = typer.Option(None, help="Smallest share of texts the drift bound certifies as unchanged by quantisation, 0..1 or a percent [default: not gated]."),
+    max_certified_changes: Optional[str] = typer.Option(None, help=f"Largest number of certified texts whose prediction changed [default: 0: any means the bound is broken]. {LIMIT_HELP}"),
     baseline: Optional[Path] = typer.Option(None, help="An earlier --report of the same lineage: fail on regressions."),
     baseline_tolerance: list[str] = typer.Option([], help="NAME=VALUE, repeatable: accuracy=0.5 drop=0.5 agreement=0.5 (points), bytes=5 latency=off (percent)."),
     report: Optional[Path] = typer.Option(None, help="Write the JSON report (schema danpack-check-report, version 1)."),
@@ -54,7 +56,9 @@ def check_command(
                  "min-agreement": parse_limit(min_agreement, "min-agreement"),
                  "max-bytes": parse_limit(max_bytes, "max-bytes"),
                  "min-size-ratio": parse_limit(min_size_ratio, "min-size-ratio"),
-                 "max-latency-ratio": parse_limit(max_latency_ratio, "max-latency-ratio")}
+                 "max-latency-ratio": parse_limit(max_latency_ratio, "max-latency-ratio"),
+                 "min-certified": parse_limit(min_certified, "min-certified"),
+                 "max-certified-changes": parse_limit(max_certified_changes, "max-certified-changes")}
         limits, explicit = resolve_limits(given)
         if no_latency and "max-latency-ratio" in explicit:
             fail("--max-latency-ratio needs the latency measurement; drop --no-latency")
