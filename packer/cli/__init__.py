@@ -9,6 +9,7 @@ from .app import app
 from . import convert_torch  # noqa: E402,F401
 from . import pack  # noqa: E402,F401  (pack, inspect, export-onnx)
 from . import check  # noqa: E402,F401
+from . import demo  # noqa: E402,F401
 
 
 def main() -> None:

@@ -1,0 +1,36 @@
+"""`danpack demo`."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+
+from runtime.errors import DanpackError
+
+from ..demo import DemoOptions, describe_demo, run_demo
+from ..progress import Steps
+from .app import app
+from .common import fail
+
+
+@app.command("demo")
+def demo_command(
+    out: Path = typer.Option(Path("danpack-demo"), "--out", "-o", help="Directory for everything the demo writes."),
+    task: str = typer.Option("sentiment", help="Shipped demo model to pack: sentiment or topic."),
+    small: bool = typer.Option(False, "--small", help="Small scenario sizes, for a quick look."),
+    glove: bool = typer.Option(False, "--glove", help="Train the GloVe 6B 50d fine-tuned model (400,000-row table, needs `pip install 'danpack[glove]'`) and pack that: the realistic case."),
+    no_latency: bool = typer.Option(False, "--no-latency", help="Skip the side-by-side latency measurement."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
+) -> None:
+    """Run the whole job on the invented charging-station scenario: generate data, pack, stream, check."""
+    if task not in ("sentiment", "topic"):
+        fail(f"--task {task!r} is not a shipped demo model; use sentiment or topic")
+    try:
+        result = run_demo(out, DemoOptions(task=task, small=small, glove=glove, latency=not no_latency),
+                            Steps(4 + glove, quiet=quiet))
+    except DanpackError as e:
+        fail(str(e))
+    for line in describe_demo(result):
+        typer.echo(line)
+    raise typer.Exit(code=result.exit_code)
