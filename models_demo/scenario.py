@@ -404,24 +404,10 @@ def write_jsonl(path: Path, records: list[dict]) -> Path:
 
 
 def read_jsonl(path: str | Path) -> list[dict]:
-    """Records of a JSONL file; a bad line is a ScenarioError naming the file and line."""
-    path = Path(path)
-    records = []
-    try:
-        lines = path.read_text(encoding="utf-8").splitlines()
-    except (OSError, UnicodeDecodeError) as e:
-        raise ScenarioError(f"{path}: cannot be read as UTF-8 JSONL ({e})") from e
-    for number, line in enumerate(lines, start=1):
-        if not line.strip():
-            continue
-        try:
-            record = json.loads(line)
-        except json.JSONDecodeError as e:
-            raise ScenarioError(f"{path}: line {number} is not valid JSON ({e.msg})") from e
-        if not isinstance(record, dict) or not isinstance(record.get("text"), str):
-            raise ScenarioError(f"{path}: line {number} must be an object with a string field 'text'")
-        records.append(record)
-    return records
+    """Records of a scenario JSONL file, through the packer's one text-file reader."""
+    from packer.textfile import iter_records
+
+    return list(iter_records(path, fmt="jsonl"))
 
 
 def write_scenario(out_dir: str | Path, seed: int = DEFAULT_SEED, sizes: ScenarioSizes = ScenarioSizes()) -> dict[str, Path]:

@@ -210,8 +210,8 @@ def test_bad_requests_are_refused_with_a_clear_error(call, words):
 def test_read_jsonl_names_the_bad_line(tmp_path):
     path = tmp_path / "bad.jsonl"
     path.write_text('{"text": "fine"}\n{"text": \n', encoding="utf-8")
-    with pytest.raises(ScenarioError, match=r"bad\.jsonl: line 2 is not valid JSON"):
+    with pytest.raises(DanpackError, match=r"bad\.jsonl:2: not valid JSON"):
         read_jsonl(path)
     path.write_text('{"text": 3}\n', encoding="utf-8")
-    with pytest.raises(ScenarioError, match=r"line 1 must be an object with a string field 'text'"):
+    with pytest.raises(DanpackError, match=r"bad\.jsonl:1: field 'text' is missing or not a string"):
         read_jsonl(path)
