@@ -8,7 +8,6 @@ figure is one more key and one more line in `FIGURES`. docs/check.md defines eac
 
 from __future__ import annotations
 
-import hashlib
 import math
 import os
 from collections.abc import Callable, Sequence
@@ -21,6 +20,7 @@ import numpy as np
 import runtime
 from runtime.errors import DanpackError
 
+from .files import file_sha256
 from .model import FloatModel, load_model, model_bytes, model_digest
 from .progress import Steps
 from .quantize import dequantize_rows
@@ -238,14 +238,6 @@ def kl_divergence(p: np.ndarray, q: np.ndarray, eps: float = KL_EPSILON) -> np.n
 
 
 # ---- inputs -------------------------------------------------------------------------------------
-
-def file_sha256(path: str | os.PathLike) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
 
 def read_eval_set(path: str | os.PathLike, labels: Sequence[str], text_field: str = "text",
                   label_field: str | None = None) -> EvalSet:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import tempfile
 from pathlib import Path
@@ -51,3 +52,17 @@ def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
             raise OutputError(f"{path}: writing failed ({e.strerror or e}); the previous file, if any, is intact") from e
         raise
     return path
+
+
+def feed_file(digest, path: str | os.PathLike) -> None:
+    """Add a file's bytes to a hashlib object, 1 MiB at a time."""
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            digest.update(chunk)
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file's bytes."""
+    digest = hashlib.sha256()
+    feed_file(digest, path)
+    return digest.hexdigest()

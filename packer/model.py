@@ -28,7 +28,7 @@ from runtime.errors import ModelError, TokenizerError
 from runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
 from runtime.tokenize import Tokenizer, TokenizerSpec
 
-from .files import current_umask
+from .files import current_umask, feed_file
 
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1
@@ -332,9 +332,7 @@ def model_digest(model_dir: str | os.PathLike) -> str:
         path = root / name
         if path.exists():
             h.update(name.encode() + b"\0")
-            with open(path, "rb") as f:
-                for chunk in iter(lambda: f.read(1 << 20), b""):
-                    h.update(chunk)
+            feed_file(h, path)
     return h.hexdigest()
 
 

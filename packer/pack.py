@@ -20,7 +20,7 @@ from runtime.tokenize import Tokenizer
 
 from . import __version__
 from .bundle import encode_bundle, encode_payload
-from .files import write_atomic
+from .files import file_sha256, write_atomic
 from .fold import fold_first_layer, should_fold
 from .graph import GraphSpec, build_graph, check_graph
 from .model import FloatModel, load_model, model_bytes, model_digest
@@ -233,7 +233,8 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
         vocab_options = VocabOptions(coverage=options.coverage, top=options.top, keep_words=options.keep_words)
         plan = plan_vocab(model.vocab, Tokenizer(model.tokenizer), corpus, vocab_options, always)
     pack_record = {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(options).items()}
-    pack_record["corpora"] = [Path(p).name for p in options.corpora]
+    # names and digests: a changed corpus changes the manifest even when the selection stays the same
+    pack_record["corpora"] = [{"name": Path(p).name, "sha256": file_sha256(p)} for p in options.corpora]
     pack_record["pruned"] = policy
 
     def build(p: VocabPlan):

@@ -9,7 +9,6 @@ EmbeddingBag mode, max_norm) must come from the caller.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import re
@@ -24,6 +23,7 @@ from runtime.errors import DanpackError
 from runtime.forward import ACTIVATIONS, Layer
 from runtime.tokenize import Tokenizer, TokenizerSpec
 
+from .files import file_sha256
 from .model import FORMAT_NAME, FloatModel, OOV_POLICIES, load_model, save_model
 
 TORCH_PIN = "torch==2.13.0"
@@ -710,7 +710,7 @@ def build_model(ck: Checkpoint, layout: Layout, kept: list[int], tokens: list[st
         "converted_from": {
             "file": ck.path.name,
             "kind": "pytorch state_dict" if ck.kind == "torch" else "safetensors",
-            "sha256": _file_sha256(ck.path),
+            "sha256": file_sha256(ck.path),
             "tensors": {ours: key for ours, key, _ in _mapping(ck, layout)},
             "bag_mode": options.bag_mode,
             "dropped_rows": [{"row": d.row, "token": d.token, "reason": d.reason} for d in dropped],
@@ -728,14 +728,6 @@ def _mapping(ck: Checkpoint, layout: Layout) -> list[tuple[str, str, tuple[int, 
         out.append((f"{name}.weight", s.weight_key, ck.shapes[s.weight_key]))
         out.append((f"{name}.bias", s.bias_key or "(zeros: no bias)", (s.out_dim,)))
     return out
-
-
-def _file_sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def convert_checkpoint(checkpoint: str | os.PathLike, vocab: str | os.PathLike, labels: str | Sequence[str],

@@ -4,7 +4,9 @@ File layout (format "danpack-bundle", version 1), specified in the README:
 a msgpack map {"format": str, "payload": bin, "sha256": bin(32), "version": int};
 sha256 is over the payload bytes, which are themselves a msgpack map
 {"graph": bin, "manifest": map, "tensors": map, "vocab": str}.
-Everything is checked before use; every failure is a BundleError saying what is wrong.
+Everything is checked before use: msgpack container counts against the bytes present (before msgpack
+allocates), the checksum before the payload is parsed, then tensors, manifest and the ONNX graph (read
+with the protobuf wire format, stdlib only). Every failure is a BundleError saying what is wrong.
 """
 
 from __future__ import annotations
@@ -12,23 +14,36 @@ from __future__ import annotations
 import hashlib
 import math
 import os
+import reprlib
+import stat
 from dataclasses import dataclass
 from pathlib import Path
 
 import msgpack
 import numpy as np
 
-from .errors import BundleError, TokenizerError
+from .errors import BundleError
+from .onnx_wire import read_graph_names
 from .tokenize import TokenizerSpec
 
 FORMAT_NAME = "danpack-bundle"
 FORMAT_VERSION = 1
 MAX_FILE_BYTES = 1 << 32  # 4 GiB: far above any DAN table we pack (400k x 300 int8 is 120 MB)
+MAX_MANIFEST_DEPTH = 8  # maps and lists inside the manifest; the packer writes 4
 DTYPES = {"int8": np.dtype("i1"), "float32": np.dtype("<f4")}
 OOV_POLICIES = ("skip", "unk", "rest")
 ACTIVATIONS = ("relu", "tanh", None)
 OUTER_KEYS = {"format", "version", "sha256", "payload"}
 PAYLOAD_KEYS = {"graph", "manifest", "tensors", "vocab"}
+ONNX_DTYPES = {"float32": 1, "int8": 3}  # TensorProto.DataType: FLOAT = 1, INT8 = 3 (onnx.proto)
+GRAPH_INPUTS, GRAPH_OUTPUTS = ("ids", "counts"), ("probs", "logits")  # what the backends feed and fetch
+_SHOW = reprlib.Repr()
+_SHOW.maxlevel, _SHOW.maxstring, _SHOW.maxother, _SHOW.maxlist, _SHOW.maxdict = 2, 40, 40, 4, 4
+
+
+def _show(value: object) -> str:
+    """A short repr for messages: bounded in length and depth, whatever a hostile file holds."""
+    return _SHOW.repr(value)
 
 
 @dataclass(frozen=True)
@@ -55,15 +70,57 @@ class Bundle:
         return self.manifest["oov"]["row"]
 
 
+# msgpack type bytes (msgpack spec): fixed-size values -> bytes after the type byte; bin/str/ext -> bytes of
+# their length field (ext adds a type byte); array/map 16/32 -> (bytes of the count, items per entry).
+_FIXED = {0xC0: 0, 0xC2: 0, 0xC3: 0, 0xCA: 4, 0xCB: 8, 0xCC: 1, 0xCD: 2, 0xCE: 4, 0xCF: 8, 0xD0: 1, 0xD1: 2,
+          0xD2: 4, 0xD3: 8, 0xD4: 2, 0xD5: 3, 0xD6: 5, 0xD7: 9, 0xD8: 17}
+_SIZED = {0xC4: 1, 0xC5: 2, 0xC6: 4, 0xD9: 1, 0xDA: 2, 0xDB: 4, 0xC7: 1, 0xC8: 2, 0xC9: 4}
+_COUNTED = {0xDC: (2, 1), 0xDD: (4, 1), 0xDE: (2, 2), 0xDF: (4, 2)}
+
+
+def _check_counts(data: bytes) -> None:
+    """Refuse containers that declare more entries than bytes remain, before msgpack allocates them.
+
+    msgpack allocates a declared array before reading its items, so nested headers each claiming
+    len(data) entries would cost up to 1024 x 8 x len(data) bytes; every item takes at least one byte,
+    so in a real file the items still owed never exceed the bytes left. Other damage is left to msgpack.
+    """
+    pos, owed, end = 0, 1, len(data)
+    while owed and pos < end:
+        b, pos, owed = data[pos], pos + 1, owed - 1
+        if b <= 0x7F or b >= 0xE0 or 0xA0 <= b <= 0xBF:  # positive / negative fixint, fixstr
+            pos += b - 0xA0 if 0xA0 <= b <= 0xBF else 0
+            continue
+        if b in _FIXED:
+            pos += _FIXED[b]
+            continue
+        if b in _SIZED:
+            k = _SIZED[b]
+            pos += k + int.from_bytes(data[pos : pos + k], "big") + (b in (0xC7, 0xC8, 0xC9))
+            continue
+        if b <= 0x9F:  # fixmap (two items per entry), fixarray
+            n = 2 * (b & 0x0F) if b <= 0x8F else b & 0x0F
+        elif b in _COUNTED:
+            k, per = _COUNTED[b]
+            n, pos = per * int.from_bytes(data[pos : pos + k], "big"), pos + k
+        else:
+            return  # 0xC1 is never used: msgpack names the error
+        owed += n
+        if owed > end - pos:
+            raise ValueError(f"a container at byte {pos} declares more entries than the {max(end - pos, 0)} bytes left")
+
+
 def _unpack(data: bytes, what: str, *, max_len: int, max_container: int) -> object:
     try:
+        _check_counts(data)
         return msgpack.unpackb(
             data, raw=False, strict_map_key=True, use_list=True,
             max_str_len=max_len, max_bin_len=max_len, max_ext_len=0,
             max_array_len=max_container, max_map_len=max_container,
         )
     except Exception as e:  # msgpack raises ExtraData, FormatError, StackError, ValueError, UnicodeDecodeError ...
-        raise BundleError(f"{what} is not a well-formed msgpack map ({type(e).__name__}: {e})") from e
+        detail = str(e) or "containers nested deeper than msgpack allows"  # StackError has no message
+        raise BundleError(f"{what} is not a well-formed msgpack map ({type(e).__name__}: {detail})") from e
 
 
 def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
@@ -75,11 +132,11 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
     if not isinstance(outer, dict):
         raise BundleError(f"{source}: not a danpack bundle (top level is {type(outer).__name__}, expected a map)")
     if outer.get("format") != FORMAT_NAME:
-        raise BundleError(f"{source}: not a danpack bundle (format is {str(outer.get('format'))[:40]!r}, "
+        raise BundleError(f"{source}: not a danpack bundle (format is {_show(outer.get('format'))}, "
                           f"expected {FORMAT_NAME!r}); pack one with `danpack pack`")
     version = outer.get("version")
     if not isinstance(version, int) or isinstance(version, bool):
-        raise BundleError(f"{source}: bundle version is {version!r}, expected an integer")
+        raise BundleError(f"{source}: bundle version is {_show(version)}, expected an integer")
     if version > FORMAT_VERSION:
         raise BundleError(f"{source}: bundle version {version} is newer than this runtime reads ({FORMAT_VERSION}); "
                           "upgrade danpack on the device or repack with the older packer")
@@ -93,7 +150,7 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
     # 2. integrity before anything in the payload is parsed or used
     actual = hashlib.sha256(payload).digest()
     if actual != digest:
-        raise BundleError(f"{source}: checksum mismatch (stored {digest.hex()[:16]}…, computed {actual.hex()[:16]}…); "
+        raise BundleError(f"{source}: checksum mismatch (stored sha256 {digest.hex()}, computed {actual.hex()}); "
                           "the file is damaged or was modified: copy it again from the packer's output")
     # 3. payload, bounded by its own size
     body = _unpack(payload, f"{source}: payload", max_len=len(payload), max_container=max(16, len(payload)))
@@ -109,9 +166,11 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
         raise BundleError(f"{source}: graph is {type(graph).__name__}, expected bytes")
     if not isinstance(raw_tensors, dict):
         raise BundleError(f"{source}: tensors is {type(raw_tensors).__name__}, expected a map")
+    # 4. tensors, then the manifest against them, then the graph against both
     vocab = tuple(vocab_text.split("\n")) if vocab_text else ()
     tensors = {name: _decode_tensor(source, name, spec) for name, spec in raw_tensors.items()}
     _check_manifest(source, manifest, vocab, tensors)
+    _check_graph(source, graph, tensors)
     return Bundle(manifest, vocab, graph, tensors, digest.hex(), len(data))
 
 
@@ -119,10 +178,15 @@ def read_bundle(path: str | os.PathLike) -> Bundle:
     """Read and verify a bundle file (size checked before reading)."""
     path = Path(path)
     try:
-        size = path.stat().st_size
-        if size > MAX_FILE_BYTES:
-            raise BundleError(f"{path}: {size} bytes is larger than any bundle ({MAX_FILE_BYTES} max)")
-        data = path.read_bytes()
+        info = path.stat()
+        if stat.S_ISDIR(info.st_mode):
+            raise IsADirectoryError(path)
+        if not (stat.S_ISREG(info.st_mode) or stat.S_ISFIFO(info.st_mode)):
+            raise BundleError(f"{path}: is not a regular file; pass the bundle file written by `danpack pack -o`")
+        if info.st_size > MAX_FILE_BYTES:
+            raise BundleError(f"{path}: {info.st_size} bytes is larger than any bundle ({MAX_FILE_BYTES} max)")
+        with open(path, "rb") as f:
+            data = f.read(MAX_FILE_BYTES + 1)  # bounded even if the file grows after stat()
     except FileNotFoundError as e:
         raise BundleError(f"{path}: no such bundle file") from e
     except IsADirectoryError as e:
@@ -133,15 +197,15 @@ def read_bundle(path: str | os.PathLike) -> Bundle:
 
 
 def _decode_tensor(source: str, name: object, spec: object) -> np.ndarray:
-    where = f"{source}: tensor {str(name)[:40]!r}"
+    where = f"{source}: tensor {_show(name)}"
     if not isinstance(name, str) or not isinstance(spec, dict) or set(spec) != {"dtype", "shape", "data"}:
         raise BundleError(f"{where} must be a map with dtype, shape and data")
     dtype, shape, data = spec["dtype"], spec["shape"], spec["data"]
-    if dtype not in DTYPES:
-        raise BundleError(f"{where} has dtype {str(dtype)[:20]!r}, expected one of {sorted(DTYPES)}")
+    if not isinstance(dtype, str) or dtype not in DTYPES:  # a list or map here is unhashable
+        raise BundleError(f"{where} has dtype {_show(dtype)}, expected one of {sorted(DTYPES)}")
     if (not isinstance(shape, list) or not 1 <= len(shape) <= 2
             or not all(isinstance(d, int) and not isinstance(d, bool) and d >= 0 for d in shape)):
-        raise BundleError(f"{where} has shape {str(shape)[:60]}, expected 1 or 2 non-negative integers")
+        raise BundleError(f"{where} has shape {_show(shape)}, expected 1 or 2 non-negative integers")
     if not isinstance(data, bytes):
         raise BundleError(f"{where} data is not bytes")
     expected = math.prod(shape) * DTYPES[dtype].itemsize  # Python ints: no overflow
@@ -161,23 +225,35 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
         raise fail("field 'labels' must list at least 2 label strings")
     try:
         TokenizerSpec.from_dict(m.get("tokenizer"))
-    except (TokenizerError, TypeError) as e:
-        raise fail(f"field 'tokenizer' is invalid: {e}") from e
+    except Exception as e:  # re.compile of a hostile pattern also raises OverflowError, RecursionError ...
+        raise fail(f"field 'tokenizer' is invalid ({type(e).__name__}: {str(e)[:200]})") from e
     oov, table_meta, layers = m.get("oov"), m.get("table"), m.get("layers")
-    if not isinstance(oov, dict) or oov.get("policy") not in OOV_POLICIES:
-        raise fail(f"field 'oov' must be a map with policy in {OOV_POLICIES}")
-    if not isinstance(table_meta, dict) or table_meta.get("dtype") not in DTYPES:
+    if not isinstance(oov, dict) or oov.get("policy") not in OOV_POLICIES or "row" not in oov:
+        raise fail(f"field 'oov' must be a map with policy in {OOV_POLICIES} and a row")
+    if not isinstance(table_meta, dict) or not isinstance(table_meta.get("dtype"), str) or table_meta["dtype"] not in DTYPES:
         raise fail("field 'table' must be a map with dtype int8 or float32")
     table = tensors.get("table")
     if table is None or table.ndim != 2 or table.dtype != DTYPES[table_meta["dtype"]]:
         raise fail("names a table the tensors do not hold (missing, not 2-D, or of another dtype)")
     rows = table.shape[0]
+    if rows < 1 or table.shape[1] < 1:
+        raise fail(f"names a table of shape {table.shape}, expected at least one row and one column")
     if len(vocab) > rows or len(vocab) < rows - 1 or len(set(vocab)) != len(vocab):
         raise fail(f"vocabulary ({len(vocab)} tokens) does not match the table ({rows} rows) or repeats a token")
+    if "" in vocab:
+        raise fail(f"vocabulary holds an empty token (line {vocab.index('') + 1}); tokens must be non-empty")
+    described = {k: table_meta.get(k) for k in ("rows", "width", "tokens")}
+    if described != {"rows": rows, "width": table.shape[1], "tokens": len(vocab)}:
+        raise fail(f"field 'table' describes {_show(described)}, but the bundle holds {rows} x {table.shape[1]} "
+                   f"with {len(vocab)} tokens")
     row = oov.get("row")
-    needs_row = oov["policy"] != "skip"
-    if needs_row != isinstance(row, int) or (needs_row and not 0 <= row < rows):
-        raise fail(f"field 'oov' row {row!r} is not valid for policy {oov['policy']!r} and {rows} rows")
+    if oov["policy"] == "skip":
+        valid_row = row is None
+    else:
+        valid_row = isinstance(row, int) and not isinstance(row, bool) and 0 <= row < rows
+    if not valid_row:
+        raise fail(f"field 'oov' row {_show(row)} is not valid for policy {oov['policy']!r} and {rows} rows "
+                   "(None for 'skip', a row id otherwise)")
     if rows == len(vocab) + 1 and oov["policy"] != "rest":
         raise fail("table has a row without a token but the policy is not 'rest'")
     if table_meta["dtype"] == "int8":
@@ -190,7 +266,8 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
         raise fail("field 'layers' must be a non-empty list")
     width = table.shape[1]
     for i, layer in enumerate(layers):
-        if not isinstance(layer, dict) or layer.get("activation") not in ACTIVATIONS or not isinstance(layer.get("weight"), bool):
+        if (not isinstance(layer, dict) or "activation" not in layer or layer["activation"] not in ACTIVATIONS
+                or not isinstance(layer.get("weight"), bool)):
             raise fail(f"layer {i} must be a map with activation in {ACTIVATIONS} and a bool 'weight'")
         bias = tensors.get(f"layer.{i}.bias")
         if bias is None or bias.ndim != 1 or bias.dtype != DTYPES["float32"]:
@@ -206,9 +283,34 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
     if width != len(labels):
         raise fail(f"output width {width} differs from the {len(labels)} labels")
     _check_probe(fail, m.get("probe"), rows, len(labels))
+    _check_description(fail, m)
     for name, t in tensors.items():
         if t.dtype == DTYPES["float32"] and not np.isfinite(t).all():
             raise fail(f"tensor {name!r} holds NaN or Inf")
+
+
+def _is_count(value: object) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool) and value >= 0
+
+
+def _check_description(fail, m: dict) -> None:
+    """The descriptive fields `danpack inspect` shows (README rule 6): present, of their type, shallow."""
+    source, selection = m.get("source"), m.get("selection")
+    if not (isinstance(source, dict) and isinstance(source.get("sha256"), str)
+            and all(_is_count(source.get(k)) for k in ("rows", "embedding_dim", "bytes"))):
+        raise fail("field 'source' must hold the float model's sha256 (str) and rows, embedding_dim, bytes (integers)")
+    coverage = selection.get("coverage") if isinstance(selection, dict) else None
+    if not isinstance(coverage, (int, float)) or isinstance(coverage, bool):
+        raise fail("field 'selection' must be a map with a numeric coverage")
+    if not isinstance(m.get("packer"), str) or not isinstance(m["table"].get("folded"), bool):
+        raise fail("fields 'packer' (a version string) and 'table.folded' (a bool) are required")
+    stack = [(m, 1)]  # the packer writes 4 levels (manifest, probe, ids, one sequence); JSON and repr recurse
+    while stack:
+        value, depth = stack.pop()
+        if depth > MAX_MANIFEST_DEPTH:
+            raise fail(f"nests deeper than {MAX_MANIFEST_DEPTH} levels of maps and lists")
+        children = value.values() if isinstance(value, dict) else value if isinstance(value, list) else ()
+        stack.extend((child, depth + 1) for child in children if isinstance(child, (dict, list)))
 
 
 def _check_probe(fail, probe: object, rows: int, classes: int) -> None:
@@ -216,12 +318,45 @@ def _check_probe(fail, probe: object, rows: int, classes: int) -> None:
     if not isinstance(probe, dict) or set(probe) != {"ids", "probs"}:
         raise fail("field 'probe' must be a map with ids and probs")
     ids, probs = probe["ids"], probe["probs"]
-    if not isinstance(ids, list) or not isinstance(probs, list) or len(ids) != len(probs) or len(ids) > 64:
-        raise fail("probe ids and probs must be lists of the same length (at most 64)")
+    if (not isinstance(ids, list) or not isinstance(probs, list) or len(ids) != len(probs)
+            or not 1 <= len(ids) <= 64):
+        raise fail("probe ids and probs must be lists of the same length (1 to 64): "
+                   "without a probe a backend that computes differently goes unnoticed")
     for seq, p in zip(ids, probs):
         if (not isinstance(seq, list) or len(seq) > 64
                 or not all(isinstance(i, int) and not isinstance(i, bool) and 0 <= i < rows for i in seq)):
             raise fail(f"probe ids must be lists of at most 64 row ids in [0, {rows})")
         if (not isinstance(p, list) or len(p) != classes
-                or not all(isinstance(x, float) and math.isfinite(x) for x in p)):
-            raise fail(f"probe probabilities must be {classes} finite floats per sequence")
+                or not all(isinstance(x, float) and 0.0 <= x <= 1.0 for x in p)):
+            raise fail(f"probe probabilities must be {classes} floats in [0, 1] per sequence")
+
+
+def _check_graph(source: str, graph: bytes, tensors: dict[str, np.ndarray]) -> None:
+    """The graph is a well-formed ONNX model whose external tensors are exactly the bundle's, by name, type and shape."""
+
+    def fail(what: str) -> BundleError:
+        return BundleError(f"{source}: graph {what}; repack the model with `danpack pack`")
+
+    try:
+        used, defined, inputs, outputs, external = read_graph_names(graph)
+    except (ValueError, UnicodeDecodeError) as e:
+        raise fail(f"is not a well-formed ONNX model ({e})") from e
+    for name in GRAPH_INPUTS:
+        if name not in inputs:
+            raise fail(f"has no input {name!r}")
+    for name in GRAPH_OUTPUTS:
+        if name not in outputs:
+            raise fail(f"has no output {name!r}")
+    undefined = sorted({n for n in used if n and n not in defined})
+    if undefined:
+        raise fail(f"uses {_show(undefined)}, which no input, initializer or node defines")
+    if set(external) - set(tensors):
+        raise fail(f"takes tensors the bundle does not hold: {_show(sorted(set(external) - set(tensors)))}")
+    if set(tensors) - set(external):
+        raise fail(f"does not use the bundle's tensors {_show(sorted(set(tensors) - set(external)))}")
+    for name, (dtype, dims) in external.items():
+        t = tensors[name]
+        want = ONNX_DTYPES["int8" if t.dtype == DTYPES["int8"] else "float32"]
+        if dtype != want or tuple(dims) != t.shape:
+            raise fail(f"declares tensor {name!r} as type {dtype} shape {_show(dims)}, "
+                       f"but the bundle holds {t.dtype} {t.shape}")

@@ -30,11 +30,17 @@ class Classifier:
     def _check_probe(self) -> None:
         """Re-run the packer's probe sequences: a backend that computes differently is refused at load."""
         probe = self.bundle.manifest["probe"]
-        if not probe["ids"]:
-            return
+        expected = np.asarray(probe["probs"], dtype=np.float32)  # (P, C)
         ids, counts = encode_batch(probe["ids"])
-        probs = self.backend.run(ids, counts)[0]  # (P, C)
-        worst = float(np.abs(probs - np.asarray(probe["probs"], dtype=np.float32)).max())
+        try:
+            probs = np.asarray(self.backend.run(ids, counts)[0])  # (P, C)
+        except Exception as e:  # onnxruntime raises Fail / InvalidArgument for a graph that fails only when run
+            raise BundleError(f"the bundle's graph fails when run by the {self.backend.name} backend "
+                              f"({type(e).__name__}: {str(e)[:200]}); repack the model with `danpack pack`") from e
+        if probs.shape != expected.shape:
+            raise BundleError(f"the bundle's graph answers the probe with shape {probs.shape}, expected "
+                              f"{expected.shape}; repack the model with `danpack pack`")
+        worst = float(np.abs(probs - expected).max())
         if not worst <= PROBE_TOLERANCE:
             raise BundleError(f"the {self.backend.name} backend disagrees with the packer on the bundle's probe "
                               f"(max difference {worst:.2e} > {PROBE_TOLERANCE}); the bundle or the runtime is damaged")

@@ -110,8 +110,8 @@ class TokenizerSpec:
             raise TokenizerError("tokenizer pattern must be a non-empty string")
         try:
             compiled = re.compile(self.regex)
-        except re.error as e:
-            raise TokenizerError(f"tokenizer pattern {self.pattern!r} does not compile: {e}") from e
+        except (re.error, OverflowError, RecursionError, ValueError) as e:
+            raise TokenizerError(f"tokenizer pattern {self.pattern[:60]!r} does not compile: {e}") from e
         if compiled.fullmatch("") is not None:
             raise TokenizerError(f"tokenizer pattern {self.pattern!r} matches the empty string; every token must be non-empty")
         if compiled.groups:

@@ -1,0 +1,117 @@
+"""Reading the names and external tensors of an ONNX ModelProto with the protocol-buffers wire format.
+
+Stdlib only, so the device runtime can check a bundle's graph without the onnx package; raises
+ValueError (or UnicodeDecodeError) on malformed bytes. tests/test_hostile_bundles.py checks it
+against onnx's own parser.
+"""
+
+from __future__ import annotations
+
+# Field numbers from onnx.proto: ModelProto.graph = 7; GraphProto.node = 1, initializer = 5, input = 11,
+# output = 12; NodeProto.input = 1, output = 2; TensorProto.dims = 1, data_type = 2, name = 8,
+# data_location = 14 (EXTERNAL = 1); ValueInfoProto.name = 1. The string fields listed in _TEXT must be
+# UTF-8 (onnxruntime's Python layer fails to decode them otherwise, and prints retries to stdout).
+_TEXT = {"model": (2, 3, 4, 6), "opset": (1,), "graph": (2, 10), "node": (1, 2, 3, 4, 6, 7), "attribute": (1, 13, 21),
+         "tensor": (8, 12), "value": (1, 3)}
+
+
+def _varint(buf: memoryview, pos: int) -> tuple[int, int]:
+    if pos < len(buf) and buf[pos] < 0x80:  # one byte: field keys, lengths and dims below 128
+        return buf[pos], pos + 1
+    value = 0
+    for shift in range(0, 70, 7):
+        if pos >= len(buf):
+            raise ValueError("truncated varint")
+        byte = buf[pos]
+        pos += 1
+        value |= (byte & 0x7F) << shift
+        if byte < 0x80:
+            return value, pos
+    raise ValueError("varint longer than 10 bytes")
+
+
+def _fields(buf: memoryview):
+    """(field number, wire type, value) of each field of one protobuf message; raises ValueError if malformed."""
+    pos = 0
+    while pos < len(buf):
+        key, pos = _varint(buf, pos)
+        number, wire = key >> 3, key & 7
+        if number == 0:
+            raise ValueError("field number 0")
+        if wire == 0:
+            value, pos = _varint(buf, pos)
+        elif wire in (1, 5):
+            size = 8 if wire == 1 else 4
+            value, pos = buf[pos : pos + size], pos + size
+        elif wire == 2:
+            size, pos = _varint(buf, pos)
+            value, pos = buf[pos : pos + size], pos + size
+        else:
+            raise ValueError(f"wire type {wire}")
+        if pos > len(buf):
+            raise ValueError("field runs past the end of its message")
+        yield number, wire, value
+
+
+def _text(value: object) -> str:
+    if not isinstance(value, memoryview):
+        raise ValueError("a name is not a length-delimited field")
+    return bytes(value).decode("utf-8")
+
+
+def _strings(fields: list, kind: str) -> list:
+    """The fields of one message, after checking its string fields are UTF-8."""
+    for number, _, value in fields:
+        if number in _TEXT[kind]:
+            _text(value)
+    return fields
+
+
+def read_graph_names(graph: bytes) -> tuple[list[str], set[str], set[str], set[str], dict[str, tuple[int, list[int]]]]:
+    """(node inputs, defined names, graph inputs, graph outputs, external initializers: name -> (type, dims))."""
+    model = _strings(list(_fields(memoryview(graph))), "model")
+    for number, wire, value in model:
+        if number == 8 and wire == 2:  # OperatorSetIdProto
+            _strings(list(_fields(value)), "opset")
+    bodies = [v for n, w, v in model if n == 7 and w == 2]
+    if len(bodies) != 1:
+        raise ValueError(f"{len(bodies)} graphs in the model, expected 1")
+    used: list[str] = []
+    defined: set[str] = set()
+    inputs: set[str] = set()
+    outputs: set[str] = set()
+    external: dict[str, tuple[int, list[int]]] = {}
+    for number, wire, value in _strings(list(_fields(bodies[0])), "graph"):
+        if number == 1 and wire == 2:  # NodeProto
+            for f, w, v in _strings(list(_fields(value)), "node"):
+                if f == 1:
+                    used.append(_text(v))
+                elif f == 2:
+                    defined.add(_text(v))
+                elif f == 5 and w == 2:  # AttributeProto
+                    _strings(list(_fields(v)), "attribute")
+        elif number == 5 and wire == 2:  # TensorProto initializer
+            name, dtype, dims, location = "", 0, [], 0
+            for f, w, v in _strings(list(_fields(value)), "tensor"):
+                if f == 8:
+                    name = _text(v)
+                elif f == 2 and w == 0:
+                    dtype = v
+                elif f == 14 and w == 0:
+                    location = v
+                elif f == 1 and w == 0:
+                    dims.append(v)
+                elif f == 1 and w == 2:  # packed repeated int64
+                    pos = 0
+                    while pos < len(v):
+                        d, pos = _varint(v, pos)
+                        dims.append(d)
+            defined.add(name)
+            if location == 1:
+                external[name] = (dtype, dims)
+        elif number in (11, 12) and wire == 2:  # ValueInfoProto graph input / output
+            names = [_text(v) for f, w, v in _strings(list(_fields(value)), "value") if f == 1]
+            (inputs if number == 11 else outputs).update(names)
+    return used, defined | inputs, inputs, outputs, external
+
+
