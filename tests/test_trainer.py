@@ -332,11 +332,25 @@ def test_shipped_model_loads_is_small_and_its_recorded_accuracy_holds(task):
     assert 0.75 < meta["test_accuracy"] < 0.97  # learned, and the data is not trivially separable
 
 
-def test_build_check_rebuilds_the_shipped_models_byte_for_byte():
+def test_build_check_rebuilds_the_shipped_models():
     # Runs the documented command `python -m models_demo.build --check` (trains both tasks).
+    # Byte-identical under the BLAS kernel that built them; within 1e-5 under another one.
     result = CliRunner().invoke(build.cli, ["--check"])
     assert result.exit_code == 0, result.output
-    assert result.stdout.count("identical") == 2
+    lines = result.stdout.splitlines()
+    assert len(lines) == 2 and all(line.endswith("identical") or "equal within 1e-05" in line for line in lines)
+
+
+@pytest.mark.parametrize("nudge, expected", [(2e-6, "equal within 1e-05"), (1e-3, "DIFFERS: weights.safetensors")])
+def test_compare_models_accepts_only_tiny_weight_changes(tmp_path, nudge, expected):
+    from safetensors.numpy import load_file, save_file
+
+    shutil.copytree(build.SHIPPED_DIR / "topic", tmp_path / "topic")
+    weights = load_file(tmp_path / "topic" / "weights.safetensors")
+    weights["output.bias"] = weights["output.bias"] + np.float32(nudge)
+    save_file(weights, tmp_path / "topic" / "weights.safetensors")
+    ok, verdict = build.compare_models(tmp_path / "topic", build.SHIPPED_DIR / "topic")
+    assert verdict.startswith(expected) and ok is expected.startswith("equal")
 
 
 def test_build_check_reports_a_changed_file(tmp_path):
