@@ -8,6 +8,7 @@ A text with no known token averages to the zero vector (documented behaviour).
 
 from __future__ import annotations
 
+import itertools
 from dataclasses import dataclass
 
 import numpy as np
@@ -29,11 +30,11 @@ class Layer:
 
 def encode_batch(id_lists: list[list[int]]) -> tuple[np.ndarray, np.ndarray]:
     """Pad id lists into (ids, counts); padding is id 0, marked only by the counts."""
-    counts = np.fromiter((len(x) for x in id_lists), dtype=np.int64, count=len(id_lists))  # (B,)
+    counts = np.fromiter(map(len, id_lists), dtype=np.int64, count=len(id_lists))  # (B,)
     width = int(counts.max()) if len(id_lists) else 0
     ids = np.zeros((len(id_lists), max(width, 1)), dtype=np.int64)  # (B, T)
-    for row, x in enumerate(id_lists):
-        ids[row, : len(x)] = x
+    flat = np.fromiter(itertools.chain.from_iterable(id_lists), dtype=np.int64, count=int(counts.sum()))  # (sum n,)
+    ids[np.arange(ids.shape[1])[None, :] < counts[:, None]] = flat  # row-major fill of each row's first n slots
     return ids, counts
 
 

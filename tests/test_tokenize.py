@@ -18,7 +18,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from runtime.errors import DanpackError, TokenizerError
-from runtime.tokenize import DEFAULT_PATTERN, Tokenizer, TokenizerSpec
+from runtime.tokenize import ASCII_PRESETS, DEFAULT_PATTERN, PRESETS, Tokenizer, TokenizerSpec
 
 TOK = Tokenizer()
 
@@ -470,3 +470,36 @@ def test_bug_pattern_that_matches_the_empty_string_yields_empty_tokens():
     except TokenizerError:
         return
     assert "" not in tok.tokenize("bbb")
+
+
+# --- the ASCII fast path -------------------------------------------------------------
+# Every ASCII string must split exactly as the full preset pattern splits it (Python `re`,
+# stdlib, is the oracle). The alphabet is all 128 code points, so controls, "_" and every
+# punctuation mark are drawn.
+
+ascii_text = st.text(alphabet=st.characters(max_codepoint=127), max_size=80)
+
+
+@pytest.mark.parametrize("preset", sorted(ASCII_PRESETS))
+@given(text=ascii_text)
+@settings(max_examples=2000, deadline=None, database=None)
+def test_ascii_preset_splits_like_the_full_pattern(preset, text):
+    import re
+
+    assert re.findall(ASCII_PRESETS[preset], text) == re.findall(PRESETS[preset], text)
+
+
+@pytest.mark.parametrize("code", range(128))
+def test_ascii_preset_agrees_on_every_single_character(code):
+    import re
+
+    text = f"a{chr(code)}b {chr(code)}"
+    for preset, pattern in ASCII_PRESETS.items():
+        assert re.findall(pattern, text) == re.findall(PRESETS[preset], text), (preset, repr(chr(code)))
+
+
+@pytest.mark.parametrize("case", ["lower", "casefold", "keep"])
+def test_tokenize_takes_the_same_tokens_with_and_without_the_fast_path(case):
+    tok = Tokenizer(TokenizerSpec(case=case))
+    for text in ["Don't STOP-me now, it's 5.0!", "type-2 -- ok_then 'quoted' a--b", "x\x00y\x7fz ~`^"]:
+        assert tok.tokenize(text) == tok._findall(tok.normalize(text))
