@@ -12,6 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
+from packer.inspect import size_breakdown
 from packer.model import load_model, model_bytes
 from packer.pack import PackOptions, pack_model
 from runtime.bundle import read_bundle
@@ -26,7 +27,7 @@ from .results import CaseReport
 from .stats import fmt_bytes, fmt_percent, fmt_ratio, fmt_seconds, summarize
 from .tables import make_table
 from .timing import single_latency
-from .workdata import long_comments, say
+from .workdata import long_comments, say, synthetic_model_dir
 
 TOKENIZE_ONLY = "tokenize-only"  # Tokenizer.tokenize of the same text, timed in the same rounds
 
@@ -165,4 +166,36 @@ def synthetic_case(config: BenchConfig, model_dir: Path) -> CaseReport:
     bundle = read_bundle(variants[default][0])
     report.notes.append(f"folded bundle: {bundle.manifest['table']['rows']:,} rows x {bundle.manifest['table']['width']} "
                         f"int8 ({fmt_bytes(bundle.tensors['table'].nbytes)} table)")
+    overhead(config, report)
     return report
+
+
+def overhead(config: BenchConfig, report: CaseReport) -> None:
+    """Bytes a bundle spends beyond its int8 table and scales, on a synthetic model of `overhead_rows` rows.
+
+    Sizes are deterministic (byte-identical bundles), so one pack per variant is enough.
+    """
+    rows = config.overhead_rows
+    model_dir = synthetic_model_dir(config, rows)
+    vocab_chars = sum(len(t) for t in load_model(model_dir).vocab) / rows
+    say(f"  overhead at {rows:,} rows")
+    table_rows = []
+    for name, options in (("int8, first layer folded (default)", PackOptions()),
+                          ("int8, not folded (fold=no)", PackOptions(fold="no"))):
+        path = config.bundles_dir / f"overhead-{options.fold}.dpk"
+        pack_model(model_dir, path, options)
+        parts = size_breakdown(read_bundle(path))
+        total = sum(parts.values())
+        beyond = total - parts["table"] - parts["scales"]
+        framing = parts["graph"] + parts["other"]
+        table_rows.append((name, fmt_bytes(total), fmt_bytes(parts["table"] + parts["scales"]), fmt_bytes(parts["vocab"]),
+                           fmt_bytes(parts["layers"]), fmt_bytes(framing), fmt_percent(beyond / total, 2),
+                           fmt_percent(framing / total, 2)))
+        report.figures[f"overhead.{options.fold}"] = beyond / total
+        report.figures[f"overhead_framing.{options.fold}"] = framing / total
+    report.tables.append(make_table(
+        f"Bytes beyond the int8 table and scales ({rows:,}-row synthetic model, {config.synthetic_dim} wide)",
+        ["bundle", "bytes", "table + scales", "vocabulary", "layers", "graph + manifest + framing",
+         "beyond table + scales", "graph + manifest + framing share"], table_rows,
+        f"synthetic tokens of {vocab_chars:.1f} characters on average (a..z, aa..zz, aaa..); the vocabulary is "
+        "stored once as UTF-8 joined by newlines, so longer words cost their own bytes"))

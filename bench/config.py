@@ -37,6 +37,7 @@ class BenchConfig:
     synthetic_rows: int = 400_000  # case 3 table rows
     synthetic_dim: int = 300  # case 3 table width
     synthetic_hidden: int = 64  # case 3 hidden layer
+    overhead_rows: int = 20_000  # case 3: bytes beyond the int8 table and scales, measured at this many rows
     profile_calls: int = 2000  # session calls under onnxruntime's profiler
 
     @property

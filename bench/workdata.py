@@ -143,9 +143,13 @@ def synthetic_tokens(n: int) -> list[str]:
     return out
 
 
-def synthetic_model_dir(config: BenchConfig) -> Path:
-    """A random float DAN of rows x dim (hidden layer, relu, 2 classes), saved as npz, built once."""
-    rows, dim, hidden = config.synthetic_rows, config.synthetic_dim, config.synthetic_hidden
+def synthetic_model_dir(config: BenchConfig, rows: int | None = None) -> Path:
+    """A random float DAN of rows x dim (hidden layer, relu, 2 classes), saved as npz, built once.
+
+    `rows` defaults to the case-3 table; the overhead measurement asks for a smaller one.
+    """
+    rows = config.synthetic_rows if rows is None else rows
+    dim, hidden = config.synthetic_dim, config.synthetic_hidden
     target = config.models_dir / f"synthetic-{rows}x{dim}-h{hidden}"
     if (target / "config.json").exists():
         return target

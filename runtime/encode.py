@@ -25,8 +25,10 @@ class Encoder:
     def token_ids(self, text: str) -> list[int]:
         """Row ids of one text's tokens, in order, after the OOV policy."""
         get, oov = self.index.get, self.oov_id
-        ids = [get(token, oov) for token in self.tokenizer.tokenize(text)]
-        return ids if oov is not None else [i for i in ids if i is not None]
+        tokens = self.tokenizer.tokenize(text)
+        if oov is not None:
+            return [get(token, oov) for token in tokens]
+        return [i for token in tokens if (i := get(token)) is not None]  # skip: left out of the mean
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts."""

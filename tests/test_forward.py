@@ -96,7 +96,18 @@ def test_encode_batch_empty_inputs_keep_a_width_of_one():
     ids, counts = encode_batch([])
     assert ids.shape == (0, 1) and counts.shape == (0,)
     ids, counts = encode_batch([[]])
-    assert ids.shape == (1, 1) and counts.tolist() == [0]
+    assert ids.tolist() == [[0]] and counts.tolist() == [0]  # padding is id 0 (the bundle format, rule 7)
+
+
+@pytest.mark.parametrize("batch", [1, 2, 16, 17, 300])  # each fill path of encode_batch and its edges
+def test_encode_batch_matches_plain_python_padding(batch):
+    rng = np.random.default_rng(batch)
+    lists = random_id_lists(rng, 1000, batch, 40)
+    width = max([len(x) for x in lists] + [1])
+    expected = [x + [0] * (width - len(x)) for x in lists]  # the oracle: plain Python lists
+    ids, counts = encode_batch(lists)
+    assert ids.dtype == np.int64 and counts.dtype == np.int64 and ids.shape == (batch, width)
+    assert ids.tolist() == expected and counts.tolist() == [len(x) for x in lists]
 
 
 # --- mean embedding ---------------------------------------------------------------------------------------
