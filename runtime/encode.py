@@ -28,7 +28,7 @@ class Encoder:
         tokens = self.tokenizer.tokenize(text)
         if oov is not None:
             return [get(token, oov) for token in tokens]
-        return [i for token in tokens if (i := get(token)) is not None]  # skip: left out of the mean
+        return [i for i in map(get, tokens) if i is not None]  # skip: left out of the mean
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts."""
