@@ -249,3 +249,23 @@ def test_unwritable_output_exits_2_naming_the_path(inputs, packed, tmp_path):
     _assert_usage_error(result, str(target))
     result = RUNNER.invoke(app, ["export-onnx", str(packed[0]), "-o", str(blocker / "m.onnx")])
     _assert_usage_error(result, str(blocker / "m.onnx"))
+
+
+# --- help ------------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("command", ["pack", "inspect", "export-onnx", "check", "convert-torch", "demo"])
+def test_every_command_has_help_for_every_option(command):
+    result = invoke(command, "--help")
+    assert result.exit_code == 0
+    options = re.findall(r"^\s+(?:-\w, )?(--[a-z][a-z-]*)", result.output, flags=re.M)
+    assert options and "--help" in options
+    # each option line carries a description (help texts are plain text, never markup)
+    for line in result.output.splitlines():
+        if re.match(r"^\s+(?:-\w, )?--[a-z]", line) and "--help" not in line:
+            assert len(line.split(None, 2)) >= 2, line
+
+
+def test_help_texts_print_brackets_as_written():
+    # Help strings hold "[default: ...]" and "danpack[glove]"; rich markup would swallow both.
+    assert "[default: 1.0]" in " ".join(invoke("check", "--help").output.split())
+    assert "danpack[glove]" in invoke("demo", "--help").output

@@ -11,6 +11,7 @@ app = typer.Typer(
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_show_locals=False,
+    rich_markup_mode=None,  # help texts are plain: "[default: …]" and "danpack[glove]" must print as written
 )
 
 
