@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from .bundle import Bundle
-from .errors import BundleError
+from .errors import BundleError, DanpackError
 from .forward import Layer, forward_logits, softmax
 
 BACKENDS = ("onnxruntime", "numpy")
@@ -71,4 +71,4 @@ def open_backend(bundle: Bundle, backend: str, threads: int):
         return OrtBackend(bundle, threads)
     if backend == "numpy":
         return NumpyBackend(bundle)
-    raise ValueError(f"backend {backend!r} is not one of {BACKENDS}")
+    raise DanpackError(f"backend {backend!r} is not one of {BACKENDS}")

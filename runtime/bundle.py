@@ -30,6 +30,13 @@ FORMAT_NAME = "danpack-bundle"
 FORMAT_VERSION = 1
 MAX_FILE_BYTES = 1 << 32  # 4 GiB: far above any DAN table we pack (400k x 300 int8 is 120 MB)
 MAX_MANIFEST_DEPTH = 8  # maps and lists inside the manifest; the packer writes 4
+# msgpack items in a payload: the packer writes a few thousand (mostly the probe); Python objects cost
+# ~10x their msgpack bytes, so a budget, not the file size, bounds what decoding may allocate.
+MAX_PAYLOAD_ITEMS = 1 << 18
+# Largest |logit| a bundle's weights may reach for any text: float32 overflows at 3.4e38, and a 512-token
+# sum or a 300-term dot product of values below this stays far from it. Trained models reach < 1e4.
+MAX_LOGIT_REACH = 1e30
+MAX_CONTAINER = 1 << 16  # entries of one map or list (the probe's lists hold at most 64)
 DTYPES = {"int8": np.dtype("i1"), "float32": np.dtype("<f4")}
 OOV_POLICIES = ("skip", "unk", "rest")
 ACTIVATIONS = ("relu", "tanh", None)
@@ -37,6 +44,9 @@ OUTER_KEYS = {"format", "version", "sha256", "payload"}
 PAYLOAD_KEYS = {"graph", "manifest", "tensors", "vocab"}
 ONNX_DTYPES = {"float32": 1, "int8": 3}  # TensorProto.DataType: FLOAT = 1, INT8 = 3 (onnx.proto)
 GRAPH_INPUTS, GRAPH_OUTPUTS = ("ids", "counts"), ("probs", "logits")  # what the backends feed and fetch
+# The operators packer/graph.py writes (default ONNX domain); tests/test_graph.py keeps the two in step.
+GRAPH_OPS = frozenset({"Add", "Cast", "Div", "Gather", "Gemm", "Identity", "Less", "MatMul", "Max", "Mul", "Range",
+                       "Relu", "Shape", "Softmax", "Squeeze", "Tanh", "Unsqueeze"})
 _SHOW = reprlib.Repr()
 _SHOW.maxlevel, _SHOW.maxstring, _SHOW.maxother, _SHOW.maxlist, _SHOW.maxdict = 2, 40, 40, 4, 4
 
@@ -78,16 +88,19 @@ _SIZED = {0xC4: 1, 0xC5: 2, 0xC6: 4, 0xD9: 1, 0xDA: 2, 0xDB: 4, 0xC7: 1, 0xC8: 2
 _COUNTED = {0xDC: (2, 1), 0xDD: (4, 1), 0xDE: (2, 2), 0xDF: (4, 2)}
 
 
-def _check_counts(data: bytes) -> None:
+def _check_counts(data: bytes, max_items: int = MAX_PAYLOAD_ITEMS) -> None:
     """Refuse containers that declare more entries than bytes remain, before msgpack allocates them.
 
     msgpack allocates a declared array before reading its items, so nested headers each claiming
     len(data) entries would cost up to 1024 x 8 x len(data) bytes; every item takes at least one byte,
-    so in a real file the items still owed never exceed the bytes left. Other damage is left to msgpack.
+    so in a real file the items still owed never exceed the bytes left. More than `max_items` items in
+    all are refused too. Other damage is left to msgpack.
     """
-    pos, owed, end = 0, 1, len(data)
+    pos, owed, end, budget = 0, 1, len(data), max_items
     while owed and pos < end:
-        b, pos, owed = data[pos], pos + 1, owed - 1
+        b, pos, owed, budget = data[pos], pos + 1, owed - 1, budget - 1
+        if budget < 0:
+            raise ValueError(f"more than {max_items} msgpack items (a bundle holds a few thousand)")
         if b <= 0x7F or b >= 0xE0 or 0xA0 <= b <= 0xBF:  # positive / negative fixint, fixstr
             pos += b - 0xA0 if 0xA0 <= b <= 0xBF else 0
             continue
@@ -153,7 +166,7 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
         raise BundleError(f"{source}: checksum mismatch (stored sha256 {digest.hex()}, computed {actual.hex()}); "
                           "the file is damaged or was modified: copy it again from the packer's output")
     # 3. payload, bounded by its own size
-    body = _unpack(payload, f"{source}: payload", max_len=len(payload), max_container=max(16, len(payload)))
+    body = _unpack(payload, f"{source}: payload", max_len=len(payload), max_container=MAX_CONTAINER)
     if not isinstance(body, dict) or set(body) != PAYLOAD_KEYS:
         keys = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
         raise BundleError(f"{source}: payload holds {keys}, expected the keys {sorted(PAYLOAD_KEYS)}")
@@ -181,7 +194,7 @@ def read_bundle(path: str | os.PathLike) -> Bundle:
         info = path.stat()
         if stat.S_ISDIR(info.st_mode):
             raise IsADirectoryError(path)
-        if not (stat.S_ISREG(info.st_mode) or stat.S_ISFIFO(info.st_mode)):
+        if not stat.S_ISREG(info.st_mode):  # a FIFO or device could block the load forever
             raise BundleError(f"{path}: is not a regular file; pass the bundle file written by `danpack pack -o`")
         if info.st_size > MAX_FILE_BYTES:
             raise BundleError(f"{path}: {info.st_size} bytes is larger than any bundle ({MAX_FILE_BYTES} max)")
@@ -282,11 +295,41 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
         width = out
     if width != len(labels):
         raise fail(f"output width {width} differs from the {len(labels)} labels")
+    if table_meta.get("folded") is not (not layers[0]["weight"]):
+        raise fail(f"field 'table.folded' is {_show(table_meta.get('folded'))}, but layer 0 "
+                   f"{'has no' if not layers[0]['weight'] else 'has its'} weight")
     _check_probe(fail, m.get("probe"), rows, len(labels))
     _check_description(fail, m)
     for name, t in tensors.items():
         if t.dtype == DTYPES["float32"] and not np.isfinite(t).all():
             raise fail(f"tensor {name!r} holds NaN or Inf")
+    reach = _logit_reach(tensors, layers)
+    if not reach < MAX_LOGIT_REACH:
+        raise fail(f"weights can drive the logits to {reach:.3g}, past what float32 computes safely "
+                   f"({MAX_LOGIT_REACH:g}); a trained model stays far below, so the bundle is damaged or crafted")
+
+
+def _logit_reach(tensors: dict[str, np.ndarray], layers: list[dict]) -> float:
+    """The largest |logit| any text can produce, by interval arithmetic in float64 (same stack as runtime.forward).
+
+    |mean| ≤ the largest |table entry| (dequantised), then |z| ≤ |W|·|a| + |b| per layer; ReLU and tanh
+    never increase magnitudes. Below MAX_LOGIT_REACH no sum of the forward pass can overflow float32.
+    """
+    table = tensors["table"]  # (R, W)
+    if "scales" in tensors:  # int8: |q| ≤ 127 (or 128 for a crafted -128) times the row scale
+        top = float(np.abs(table).max(initial=0)) * float(tensors["scales"].astype(np.float64).max(initial=0.0))
+    else:
+        top = float(np.abs(table).max(initial=0.0))
+    m = np.full(table.shape[1], top)  # (W,): bound on each coordinate of the mean
+    with np.errstate(over="ignore", invalid="ignore"):
+        for i, spec in enumerate(layers):
+            bias = np.abs(tensors[f"layer.{i}.bias"].astype(np.float64))  # (out,)
+            weight = tensors.get(f"layer.{i}.weight") if spec["weight"] else None
+            m = bias + (m if weight is None else np.abs(weight.astype(np.float64)) @ m)  # (out,)
+            if spec["activation"] == "tanh":
+                m = np.minimum(m, 1.0)
+    reach = float(m.max(initial=0.0))
+    return reach if np.isfinite(reach) else float("inf")
 
 
 def _is_count(value: object) -> bool:
@@ -338,9 +381,13 @@ def _check_graph(source: str, graph: bytes, tensors: dict[str, np.ndarray]) -> N
         return BundleError(f"{source}: graph {what}; repack the model with `danpack pack`")
 
     try:
-        used, defined, inputs, outputs, external = read_graph_names(graph)
+        names = read_graph_names(graph)
     except (ValueError, UnicodeDecodeError) as e:
         raise fail(f"is not a well-formed ONNX model ({e})") from e
+    used, defined, inputs, outputs, external = names.used, names.defined, names.inputs, names.outputs, names.external
+    foreign = sorted({f"{d}:{op}" if d else op for d, op in names.ops if d not in ("", "ai.onnx") or op not in GRAPH_OPS})
+    if foreign:  # a crafted graph could loop or allocate without bound: only the packer's operators run
+        raise fail(f"uses operators {_show(foreign)}, which danpack never writes (it writes only {', '.join(sorted(GRAPH_OPS))})")
     for name in GRAPH_INPUTS:
         if name not in inputs:
             raise fail(f"has no input {name!r}")
@@ -354,6 +401,8 @@ def _check_graph(source: str, graph: bytes, tensors: dict[str, np.ndarray]) -> N
         raise fail(f"takes tensors the bundle does not hold: {_show(sorted(set(external) - set(tensors)))}")
     if set(tensors) - set(external):
         raise fail(f"does not use the bundle's tensors {_show(sorted(set(tensors) - set(external)))}")
+    if set(external) - set(used):
+        raise fail(f"declares tensors {_show(sorted(set(external) - set(used)))} that no node uses")
     for name, (dtype, dims) in external.items():
         t = tensors[name]
         want = ONNX_DTYPES["int8" if t.dtype == DTYPES["int8"] else "float32"]

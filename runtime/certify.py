@@ -169,7 +169,8 @@ def gain_vector(layers: list[tuple[np.ndarray | None, np.ndarray, str | None]]) 
     ReLU, tanh). The rows of that product are bounded by interval arithmetic, from the logits back to
     the table. Never larger than |W_L| ··· |W_1| 1, and equal to it in the worst case.
     """
-    weight = layers[-1][0].astype(np.float64)  # (C, H)
+    last = layers[-1][0]  # (C, H); None for a lone folded layer, whose Jacobian is the identity
+    weight = np.eye(layers[-1][1].shape[0]) if last is None else last.astype(np.float64)  # (C, H)
     lo, hi = weight.copy(), weight.copy()  # (C, H): interval of each Jacobian entry
     for weight, _, activation in reversed(layers[:-1]):
         if activation is not None:  # × D: a slope in [0, 1] widens each interval to include 0
@@ -201,13 +202,13 @@ def logit_bounds(bound: DriftBound, ids: np.ndarray, counts: np.ndarray) -> np.n
 
 def encode_kept(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) bool: every token has its own row)."""
-    index, oov, tokenize = encoder.index, encoder.oov_id, encoder.tokenizer.tokenize
+    oov, tokenize = encoder.oov_id, encoder.tokenizer.tokenize
     id_lists, kept = [], np.ones(len(texts), dtype=bool)
     for i, text in enumerate(texts):
-        rows = [index.get(token) for token in tokenize(text)]
-        if any(r is None or r == oov for r in rows):  # pruned, unknown, or on the out-of-vocabulary row
-            kept[i] = False
-            rows = [oov if r is None else r for r in rows] if oov is not None else [r for r in rows if r is not None]
+        tokens = tokenize(text)
+        rows = encoder.map_tokens(tokens)
+        # not kept: a token pruned or unknown (left out under skip), or on the out-of-vocabulary row
+        kept[i] = len(rows) == len(tokens) if oov is None else oov not in rows
         id_lists.append(rows)
     ids, counts = encode_batch(id_lists)
     return ids, counts, kept

@@ -16,6 +16,25 @@ from .forward import encode_batch
 from .tokenize import Tokenizer
 
 PROBE_TOLERANCE = 1e-4  # float32 differences between backends are ~1e-7; damage is far larger
+# Texts per backend call: a batch pads every text to its longest one, so memory grows with
+# batch x longest text (up to 512 tokens); 256 keeps that under ~20 MB and costs nothing in speed.
+CALL_TEXTS = 256
+MAX_THREADS = 256  # intra-op threads: far above any device's cores, below onnxruntime's own limits
+
+
+def as_texts(texts: object) -> list[str]:
+    """The `texts` argument as a list of str: a lone string or a non-str item is a caller's mistake, said plainly."""
+    if isinstance(texts, (str, bytes)):
+        raise DanpackError(f"texts must be a list of strings, found a single {type(texts).__name__}; "
+                           "wrap it: predict([text])")
+    try:
+        items = list(texts)  # type: ignore[call-overload]
+    except TypeError as e:
+        raise DanpackError(f"texts must be a list of strings, found {type(texts).__name__}") from e
+    for i, text in enumerate(items):
+        if not isinstance(text, str):
+            raise DanpackError(f"texts[{i}] is {type(text).__name__}, expected str (decode bytes first)")
+    return items
 
 
 class Classifier:
@@ -54,9 +73,13 @@ class Classifier:
         return self.bundle.manifest
 
     def run(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
-        """(B,) texts -> ((B, C) probabilities, (B, C) logits)."""
-        ids, counts = self.encoder.encode(texts)  # (B, T), (B,)
-        return self.backend.run(ids, counts)
+        """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call."""
+        texts = as_texts(texts)
+        if len(texts) <= CALL_TEXTS:
+            return self.backend.run(*self.encoder.encode(texts))  # (B, T) ids, (B,) counts in
+        parts = [self.backend.run(*self.encoder.encode(texts[i : i + CALL_TEXTS]))
+                 for i in range(0, len(texts), CALL_TEXTS)]
+        return np.concatenate([p for p, _ in parts]), np.concatenate([z for _, z in parts])  # (B, C) each
 
     def predict_proba(self, texts: Sequence[str]) -> np.ndarray:
         """(B,) texts -> (B, C) probabilities in label order."""
@@ -79,18 +102,22 @@ class Classifier:
         cannot have changed the label (the float model predicts the same; see runtime/certify.py)."""
         from .certify import certify_packed, encode_kept
 
-        bound = self.drift_bound
-        ids, counts, kept = encode_kept(self.encoder, texts)  # (B, T), (B,), (B,)
-        probs, logits = self.backend.run(ids, counts)  # (B, C), (B, C)
-        top = probs.argmax(axis=1)  # (B,)
-        certified = certify_packed(bound, logits, ids, counts, kept) & (top == logits.argmax(axis=1))
-        return [self.labels[i] for i in top], probs, certified
+        bound, texts = self.drift_bound, as_texts(texts)
+        probs_parts, certified_parts = [], []
+        for i in range(0, max(len(texts), 1), CALL_TEXTS):
+            ids, counts, kept = encode_kept(self.encoder, texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            probs, logits = self.backend.run(ids, counts)  # (b, C), (b, C)
+            top = probs.argmax(axis=1)  # (b,)
+            certified_parts.append(certify_packed(bound, logits, ids, counts, kept) & (top == logits.argmax(axis=1)))
+            probs_parts.append(probs)
+        probs, certified = np.concatenate(probs_parts), np.concatenate(certified_parts)  # (B, C), (B,)
+        return [self.labels[i] for i in probs.argmax(axis=1)], probs, certified
 
 
 def load(path: str | os.PathLike, backend: str = "onnxruntime", threads: int = 1) -> Classifier:
     """Read, verify and open a bundle. Raises BundleError (a DanpackError) on any bad bundle."""
     if backend not in BACKENDS:
         raise DanpackError(f"backend {backend!r} is not one of {BACKENDS}")
-    if not isinstance(threads, int) or threads < 1:
-        raise DanpackError(f"threads must be an integer >= 1, found {threads!r}")
+    if not isinstance(threads, int) or isinstance(threads, bool) or not 1 <= threads <= MAX_THREADS:
+        raise DanpackError(f"threads must be an integer from 1 to {MAX_THREADS}, found {threads!r}")
     return Classifier(read_bundle(path), backend, threads)

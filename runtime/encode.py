@@ -22,13 +22,16 @@ class Encoder:
         self.index = {token: row for row, token in enumerate(vocab)}
         self.oov_id = oov_id
 
-    def token_ids(self, text: str) -> list[int]:
-        """Row ids of one text's tokens, in order, after the OOV policy."""
+    def map_tokens(self, tokens: list[str]) -> list[int]:
+        """Row ids of tokens, in order, after the OOV policy (the one place that applies it)."""
         get, oov = self.index.get, self.oov_id
-        tokens = self.tokenizer.tokenize(text)
         if oov is not None:
             return [get(token, oov) for token in tokens]
         return [i for i in map(get, tokens) if i is not None]  # skip: left out of the mean
+
+    def token_ids(self, text: str) -> list[int]:
+        """Row ids of one text's tokens, in order, after the OOV policy."""
+        return self.map_tokens(self.tokenizer.tokenize(text))
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts."""

@@ -7,8 +7,10 @@ against onnx's own parser.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 # Field numbers from onnx.proto: ModelProto.graph = 7; GraphProto.node = 1, initializer = 5, input = 11,
-# output = 12; NodeProto.input = 1, output = 2; TensorProto.dims = 1, data_type = 2, name = 8,
+# output = 12; NodeProto.input = 1, output = 2, op_type = 4, domain = 7; TensorProto.dims = 1, data_type = 2, name = 8,
 # data_location = 14 (EXTERNAL = 1); ValueInfoProto.name = 1. The string fields listed in _TEXT must be
 # UTF-8 (onnxruntime's Python layer fails to decode them otherwise, and prints retries to stdout).
 _TEXT = {"model": (2, 3, 4, 6), "opset": (1,), "graph": (2, 10), "node": (1, 2, 3, 4, 6, 7), "attribute": (1, 13, 21),
@@ -67,8 +69,20 @@ def _strings(fields: list, kind: str) -> list:
     return fields
 
 
-def read_graph_names(graph: bytes) -> tuple[list[str], set[str], set[str], set[str], dict[str, tuple[int, list[int]]]]:
-    """(node inputs, defined names, graph inputs, graph outputs, external initializers: name -> (type, dims))."""
+@dataclass(frozen=True)
+class GraphNames:
+    """What a bundle's reader needs to know of an ONNX graph, read without the onnx package."""
+
+    used: list[str]  # every node input, in node order
+    defined: set[str]  # node outputs, initializers and graph inputs
+    inputs: set[str]  # graph inputs
+    outputs: set[str]  # graph outputs
+    external: dict[str, tuple[int, list[int]]]  # external initializers: name -> (data type, dims)
+    ops: list[tuple[str, str]]  # (domain, op_type) of every node, in node order ("" is the default domain)
+
+
+def read_graph_names(graph: bytes) -> GraphNames:
+    """The names, external tensors and operators of a serialised ModelProto; raises ValueError if malformed."""
     model = _strings(list(_fields(memoryview(graph))), "model")
     for number, wire, value in model:
         if number == 8 and wire == 2:  # OperatorSetIdProto
@@ -81,15 +95,22 @@ def read_graph_names(graph: bytes) -> tuple[list[str], set[str], set[str], set[s
     inputs: set[str] = set()
     outputs: set[str] = set()
     external: dict[str, tuple[int, list[int]]] = {}
+    ops: list[tuple[str, str]] = []
     for number, wire, value in _strings(list(_fields(bodies[0])), "graph"):
         if number == 1 and wire == 2:  # NodeProto
+            op_type, domain = "", ""
             for f, w, v in _strings(list(_fields(value)), "node"):
                 if f == 1:
                     used.append(_text(v))
                 elif f == 2:
                     defined.add(_text(v))
+                elif f == 4:
+                    op_type = _text(v)
+                elif f == 7:
+                    domain = _text(v)
                 elif f == 5 and w == 2:  # AttributeProto
                     _strings(list(_fields(v)), "attribute")
+            ops.append((domain, op_type))
         elif number == 5 and wire == 2:  # TensorProto initializer
             name, dtype, dims, location = "", 0, [], 0
             for f, w, v in _strings(list(_fields(value)), "tensor"):
@@ -112,6 +133,4 @@ def read_graph_names(graph: bytes) -> tuple[list[str], set[str], set[str], set[s
         elif number in (11, 12) and wire == 2:  # ValueInfoProto graph input / output
             names = [_text(v) for f, w, v in _strings(list(_fields(value)), "value") if f == 1]
             (inputs if number == 11 else outputs).update(names)
-    return used, defined | inputs, inputs, outputs, external
-
-
+    return GraphNames(used, defined | inputs, inputs, outputs, external, ops)

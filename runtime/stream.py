@@ -287,6 +287,10 @@ def _run(argv: list[str] | None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     config = _config_from_args(parser, args)
+    if sys.stdout is None or (args.input == "-" and sys.stdin is None):  # started with `>&-` or `<&-`
+        _say(f"error: standard {'output' if sys.stdout is None else 'input'} is closed; "
+             "give the stream an open input and output")
+        return EXIT_USAGE
     try:
         source = sys.stdin.buffer if args.input == "-" else open(args.input, "rb")
     except OSError as e:
@@ -309,7 +313,7 @@ def _run(argv: list[str] | None) -> int:
             _say(f"error: {e}")
             return EXIT_USAGE
     finally:
-        if source is not sys.stdin.buffer:
+        if args.input != "-":
             source.close()
     if args.verbose:
         _summary(stats)

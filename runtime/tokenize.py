@@ -164,7 +164,10 @@ class Tokenizer:
 
     def split(self, normalized: str) -> list[str]:
         """Every match of the pattern in already normalised text (ASCII text takes the fast path)."""
-        return self._ascii_findall(normalized) if normalized.isascii() else self._findall(normalized)
+        tokens = self._ascii_findall(normalized) if normalized.isascii() else self._findall(normalized)
+        if self.spec.pattern not in PRESETS:  # a custom pattern may match empty strings mid-text (r"\b")
+            return [t for t in tokens if t]
+        return tokens
 
     def tokenize(self, text: str) -> list[str]:
         """Tokens of one text, at most `max_tokens` of them."""

@@ -373,3 +373,10 @@ def test_gate_and_mismatched_model(tmp_path):
     relabelled = FloatModel(model.vocab, model.embedding, model.layers, ("x", "y", "z"))
     with pytest.raises(BoundError, match="labels"):
         certify_texts(relabelled, bundle, ["w1"])
+
+
+def test_gain_of_a_lone_folded_layer_is_one_per_class():
+    # A bundle whose only layer is folded into the table (table width = label count) is valid by the format:
+    # the logits are the mean plus a bias, so each logit moves by exactly the mean's drift (Jacobian = I).
+    gain = certify.gain_vector([(None, np.zeros(3, np.float32), None)])
+    np.testing.assert_array_equal(gain, np.ones(3))

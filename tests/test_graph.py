@@ -200,3 +200,17 @@ def test_encode_batch_pads_with_zero_not_minus_one():
     assert ids.tolist() == [[5, 6, 7], [0, 0, 0], [9, 0, 0]] and counts.tolist() == [3, 0, 1]
     ids, counts = encode_batch([])
     assert ids.shape == (0, 1) and counts.shape == (0,)
+
+
+def test_the_reader_allows_exactly_the_operators_the_packer_writes(tmp_path_factory):
+    # runtime.bundle.GRAPH_OPS must list every operator of every configuration, and nothing more.
+    from runtime.bundle import GRAPH_OPS
+
+    written = set()
+    for param in CONFIGS:
+        bundle = packed(tmp_path_factory, *param.values)
+        model = onnx.ModelProto()
+        model.ParseFromString(bundle.graph)
+        written |= {n.op_type for n in model.graph.node}
+        assert {n.domain for n in model.graph.node} == {""}
+    assert written == GRAPH_OPS

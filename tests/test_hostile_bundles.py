@@ -15,6 +15,7 @@ import hashlib
 import importlib.util
 import json
 import math
+import os
 import re
 import struct
 import subprocess
@@ -465,7 +466,8 @@ def _onnx_view(graph: bytes):
     defined = {o for n in g.node for o in n.output} | {t.name for t in g.initializer} | {v.name for v in g.input}
     external = {t.name: (t.data_type, list(t.dims)) for t in g.initializer
                 if t.data_location == onnx.TensorProto.EXTERNAL}
-    return used, defined, {v.name for v in g.input}, {v.name for v in g.output}, external
+    ops = [(n.domain, n.op_type) for n in g.node]
+    return used, defined, {v.name for v in g.input}, {v.name for v in g.output}, external, ops
 
 
 def test_graph_reader_agrees_with_onnx(bases):
@@ -475,14 +477,16 @@ def test_graph_reader_agrees_with_onnx(bases):
     embedded = onnx.helper.make_model(model.graph)  # a re-serialised copy through onnx's own writer
     graphs.append(embedded.SerializeToString())
     for graph in graphs:
-        assert read_graph_names(graph) == _onnx_view(graph)
+        names = read_graph_names(graph)
+        assert (names.used, names.defined, names.inputs, names.outputs, names.external, names.ops) == _onnx_view(graph)
     # onnx.proto field numbers the reader relies on (its comment cites them)
     fields = {(msg.DESCRIPTOR.name, f.name): f.number for msg in (onnx.ModelProto, onnx.GraphProto, onnx.NodeProto,
               onnx.TensorProto, onnx.ValueInfoProto) for f in msg.DESCRIPTOR.fields}
     assert (fields["ModelProto", "graph"], fields["GraphProto", "node"], fields["GraphProto", "initializer"],
             fields["GraphProto", "input"], fields["GraphProto", "output"], fields["NodeProto", "input"],
             fields["NodeProto", "output"], fields["TensorProto", "dims"], fields["TensorProto", "data_type"],
-            fields["TensorProto", "name"], fields["TensorProto", "data_location"]) == (7, 1, 5, 11, 12, 1, 2, 1, 2, 8, 14)
+            fields["TensorProto", "name"], fields["TensorProto", "data_location"], fields["NodeProto", "op_type"],
+            fields["NodeProto", "domain"]) == (7, 1, 5, 11, 12, 1, 2, 1, 2, 8, 14, 4, 7)
     assert (onnx.TensorProto.FLOAT, onnx.TensorProto.INT8, onnx.TensorProto.EXTERNAL) == (1, 3, 1)
 
 
@@ -505,6 +509,101 @@ def test_graph_failing_only_at_run_time_is_a_bundle_error(bases, tmp_path, edit)
     decode_bundle(data)  # structurally sound: the stdlib reader cannot see it
     with pytest.raises(BundleError):
         runtime.load(_write(tmp_path / "g.bundle", data), "onnxruntime")
+
+
+@pytest.mark.parametrize("body, message", [
+    ([0] * 300_000, "more than 262144 msgpack items"),  # 300 KB that would decode into ~10 MB of Python objects
+    ([[0] * 60_000] * 5, "more than 262144 msgpack items"),  # the same spread over containers under the cap
+    ({"manifest": [0] * 70_000}, "exceeds max_array_len"),  # one container past MAX_CONTAINER
+])
+def test_payload_item_budget_bounds_decoding(body, message):
+    with pytest.raises(BundleError, match=message):
+        decode_bundle(corpus.seal(body))
+
+
+def _set_tensor(body: dict, name: str, array: np.ndarray) -> None:
+    body["tensors"][name]["data"] = np.ascontiguousarray(array).astype("<" + array.dtype.str[1:]).tobytes()
+
+
+def _scale_row(body: dict, factor: float) -> None:
+    scales = np.frombuffer(body["tensors"]["scales"]["data"], "<f4").copy()
+    scales[-1] = np.float32(factor)  # the last row: outside the probe's ids, so only the range check sees it
+    _set_tensor(body, "scales", scales)
+
+
+def test_weights_that_can_overflow_float32_are_refused(bases):
+    # A finite but huge scale makes some text's logits inf and its probabilities NaN (then a JSON stream
+    # would print NaN with a confident label): the reader bounds what any text can reach.
+    with pytest.raises(BundleError, match="weights can drive the logits to 2.59e\\+41"):
+        decode_bundle(corpus.with_body(bases[0], lambda b: _scale_row(b, 3e38)))
+    decode_bundle(corpus.with_body(bases[0], lambda b: _scale_row(b, 1e-3)))  # an ordinary scale passes
+
+
+def test_folded_flag_must_match_layer_zero(bases):
+    def flag(body):
+        body["manifest"]["table"]["folded"] = not body["manifest"]["table"]["folded"]
+
+    with pytest.raises(BundleError, match="field 'table.folded' is"):
+        decode_bundle(corpus.with_body(bases[0], flag))
+
+
+def test_a_fifo_is_refused_without_blocking(tmp_path):
+    fifo = tmp_path / "bundle.fifo"
+    os.mkfifo(fifo)  # nobody writes: opening it would block forever
+    import threading
+
+    outcome: list = []
+
+    def load() -> None:
+        try:
+            runtime.load(fifo)
+        except BundleError as e:
+            outcome.append(str(e))
+
+    worker = threading.Thread(target=load, daemon=True)  # a blocked open fails the test instead of hanging it
+    worker.start()
+    worker.join(10)
+    assert not worker.is_alive(), "runtime.load blocked on a FIFO"
+    assert outcome and "is not a regular file" in outcome[0]
+
+
+def _add_loop(model: onnx.ModelProto) -> None:
+    """A Loop of 2**62 iterations whose result is multiplied into the logits by zero: valid ONNX, never ends."""
+    body = onnx.helper.make_graph(
+        [onnx.helper.make_node("Identity", ["cond_in"], ["cond_out"])], "spin",
+        [onnx.helper.make_tensor_value_info("i", onnx.TensorProto.INT64, []),
+         onnx.helper.make_tensor_value_info("cond_in", onnx.TensorProto.BOOL, [])],
+        [onnx.helper.make_tensor_value_info("cond_out", onnx.TensorProto.BOOL, [])])
+    model.graph.initializer.extend([onnx.numpy_helper.from_array(np.array(2**62, np.int64), "trips"),
+                                    onnx.numpy_helper.from_array(np.array(True), "go")])
+    model.graph.node.append(onnx.helper.make_node("Loop", ["trips", "go"], [], body=body))
+
+
+def _declare_unused(model: onnx.ModelProto) -> None:
+    """A second external declaration of the table under another name, read by no node."""
+    table = next(t for t in model.graph.initializer if t.name == "table")
+    extra = model.graph.initializer.add()
+    extra.CopyFrom(table)
+    extra.name = "spare"
+
+
+@pytest.mark.parametrize("edit, message", [
+    (_add_loop, r"uses operators \['Loop'\], which danpack never writes"),
+    (lambda m: setattr(m.graph.node[0], "domain", "com.example"), r"uses operators \['com.example:Shape'\]"),
+])
+def test_graph_with_foreign_operators_is_refused(bases, tmp_path, edit, message):
+    # Only the operators packer/graph.py writes may run: a crafted Loop would hang the probe forever.
+    with pytest.raises(BundleError, match=message):
+        decode_bundle(_graph_edit(bases[0], edit))
+
+
+def test_declared_tensor_that_no_node_uses_is_refused(bases):
+    body = msgpack.unpackb(msgpack.unpackb(bases[0])["payload"])
+    data = _graph_edit(bases[0], _declare_unused)
+    body2 = msgpack.unpackb(msgpack.unpackb(data)["payload"])
+    body2["tensors"]["spare"] = body["tensors"]["table"]  # the bundle holds it, so only the use check can object
+    with pytest.raises(BundleError, match=r"declares tensors \['spare'\] that no node uses"):
+        decode_bundle(corpus.seal(body2))
 
 
 # --- integrity: the checksum comes first ------------------------------------------------------------------------

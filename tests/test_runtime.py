@@ -78,10 +78,10 @@ def test_predict_proba_labels_manifest(bundle_path, texts):
 
 
 def test_load_arguments_are_checked(bundle_path):
-    with pytest.raises(DanpackError, match="backend 'tflite' is not one of"):
-        runtime.load(bundle_path, backend="tflite")
-    for threads in (0, -1, 1.5, "2"):
-        with pytest.raises(DanpackError, match="threads must be an integer >= 1"):
+    with pytest.raises(DanpackError, match="backend 'gpu' is not one of"):
+        runtime.load(bundle_path, backend="gpu")
+    for threads in (0, -1, 1.5, "2", True, 2**40):
+        with pytest.raises(DanpackError, match="threads must be an integer from 1 to 256"):
             runtime.load(bundle_path, threads=threads)
     assert runtime.load(bundle_path, threads=2).predict(["w1"])  # more threads work too
 
@@ -232,3 +232,33 @@ def test_runtime_works_without_the_packer_libraries(bundle_path, texts, tmp_path
     for backend in ("onnxruntime", "numpy"):
         assert out[backend]["labels"] == here.predict(sample)
         np.testing.assert_allclose(np.array(out[backend]["probs"]), here.predict_proba(sample), atol=1e-5)
+
+
+# --- the texts argument -----------------------------------------------------------------------
+
+@pytest.mark.parametrize("texts, message", [
+    ("card declined", "found a single str; wrap it"),  # would otherwise classify each character
+    (b"card declined", "found a single bytes"),
+    ([None], r"texts\[0\] is NoneType, expected str"),
+    (["ok", b"abc"], r"texts\[1\] is bytes, expected str"),
+    (42, "texts must be a list of strings, found int"),
+])
+def test_bad_texts_argument_is_a_clear_error(bundle_path, texts, message):
+    clf = runtime.load(bundle_path)
+    for call in (clf.predict, clf.predict_proba, clf.predict_certified):
+        with pytest.raises(DanpackError, match=message):
+            call(texts)
+
+
+def test_any_iterable_of_texts_works_and_long_calls_are_chunked(bundle_path):
+    clf = runtime.load(bundle_path)
+    texts = [f"w{i % 7} w{i % 5} w{i % 3}" for i in range(600)]  # 600 > CALL_TEXTS: three backend calls
+    expected = clf.predict_proba(texts)
+    assert expected.shape == (600, len(clf.labels))
+    np.testing.assert_allclose(clf.predict_proba(t for t in texts), expected, rtol=0, atol=1e-6)
+    labels, probs, certified = clf.predict_certified(iter(texts))
+    assert len(labels) == 600 and probs.shape == expected.shape and certified.shape == (600,)
+    np.testing.assert_allclose(probs, expected, rtol=0, atol=1e-6)
+    for i in (0, 255, 256, 599):  # rows on both sides of a chunk edge match a call of their own
+        np.testing.assert_allclose(expected[i], clf.predict_proba([texts[i]])[0], rtol=0, atol=1e-6)
+    assert clf.predict([]) == [] and clf.predict_certified([])[1].shape == (0, len(clf.labels))

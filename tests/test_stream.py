@@ -588,3 +588,16 @@ def test_endless_stream_memory_stays_bounded(bundle, tmp_path):
     assert warm is not None and len(late) >= 5, "too few memory samples"
     # 180,000 records after warm-up; kept in memory they would take tens of MB
     assert max(late) - warm < 16 * 1024, (warm, max(late))
+
+
+@pytest.mark.parametrize("closed", ["input", "output"])
+def test_closed_standard_stream_is_a_usage_error(bundle, tmp_path, closed):
+    # `danpack-run B <&-` / `>&-`: Python sees sys.stdin / sys.stdout as None; no traceback, exit 2.
+    fd = 0 if closed == "input" else 1
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    proc = subprocess.Popen([sys.executable, "-m", "runtime.stream", str(bundle)], env=env, cwd=tmp_path,
+                            stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                            preexec_fn=lambda: os.close(fd))
+    _, err = proc.communicate(timeout=CHILD_TIMEOUT)
+    assert proc.returncode == 2
+    assert f"standard {closed} is closed" in err.decode() and "Traceback" not in err.decode()

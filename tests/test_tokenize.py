@@ -503,3 +503,10 @@ def test_tokenize_takes_the_same_tokens_with_and_without_the_fast_path(case):
     tok = Tokenizer(TokenizerSpec(case=case))
     for text in ["Don't STOP-me now, it's 5.0!", "type-2 -- ok_then 'quoted' a--b", "x\x00y\x7fz ~`^"]:
         assert tok.tokenize(text) == tok._findall(tok.normalize(text))
+
+
+def test_custom_pattern_never_yields_empty_tokens():
+    # r"\b" passes the spec check (it cannot match the whole empty string) but matches empty strings
+    # between words; such matches are dropped, as every token must be non-empty.
+    tok = Tokenizer(TokenizerSpec(pattern=r"\b|[a-z]+"))
+    assert tok.tokenize("card declined") == ["card", "declined"]
