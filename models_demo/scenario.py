@@ -58,7 +58,7 @@ class ScenarioSizes:
     stream: int = 50_000  # unlabelled deployment comments (vocabulary pruning)
 
 
-SMALL_SIZES = ScenarioSizes(train=800, dev=200, test=200, stream=2000)
+SMALL_SIZES = ScenarioSizes(train=800, dev=200, test=200, stream=10_000)
 
 
 def split_seed(seed: int, task: str, split: str) -> int:

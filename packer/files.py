@@ -28,9 +28,35 @@ def current_umask() -> int:
     return mask
 
 
+def check_outputs(outputs: dict[str, str | os.PathLike | None],
+                  inputs: dict[str, str | os.PathLike | None] | None = None) -> None:
+    """Refuse, before any work, outputs that would destroy something: a folder or device at the path,
+    an input file, or another output of the same command. Keys name the options in messages."""
+    seen: dict[str, str] = {}
+    sources = {os.path.realpath(p): name for name, p in (inputs or {}).items() if p is not None and Path(p).exists()}
+    for name, out in outputs.items():
+        if out is None:
+            continue
+        path = Path(out)
+        if str(out) == "" or path.is_dir():
+            raise OutputError(f"{name} {str(out)!r} is a folder; give a file path such as model.danpack")
+        if path.exists() and not path.is_file():
+            raise OutputError(f"{name} {path} is not a regular file (a device or pipe would be replaced); "
+                              "give a file path")
+        if path.parent.exists() and not path.parent.is_dir():
+            raise OutputError(f"{name} {path}: {path.parent} is a file, not a folder")
+        real = os.path.realpath(path)
+        if real in sources:
+            raise OutputError(f"{name} {path} would overwrite the input {sources[real]}; write the output elsewhere")
+        if real in seen:
+            raise OutputError(f"{name} and {seen[real]} both write {path}; give each output its own file")
+        seen[real] = name
+
+
 def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
     """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
     path = Path(path)
+    check_outputs({"output": path})
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)

@@ -33,6 +33,12 @@ from .files import current_umask, feed_file
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1
 WEIGHT_FILES = ("weights.safetensors", "weights.npz")
+MODEL_FILES = ("config.json", "vocab.txt", *WEIGHT_FILES)  # every file a model directory may hold
+
+
+def model_files(model_dir: str | os.PathLike) -> dict[str, Path]:
+    """The model directory's files by name (present or not), for messages and overwrite checks."""
+    return {name: Path(model_dir) / name for name in MODEL_FILES}
 CONFIG_KEYS = {
     "format", "version", "labels", "embedding_dim", "hidden_sizes", "activation",
     "tokenizer", "oov", "metadata",
@@ -132,6 +138,7 @@ def _read_vocab(path: Path) -> tuple[str, ...]:
     except UnicodeDecodeError as e:
         line = data[: e.start].count(b"\n") + 1
         raise _fail(path, f"line {line} is not valid UTF-8", "save the vocabulary as UTF-8") from e
+    text = text.removeprefix("\ufeff")  # a byte-order mark (Windows editors) is no part of the first token
     if text.endswith("\n"):
         text = text[:-1]
     tokens = text.split("\n") if text else []
@@ -295,8 +302,12 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
     if weights_format not in ("npz", "safetensors"):
         raise ModelError(f"weights format {weights_format!r} is not 'npz' or 'safetensors'")
     target = Path(model_dir)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{target.name}.", dir=target.parent))
+    except OSError as e:
+        raise ModelError(f"{target}: cannot write a model directory here ({e.strerror or e}); "
+                         "choose another output path") from e
     os.chmod(tmp, 0o777 & ~current_umask())  # mkdtemp makes 0700 directories; a model gets the usual permissions
     backup = None
     try:
@@ -316,10 +327,13 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
         os.replace(tmp, target)
         if backup is not None:
             shutil.rmtree(backup, ignore_errors=True)
-    except BaseException:
+    except BaseException as e:
         shutil.rmtree(tmp, ignore_errors=True)
         if backup is not None and backup.exists() and not target.exists():
             os.replace(backup, target)  # the final rename failed: put the old model back
+        if isinstance(e, OSError):
+            raise ModelError(f"{target}: writing the model failed ({e.strerror or e}); "
+                             "the previous directory, if any, is intact") from e
         raise
     return target
 
@@ -328,7 +342,7 @@ def model_digest(model_dir: str | os.PathLike) -> str:
     """sha256 over the model directory's files (names and bytes), for the bundle manifest."""
     root = Path(model_dir)
     h = hashlib.sha256()
-    for name in ("config.json", "vocab.txt", *WEIGHT_FILES):
+    for name in MODEL_FILES:
         path = root / name
         if path.exists():
             h.update(name.encode() + b"\0")
@@ -339,4 +353,4 @@ def model_digest(model_dir: str | os.PathLike) -> str:
 def model_bytes(model_dir: str | os.PathLike) -> int:
     """Bytes on disk of the model's files."""
     root = Path(model_dir)
-    return sum((root / n).stat().st_size for n in ("config.json", "vocab.txt", *WEIGHT_FILES) if (root / n).exists())
+    return sum((root / n).stat().st_size for n in MODEL_FILES if (root / n).exists())

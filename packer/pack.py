@@ -59,6 +59,8 @@ class PackOptions:
             raise PackError(f"top {self.top} must be at least 1")
         if self.max_bytes is not None and self.max_bytes < 1:
             raise PackError(f"max-bytes {self.max_bytes} must be positive")
+        if self.top is not None and self.max_bytes is not None:
+            raise PackError("top and max-bytes both choose how many rows to keep; give one of them")
         if self.pruned not in (*PRUNED_POLICIES, "auto"):
             raise PackError(f"pruned-token policy {self.pruned!r} is not one of skip, unk, rest, auto")
         if self.fold not in ("auto", "yes", "no"):
@@ -232,6 +234,10 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
         corpus = read_corpora(options.corpora, options.text_field)
         vocab_options = VocabOptions(coverage=options.coverage, top=options.top, keep_words=options.keep_words)
         plan = plan_vocab(model.vocab, Tokenizer(model.tokenizer), corpus, vocab_options, always)
+    if plan.has_corpus and plan.known_tokens == 0:  # the cut would keep one arbitrary row: a useless bundle
+        raise PackError(f"the corpus ({plan.corpus_texts:,} texts, {plan.corpus_tokens:,} tokens) holds no token the "
+                        f"model knows; check the file, --text-field ({options.text_field!r}) and that the corpus is "
+                        "from the model's domain, or pack without --corpus to keep every row")
     pack_record = {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(options).items()}
     # names and digests: a changed corpus changes the manifest even when the selection stays the same
     pack_record["corpora"] = [{"name": Path(p).name, "sha256": file_sha256(p)} for p in options.corpora]

@@ -33,7 +33,7 @@ def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | N
     path = Path(path)
     fmt = fmt or detect_format(path)
     try:
-        handle = open(path, encoding="utf-8", newline="")
+        handle = open(path, encoding="utf-8-sig", newline="")  # a leading byte-order mark (Windows editors) is dropped
     except FileNotFoundError as e:
         raise TextFileError(f"{path}: no such file") from e
     except OSError as e:

@@ -159,6 +159,11 @@ def parse_limit(text: str | None, name: str) -> float | None:
         value /= 100
     if is_share and not 0.0 <= value <= 1.0:
         raise VerdictError(f"--{name} {text!r} is a share: give a value between 0 and 1 (e.g. 0.99) or a percent (99%)")
+    unit = threshold.unit if threshold is not None else ""
+    if unit in ("bytes", "count", "ratio") and value < 0:
+        raise VerdictError(f"--{name} {text!r} cannot be negative")
+    if unit in ("bytes", "count") and value != int(value):
+        raise VerdictError(f"--{name} {text!r} counts {unit}: give a whole number")
     return value
 
 

@@ -97,9 +97,11 @@ def plan_vocab(
                 freq[row] = c
     known_tokens = int(freq.sum())
 
-    # keep-words the model lacks, or has only on rows no text can reach: reported, never invented
-    unknown_keep = tuple(w for w in options.keep_words if w not in index or unreachable[index[w]])
-    forced = [index[w] for w in options.keep_words if w in index] + list(always_rows)
+    # keep-words as the tokenizer would see them ("Not" -> "not"); those the model lacks, or has only on
+    # rows no text can reach, are reported in the user's spelling, never invented
+    keep = [(w, tokenizer.normalize(w)) for w in options.keep_words]
+    unknown_keep = tuple(w for w, t in keep if t not in index or unreachable[index[t]])
+    forced = [index[t] for _, t in keep if t in index] + list(always_rows)
     forced = list(dict.fromkeys(r for r in forced if not unreachable[r]))  # unique, order kept
     forced_set = set(forced)
     reachable = np.flatnonzero(~unreachable)  # (R,)

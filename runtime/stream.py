@@ -285,7 +285,7 @@ def _summary(stats: StreamStats, note: str = "") -> None:
 
 def _run(argv: list[str] | None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = parser.parse_intermixed_args(argv)  # options may stand between BUNDLE and INPUT
     config = _config_from_args(parser, args)
     if sys.stdout is None or (args.input == "-" and sys.stdin is None):  # started with `>&-` or `<&-`
         _say(f"error: standard {'output' if sys.stdout is None else 'input'} is closed; "

@@ -486,6 +486,10 @@ def test_cli_thresholds_can_be_loosened_and_tightened(case):
     (["--max-latency-ratio", "1.5", "--no-latency"], "needs the latency measurement"),
     (["--baseline-tolerance", "speed=1"], "NAME=VALUE"),
     (["--show-disagreements", "-1"], "must be 0 or more"),
+    (["--max-bytes", "-5"], "cannot be negative"),
+    (["--max-certified-changes", "-1"], "cannot be negative"),
+    (["--max-certified-changes", "0.5"], "give a whole number"),
+    (["--seed", "-1"], "Invalid value for '--seed'"),
 ])
 def test_cli_bad_options_exit_2(case, extra, needle):
     res = invoke(case.good, "--reference", case.model_dir, "--eval", case.eval_path, "--quiet", *extra)
@@ -522,3 +526,19 @@ def test_cli_with_tiny_latency_run(case, tmp_path):
     checks = {c["name"]: c for c in json.loads((tmp_path / "l.json").read_text())["verdict"]["checks"]}
     assert checks["max-latency-ratio"]["status"] == "pass" and checks["max-latency-ratio"]["value"] > 0
     assert "throughput, batch 4" in res.stdout
+
+
+def test_cli_outputs_are_checked_before_the_run(case, tmp_path):
+    eval_copy = tmp_path / "eval.jsonl"
+    eval_copy.write_bytes(case.eval_path.read_bytes())
+    before = eval_copy.read_bytes()
+    for extra, needle in (
+        (["--report", eval_copy], "would overwrite the input --eval"),  # the evaluation set survives
+        (["--report", tmp_path / "r.json", "--junit", tmp_path / "r.json"], "both write"),
+        (["--report", tmp_path], "is a folder"),
+        (["--markdown", case.model_dir / "config.json"], "would overwrite the input --reference file config.json"),
+    ):
+        res = invoke(case.good, "--reference", case.model_dir, "--eval", eval_copy, *NO_LATENCY, *map(str, extra))
+        assert res.exit_code == 2 and needle in res.stderr, res.output
+        assert "Traceback" not in res.output and "accuracy" not in res.stdout  # refused before any work
+    assert eval_copy.read_bytes() == before

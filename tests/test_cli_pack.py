@@ -269,3 +269,88 @@ def test_help_texts_print_brackets_as_written():
     # Help strings hold "[default: ...]" and "danpack[glove]"; rich markup would swallow both.
     assert "[default: 1.0]" in " ".join(invoke("check", "--help").output.split())
     assert "danpack[glove]" in invoke("demo", "--help").output
+
+
+# --- outputs that would destroy something, and options that contradict each other ---------------
+
+def test_pack_refuses_outputs_that_would_destroy_inputs(inputs, tmp_path):
+    import os
+
+    _, model_dir, corpus = inputs
+    config = (model_dir / "config.json").read_bytes()
+    fifo = tmp_path / "pipe"
+    os.mkfifo(fifo)
+    for output, needle in ((model_dir / "config.json", "would overwrite the input model file config.json"),
+                           (corpus, "would overwrite the input --corpus"),
+                           (tmp_path, "is a folder"),
+                           (fifo, "is not a regular file")):
+        res = RUNNER.invoke(app, ["pack", str(model_dir), "-o", str(output), "-c", str(corpus), "-q"])
+        assert res.exit_code == 2 and needle in res.stderr, res.output
+    assert (model_dir / "config.json").read_bytes() == config and fifo.exists() and not fifo.is_file()
+
+
+def test_export_onnx_refuses_to_overwrite_its_bundle(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    bundle = tmp_path / "m.danpack"
+    assert invoke("pack", model_dir, "-o", bundle, "-c", corpus, "-q").exit_code == 0
+    before = bundle.read_bytes()
+    res = RUNNER.invoke(app, ["export-onnx", str(bundle), "-o", str(bundle)])
+    assert res.exit_code == 2 and "would overwrite the input BUNDLE" in res.stderr
+    assert bundle.read_bytes() == before
+
+
+@pytest.mark.parametrize("extra", [["--top", "10", "--max-bytes", "30000"], ["--top", "10", "--coverage", "0.9"],
+                                   ["--coverage", "0.9", "--max-bytes", "30000"]])
+def test_pack_refuses_two_ways_of_choosing_rows(inputs, tmp_path, extra):
+    _, model_dir, corpus = inputs
+    res = RUNNER.invoke(app, ["pack", str(model_dir), "-o", str(tmp_path / "b"), "-c", str(corpus), *extra])
+    assert res.exit_code == 2 and "each choose how many rows to keep" in res.stderr
+    assert not (tmp_path / "b").exists()
+
+
+@pytest.mark.parametrize("content", ["", "\n\n  \n", "zzz qqq\nxxx\n"])  # empty, blank lines, no known word
+def test_pack_refuses_a_corpus_with_no_known_token(inputs, tmp_path, content):
+    _, model_dir, _ = inputs
+    corpus = tmp_path / "c.txt"
+    corpus.write_text(content, encoding="utf-8")
+    res = RUNNER.invoke(app, ["pack", str(model_dir), "-o", str(tmp_path / "b"), "-c", str(corpus), "-q"])
+    assert res.exit_code == 2 and "holds no token the model knows" in res.stderr
+    assert not (tmp_path / "b").exists()
+
+
+def test_keep_words_are_normalised_like_texts(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    words = tmp_path / "keep.txt"
+    words.write_text("W149\n", encoding="utf-8")  # the tokenizer lower-cases: "W149" is the model's "w149"
+    res = invoke("pack", model_dir, "-o", tmp_path / "b", "-c", corpus, "--top", "3", "--keep-words", words, "--json")
+    summary = json.loads(res.stdout)
+    assert summary["unknown_keep_words"] == [] and "w149" in runtime.load(tmp_path / "b").bundle.vocab
+
+
+def test_byte_order_marks_are_dropped_from_vocabulary_and_corpus(inputs, tmp_path):
+    import shutil
+
+    _, model_dir, corpus = inputs
+    bom_model = tmp_path / "bom-model"
+    shutil.copytree(model_dir, bom_model)
+    (bom_model / "vocab.txt").write_bytes(b"\xef\xbb\xbf" + (model_dir / "vocab.txt").read_bytes())
+    bom_corpus = tmp_path / "corpus.jsonl"
+    bom_corpus.write_bytes(b"\xef\xbb\xbf" + corpus.read_bytes())
+    plain = json.loads(invoke("pack", model_dir, "-o", tmp_path / "a", "-c", corpus, "--json").stdout)
+    with_bom = json.loads(invoke("pack", bom_model, "-o", tmp_path / "b", "-c", bom_corpus, "--json").stdout)
+    for key in ("rows_kept", "unreachable_rows", "corpus_texts", "corpus_tokens", "coverage"):
+        assert with_bom[key] == plain[key], key
+    assert runtime.load(tmp_path / "b").bundle.vocab == runtime.load(tmp_path / "a").bundle.vocab
+
+
+def test_a_full_standard_output_is_an_error_not_a_traceback(inputs, tmp_path):
+    import subprocess
+    import sys
+
+    _, model_dir, corpus = inputs
+    bundle = tmp_path / "m.danpack"
+    assert invoke("pack", model_dir, "-o", bundle, "-c", corpus, "-q").exit_code == 0
+    with open("/dev/full", "wb") as full:  # Linux: every write fails with ENOSPC
+        proc = subprocess.run([sys.executable, "-c", "from packer.cli import main; main()", "inspect", str(bundle)],
+                              stdout=full, stderr=subprocess.PIPE, text=True, timeout=60)
+    assert proc.returncode == 2 and "cannot write the output" in proc.stderr and "Traceback" not in proc.stderr

@@ -29,3 +29,14 @@ def test_demo_runs_the_whole_job(tmp_path):
 def test_demo_refuses_an_unknown_task(tmp_path):
     result = RUNNER.invoke(app, ["demo", "--out", str(tmp_path), "--task", "weather"])
     assert result.exit_code == 2 and "not a shipped demo model" in result.stderr
+
+
+def test_small_demo_passes_its_own_check(tmp_path):
+    result = RUNNER.invoke(app, ["demo", "--out", str(tmp_path / "d"), "--small", "--no-latency", "--quiet"])
+    assert result.exit_code == 0 and "PASS" in result.stdout, result.stdout
+
+
+def test_demo_refuses_a_file_as_its_folder(tmp_path):
+    (tmp_path / "afile").write_text("x")
+    result = RUNNER.invoke(app, ["demo", "--out", str(tmp_path / "afile")])
+    assert result.exit_code == 2 and "is a file; give a folder" in result.stderr

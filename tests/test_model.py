@@ -613,7 +613,7 @@ def test_failure_mid_write_leaves_the_old_model(tmp_path, monkeypatch, fmt):
     else:
         import safetensors.numpy
         monkeypatch.setattr(safetensors.numpy, "save_file", half_write)
-    with pytest.raises(OSError, match="No space left"):
+    with pytest.raises(ModelError, match=r"writing the model failed \(No space left"):
         save_model(make_model(seed=2), target, weights_format=fmt)
     monkeypatch.undo()
     assert siblings(tmp_path) == ["m"]  # the temp dir was removed
@@ -625,7 +625,7 @@ def test_failure_mid_write_into_a_new_dir_leaves_nothing(tmp_path, monkeypatch):
     def boom(*args, **kwargs):
         raise OSError(28, "No space left on device")
     monkeypatch.setattr(np, "savez", boom)
-    with pytest.raises(OSError):
+    with pytest.raises(ModelError, match="writing the model failed"):
         save_model(make_model(), tmp_path / "new")
     assert siblings(tmp_path) == []
 
@@ -692,7 +692,7 @@ def test_bug_failed_final_rename_loses_the_model_at_its_path(tmp_path, monkeypat
         return real_replace(src, dst)
 
     monkeypatch.setattr(os, "replace", replace)
-    with pytest.raises(OSError):
+    with pytest.raises(ModelError, match="writing the model failed"):
         save_model(make_model(seed=2), target)
     monkeypatch.undo()
     assert target.is_dir(), f"old model no longer at {target}; siblings: {siblings(tmp_path)}"

@@ -434,6 +434,9 @@ def test_exit_codes(monkeypatch, capsys, bundle, tmp_path, clf):
     assert code == 0 and "3 records, 1 errors" in err and "lines/s" in err
     code, out, _ = cli(monkeypatch, capsys, [str(bundle), str(good), "--backend", "numpy", "--format", "tsv"])
     assert code == 0 and [line.split(b"\t")[1].decode() for line in out.splitlines()] == clf.predict(["w1 w2", "w3"])
+    # options between BUNDLE and INPUT, the order people type
+    code, between, _ = cli(monkeypatch, capsys, [str(bundle), "--format", "tsv", "--backend", "numpy", str(good)])
+    assert code == 0 and between == out
 
 
 def test_unreadable_bundle_and_input_exit_2(monkeypatch, capsys, bundle, tmp_path):

@@ -13,4 +13,12 @@ from . import demo  # noqa: E402,F401
 
 
 def main() -> None:
-    app()
+    """Entry point of `danpack`: a full standard output ends it without a traceback (click itself ends a
+    broken pipe, `| head`, with exit 1)."""
+    import sys
+
+    try:
+        app()
+    except OSError as e:  # stdout on a full disk or /dev/full: say so on stderr
+        print(f"danpack: error: cannot write the output ({e.strerror or e})", file=sys.stderr)
+        raise SystemExit(2)

@@ -10,6 +10,8 @@ import typer
 from runtime.errors import DanpackError
 
 from ..check import CheckOptions, run_check
+from ..files import check_outputs
+from ..model import model_files
 from ..latency import LatencyOptions
 from ..progress import Steps
 from ..reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
@@ -47,11 +49,14 @@ def check_command(
     no_latency: bool = typer.Option(False, "--no-latency", help="Skip the latency measurement."),
     backend: str = typer.Option("onnxruntime", help="Runtime backend: onnxruntime or numpy."),
     bootstrap: int = typer.Option(2000, help="Paired bootstrap resamples for the accuracy-drop interval."),
-    seed: int = typer.Option(CheckOptions.seed, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
+    seed: int = typer.Option(CheckOptions.seed, min=0, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Compare a bundle with its float original on labelled or unlabelled texts; exit 1 when a gate fails."""
     try:
+        check_outputs({"--report": report, "--markdown": markdown, "--junit": junit},
+                      {"BUNDLE": bundle, "--eval": eval_file, "--baseline": baseline,
+                       **{f"--reference file {n}": p for n, p in model_files(reference).items()}})
         given = {"max-accuracy-drop": parse_limit(max_accuracy_drop, "max-accuracy-drop"),
                  "min-agreement": parse_limit(min_agreement, "min-agreement"),
                  "max-bytes": parse_limit(max_bytes, "max-bytes"),
@@ -92,6 +97,6 @@ def check_command(
             write_markdown(markdown, full)
         if junit is not None:
             write_junit(junit, full)
-    except OSError as e:
+    except (OSError, DanpackError) as e:
         fail(f"cannot write an output file ({e})")
     raise typer.Exit(code=verdict.exit_code)

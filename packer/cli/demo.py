@@ -26,7 +26,13 @@ def demo_command(
     """Run the whole job on the invented charging-station scenario: generate data, pack, stream, check."""
     if task not in ("sentiment", "topic"):
         fail(f"--task {task!r} is not a shipped demo model; use sentiment or topic")
+    if out.exists() and not out.is_dir():
+        fail(f"--out {out} is a file; give a folder for the demo's data, bundle and reports")
     try:
+        if glove:  # before minutes of data generation: the vectors must be installed
+            from models_demo.glove import glove_root
+
+            glove_root()
         result = run_demo(out, DemoOptions(task=task, small=small, glove=glove, latency=not no_latency),
                             Steps(4 + glove, quiet=quiet))
     except DanpackError as e:

@@ -13,7 +13,8 @@ from runtime.errors import DanpackError
 
 from ..bound import describe_bound
 from ..inspect import describe_bundle, export_onnx
-from ..files import write_atomic
+from ..files import check_outputs, write_atomic
+from ..model import model_files
 from ..pack import PackOptions, pack_model
 from ..progress import Steps
 from .app import app
@@ -35,9 +36,9 @@ def pack_command(
     output: Path = typer.Option(..., "--output", "-o", help="Bundle file to write (replaced atomically)."),
     corpus: list[Path] = typer.Option([], "--corpus", "-c", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every reachable row is kept."),
     text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
-    coverage: float = typer.Option(0.995, help="Keep the most frequent rows until this share of the corpus's known tokens is covered."),
-    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows instead of a coverage target."),
-    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes."),
+    coverage: Optional[float] = typer.Option(None, help="Keep the most frequent rows until this share of the corpus's known tokens is covered [default: 0.995]."),
+    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target."),
+    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top)."),
     keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, e.g. negations."),
     pruned: str = typer.Option("auto", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
     fold: str = typer.Option("auto", help="Fold the first hidden layer into the table: auto (when narrower than the embedding), yes, no."),
@@ -45,8 +46,15 @@ def pack_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Prune, quantise (int8, per-row scale), fold and export a float DAN into one bundle."""
+    chosen = [name for name, value in (("--coverage", coverage), ("--top", top), ("--max-bytes", max_bytes))
+              if value is not None]
+    if len(chosen) > 1:
+        fail(f"{' and '.join(chosen)} each choose how many rows to keep; give one of them")
     try:
-        options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field, coverage=coverage, top=top,
+        check_outputs({"--output": output}, {**{f"model file {n}": p for n, p in model_files(model_dir).items()},
+                                             **{f"--corpus {p}": p for p in corpus}, "--keep-words": keep_words})
+        options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field,
+                              coverage=PackOptions.coverage if coverage is None else coverage, top=top,
                               max_bytes=max_bytes, keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
         steps = Steps(5 + (max_bytes is not None), quiet=quiet or json_out)
         result = pack_model(model_dir, output, options, steps)
@@ -126,6 +134,7 @@ def export_onnx_command(
     Tokenize and map tokens to rows as the manifest says (see `danpack inspect --json`).
     """
     try:
+        check_outputs({"--output": output}, {"BUNDLE": bundle})
         write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
     except DanpackError as e:
         fail(str(e))
