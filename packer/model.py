@@ -204,7 +204,8 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     """Read and validate a float model directory; every problem is a ModelError naming file and field."""
     root = Path(model_dir)
     if not root.is_dir():
-        raise _fail(root, "is not a directory", "pass the model directory holding config.json, vocab.txt and weights")
+        raise _fail(root, "is not a directory" if root.exists() else "no such directory",
+                    "pass the model directory holding config.json, vocab.txt and weights")
     config_path = root / "config.json"
     config = _read_config(config_path)
     labels = _config_field(config, config_path, "labels",

@@ -169,7 +169,7 @@ def _assert_usage_error(result, *needles: str) -> None:
 def test_missing_model_dir(tmp_path):
     missing = tmp_path / "no-such-model"
     out = tmp_path / "x.danpack"
-    _assert_usage_error(invoke("pack", missing, "-o", out), "danpack: error:", str(missing), "is not a directory")
+    _assert_usage_error(invoke("pack", missing, "-o", out), "danpack: error:", str(missing), "no such directory")
     assert not out.exists()
 
 

@@ -181,7 +181,7 @@ def test_not_a_directory(tmp_path):
     msg = load_error(tmp_path / "file")
     assert "file" in msg and "is not a directory" in msg
     msg = load_error(tmp_path / "nowhere")
-    assert "nowhere" in msg and "is not a directory" in msg
+    assert "nowhere" in msg and "no such directory" in msg
 
 
 @pytest.mark.parametrize("name", ["config.json", "vocab.txt"])
