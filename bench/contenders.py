@@ -57,14 +57,9 @@ def ort_session(model_bytes: bytes):
     """An onnxruntime session with the runtime's device settings (one intra-op thread, no spinning)."""
     import onnxruntime as ort
 
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = 1
-    options.inter_op_num_threads = 1
-    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    options.log_severity_level = 3
-    options.add_session_config_entry("session.intra_op.allow_spinning", "0")
-    options.add_session_config_entry("session.inter_op.allow_spinning", "0")
-    return ort.InferenceSession(model_bytes, options, providers=["CPUExecutionProvider"])
+    from runtime.backends import session_options
+
+    return ort.InferenceSession(model_bytes, session_options(1), providers=["CPUExecutionProvider"])
 
 
 def classifier_contender(key: str, classifier: Classifier) -> Contender:

@@ -70,13 +70,9 @@ def _session(bundle: Bundle, profile_prefix: str | None):
     """A session over the bundle like runtime.backends.OrtBackend builds it, optionally with the profiler on."""
     import onnxruntime as ort
 
-    options = ort.SessionOptions()
-    options.intra_op_num_threads = 1
-    options.inter_op_num_threads = 1
-    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-    options.log_severity_level = 3
-    options.add_session_config_entry("session.intra_op.allow_spinning", "0")
-    options.add_session_config_entry("session.inter_op.allow_spinning", "0")
+    from runtime.backends import session_options
+
+    options = session_options(1)
     if profile_prefix is not None:
         options.enable_profiling = True
         options.profile_file_prefix = profile_prefix

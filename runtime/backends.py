@@ -34,6 +34,21 @@ class NumpyBackend:
         return softmax(logits), logits
 
 
+def session_options(threads: int = 1):
+    """onnxruntime SessionOptions with the device defaults (also used by bench/ for its baselines)."""
+    import onnxruntime as ort
+
+    options = ort.SessionOptions()
+    options.intra_op_num_threads = threads
+    options.inter_op_num_threads = 1
+    options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
+    options.log_severity_level = 3  # errors only: a device log stays quiet
+    # idle cores must not keep spinning after each call on a small board
+    options.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    options.add_session_config_entry("session.inter_op.allow_spinning", "0")
+    return options
+
+
 class OrtBackend:
     """onnxruntime session with device-friendly defaults; the bundle's tensors are handed in once."""
 
@@ -42,14 +57,7 @@ class OrtBackend:
     def __init__(self, bundle: Bundle, threads: int = 1) -> None:
         import onnxruntime as ort
 
-        options = ort.SessionOptions()
-        options.intra_op_num_threads = threads
-        options.inter_op_num_threads = 1
-        options.execution_mode = ort.ExecutionMode.ORT_SEQUENTIAL
-        options.log_severity_level = 3  # errors only: a device log stays quiet
-        # idle cores must not keep spinning after each call on a small board
-        options.add_session_config_entry("session.intra_op.allow_spinning", "0")
-        options.add_session_config_entry("session.inter_op.allow_spinning", "0")
+        options = session_options(threads)
         names = sorted(bundle.tensors)
         values = [ort.OrtValue.ortvalue_from_numpy(bundle.tensors[n]) for n in names]
         options.add_external_initializers(names, values)
