@@ -6,6 +6,7 @@ later in the bundle's manifest, so every stage splits a text the same way.
 
 from __future__ import annotations
 
+import itertools
 import re
 import unicodedata
 from dataclasses import asdict, dataclass
@@ -151,9 +152,10 @@ class Tokenizer:
 
     def __init__(self, spec: TokenizerSpec | None = None) -> None:
         self.spec = spec or TokenizerSpec()
-        self._findall = re.compile(self.spec.regex).findall
-        ascii_regex = ASCII_PRESETS.get(self.spec.pattern)
-        self._ascii_findall = re.compile(ascii_regex).findall if ascii_regex else self._findall
+        full = re.compile(self.spec.regex)
+        fast = re.compile(ASCII_PRESETS[self.spec.pattern]) if self.spec.pattern in ASCII_PRESETS else full
+        self._findall, self._ascii_findall = full.findall, fast.findall
+        self._finditer, self._ascii_finditer = full.finditer, fast.finditer
         form = self.spec.normalization
         self._normalize = (lambda s: s) if form == "none" else (lambda s: unicodedata.normalize(form, s))
         self._case = {"lower": str.lower, "casefold": str.casefold, "keep": lambda s: s}[self.spec.case]
@@ -170,8 +172,20 @@ class Tokenizer:
         return tokens
 
     def tokenize(self, text: str) -> list[str]:
-        """Tokens of one text, at most `max_tokens` of them."""
-        return self.split(self.normalize(text))[: self.spec.max_tokens]
+        """Tokens of one text, at most `max_tokens` of them.
+
+        A text no longer than `max_tokens` characters cannot hold more tokens than that, and is split at
+        once; a longer one is matched lazily and stops at `max_tokens`, so a huge line costs no more
+        splitting than a full one.
+        """
+        normalized, cap = self.normalize(text), self.spec.max_tokens
+        if len(normalized) <= cap:
+            return self.split(normalized)
+        finditer = self._ascii_finditer if normalized.isascii() else self._finditer
+        tokens = (m.group() for m in finditer(normalized))
+        if self.spec.pattern not in PRESETS:  # as in split(): a custom pattern's empty matches are dropped
+            tokens = filter(None, tokens)
+        return list(itertools.islice(tokens, cap))
 
     def tokenize_bytes(self, data: bytes) -> list[str]:
         """Tokens of UTF-8 bytes; invalid sequences decode to U+FFFD, which separates tokens."""

@@ -510,3 +510,12 @@ def test_custom_pattern_never_yields_empty_tokens():
     # between words; such matches are dropped, as every token must be non-empty.
     tok = Tokenizer(TokenizerSpec(pattern=r"\b|[a-z]+"))
     assert tok.tokenize("card declined") == ["card", "declined"]
+
+
+@FAST
+@given(st.one_of(tricky_text, ascii_text, any_text), st.integers(min_value=1, max_value=8),
+       st.sampled_from([DEFAULT_PATTERN, r"\b|[a-z]+|[^a-z\s]"]))
+def test_lazy_split_of_long_texts_equals_the_full_split(text, cap, pattern):
+    # texts longer than max_tokens characters take the lazy path; its tokens must be the full split's prefix
+    capped = Tokenizer(TokenizerSpec(pattern=pattern, max_tokens=cap))
+    assert capped.tokenize(text) == capped.split(capped.normalize(text))[:cap]
