@@ -133,13 +133,17 @@ def _unpack(data: bytes, what: str, *, max_len: int, max_container: int) -> obje
         )
     except Exception as e:  # msgpack raises ExtraData, FormatError, StackError, ValueError, UnicodeDecodeError ...
         detail = str(e) or "containers nested deeper than msgpack allows"  # StackError has no message
-        raise BundleError(f"{what} is not a well-formed msgpack map ({type(e).__name__}: {detail})") from e
+        cut = "incomplete input" in detail or "bytes left" in detail  # what a truncated copy looks like
+        hint = "; the file is cut short or damaged: copy it again from the packer's output" if cut else ""
+        raise BundleError(f"{what} is not a well-formed msgpack map ({type(e).__name__}: {detail}){hint}") from e
 
 
 def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
     """Verify and decode bundle bytes; `source` names the file in messages."""
     if len(data) > MAX_FILE_BYTES:
         raise BundleError(f"{source}: {len(data)} bytes is larger than any bundle ({MAX_FILE_BYTES} max)")
+    if not data:
+        raise BundleError(f"{source}: the file is empty (0 bytes); copy the bundle again from the packer's output")
     # 1. outer map: a handful of small keys around one large bin
     outer = _unpack(data, f"{source}: file", max_len=len(data), max_container=8)
     if not isinstance(outer, dict):

@@ -181,6 +181,36 @@ def _mismatched_probe(body: dict) -> None:
     body["manifest"]["probe"]["probs"][0] = first[1:] + first[:1]  # same numbers, rotated: sums still 1
 
 
+def _add_loop(model: onnx.ModelProto) -> None:
+    """A Loop of 2**62 iterations: valid ONNX that would hang the load-time probe forever."""
+    body = onnx.helper.make_graph(
+        [onnx.helper.make_node("Identity", ["c"], ["c_out"])], "spin",
+        [onnx.helper.make_tensor_value_info("i", onnx.TensorProto.INT64, []),
+         onnx.helper.make_tensor_value_info("c", onnx.TensorProto.BOOL, [])],
+        [onnx.helper.make_tensor_value_info("c_out", onnx.TensorProto.BOOL, [])])
+    model.graph.initializer.extend([onnx.numpy_helper.from_array(np.array(2**62, np.int64), "trips"),
+                                    onnx.numpy_helper.from_array(np.array(True), "go")])
+    model.graph.node.append(onnx.helper.make_node("Loop", ["trips", "go"], [], body=body))
+
+
+def _declare_spare(body: dict) -> None:
+    """A tensor the bundle holds and the graph declares as external, but no node reads."""
+    model = onnx.ModelProto()
+    model.ParseFromString(body["graph"])
+    spare = model.graph.initializer.add()
+    spare.CopyFrom(next(t for t in model.graph.initializer if t.name == "layer.1.bias"))
+    spare.name = "spare"
+    body["graph"] = model.SerializeToString()
+    body["tensors"]["spare"] = copy.deepcopy(body["tensors"]["layer.1.bias"])
+
+
+def _huge_last_scale(body: dict) -> None:
+    """The last row's scale at 3e38: finite, but some text's logits would overflow float32."""
+    scales = np.frombuffer(body["tensors"]["scales"]["data"], "<f4").copy()
+    scales[-1] = np.float32(3e38)
+    body["tensors"]["scales"]["data"] = scales.tobytes()
+
+
 # --- the corpus -----------------------------------------------------------------------------------------------
 # (file name, what is wrong, how to make it from the base bundle's bytes)
 
@@ -333,6 +363,14 @@ CASES: list[tuple[str, str, object]] = [
      lambda b: with_graph(b, lambda m: _set_dims(m, "table", [24, 7]))),
     ("graph_no_probs_output.bundle", "graph output renamed from probs", lambda b: with_graph(b, lambda m: _rename_output(m, "probs", "p"))),
     ("graph_name_not_utf8.bundle", "a node name that is not UTF-8", lambda b: _with_raw_graph(b, _bad_utf8_node_name)),
+    ("graph_loop_operator.bundle", "a Loop of 2^62 iterations added to the graph", lambda b: with_graph(b, _add_loop)),
+    ("graph_foreign_domain.bundle", "a node moved to another operator domain",
+     lambda b: with_graph(b, lambda m: setattr(m.graph.node[0], "domain", "com.example"))),
+    ("graph_declared_unused.bundle", "a tensor declared by the graph but read by no node", lambda b: with_body(b, _declare_spare)),
+    # numbers that are each finite but together overflow, and a flag that contradicts the tensors
+    ("scale_overflows_float32.bundle", "a row scale of 3e38: logits could overflow float32", lambda b: with_body(b, _huge_last_scale)),
+    ("table_folded_flag_wrong.bundle", "manifest says the table is not folded, layer 0 has no weight",
+     lambda b: with_body(b, edit_value(("manifest", "table", "folded"), False))),
 ]
 
 
