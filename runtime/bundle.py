@@ -319,11 +319,10 @@ def _logit_reach(tensors: dict[str, np.ndarray], layers: list[dict]) -> float:
     |mean| ≤ the largest |table entry| (dequantised), then |z| ≤ |W|·|a| + |b| per layer; ReLU and tanh
     never increase magnitudes. Below MAX_LOGIT_REACH no sum of the forward pass can overflow float32.
     """
-    table = tensors["table"]  # (R, W)
-    if "scales" in tensors:  # int8: |q| ≤ 127 (or 128 for a crafted -128) times the row scale
-        top = float(np.abs(table).max(initial=0)) * float(tensors["scales"].astype(np.float64).max(initial=0.0))
-    else:
-        top = float(np.abs(table).max(initial=0.0))
+    table = tensors["table"]  # (R, W), at least one row and column (checked before)
+    top = max(float(table.max()), -float(table.min()))  # no abs(): it wraps int8 -128 and would copy the table
+    if "scales" in tensors:  # int8: |q| ≤ 127 (128 for a crafted -128) times the row scale
+        top *= float(tensors["scales"].astype(np.float64).max(initial=0.0))
     m = np.full(table.shape[1], top)  # (W,): bound on each coordinate of the mean
     with np.errstate(over="ignore", invalid="ignore"):
         for i, spec in enumerate(layers):

@@ -789,3 +789,10 @@ def test_property_tree_mutations_refused_or_harmless(bases, references, tmp_path
     check()
     print(f"\ntree mutations run: {runs[0]}; outcomes: {dict(sorted(seen.items()))}", file=sys.stderr)
     assert runs[0] >= TREE_EXAMPLES
+
+
+def test_logit_reach_sees_int8_minus_128():
+    # np.abs(np.int8(-128)) wraps to -128: the reach must still count it as 128.
+    tensors = {"table": np.array([[-128, 1]], np.int8), "scales": np.array([1e29], np.float32),
+               "layer.0.bias": np.zeros(2, np.float32)}
+    assert rb._logit_reach(tensors, [{"activation": None, "weight": False}]) == pytest.approx(128e29, rel=1e-6)
