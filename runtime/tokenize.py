@@ -156,6 +156,7 @@ class Tokenizer:
         fast = re.compile(ASCII_PRESETS[self.spec.pattern]) if self.spec.pattern in ASCII_PRESETS else full
         self._findall, self._ascii_findall = full.findall, fast.findall
         self._finditer, self._ascii_finditer = full.finditer, fast.finditer
+        self._custom = self.spec.pattern not in PRESETS  # a custom pattern may match empty strings mid-text (r"\b")
         form = self.spec.normalization
         self._normalize = (lambda s: s) if form == "none" else (lambda s: unicodedata.normalize(form, s))
         self._case = {"lower": str.lower, "casefold": str.casefold, "keep": lambda s: s}[self.spec.case]
@@ -167,7 +168,7 @@ class Tokenizer:
     def split(self, normalized: str) -> list[str]:
         """Every match of the pattern in already normalised text (ASCII text takes the fast path)."""
         tokens = self._ascii_findall(normalized) if normalized.isascii() else self._findall(normalized)
-        if self.spec.pattern not in PRESETS:  # a custom pattern may match empty strings mid-text (r"\b")
+        if self._custom:  # its empty matches are dropped: every token is non-empty
             return [t for t in tokens if t]
         return tokens
 
@@ -183,7 +184,7 @@ class Tokenizer:
             return self.split(normalized)
         finditer = self._ascii_finditer if normalized.isascii() else self._finditer
         tokens = (m.group() for m in finditer(normalized))
-        if self.spec.pattern not in PRESETS:  # as in split(): a custom pattern's empty matches are dropped
+        if self._custom:  # as in split(): a custom pattern's empty matches are dropped
             tokens = filter(None, tokens)
         return list(itertools.islice(tokens, cap))
 

@@ -525,22 +525,12 @@ def test_payload_item_budget_bounds_decoding(body, message):
         decode_bundle(corpus.seal(body))
 
 
-def _set_tensor(body: dict, name: str, array: np.ndarray) -> None:
-    body["tensors"][name]["data"] = np.ascontiguousarray(array).astype("<" + array.dtype.str[1:]).tobytes()
-
-
-def _scale_row(body: dict, factor: float) -> None:
-    scales = np.frombuffer(body["tensors"]["scales"]["data"], "<f4").copy()
-    scales[-1] = np.float32(factor)  # the last row: outside the probe's ids, so only the range check sees it
-    _set_tensor(body, "scales", scales)
-
-
 def test_weights_that_can_overflow_float32_are_refused(bases):
     # A finite but huge scale makes some text's logits inf and its probabilities NaN (then a JSON stream
     # would print NaN with a confident label): the reader bounds what any text can reach.
     with pytest.raises(BundleError, match="weights can drive the logits to 2.59e\\+41"):
-        decode_bundle(corpus.with_body(bases[0], lambda b: _scale_row(b, 3e38)))
-    decode_bundle(corpus.with_body(bases[0], lambda b: _scale_row(b, 1e-3)))  # an ordinary scale passes
+        decode_bundle(corpus.with_body(bases[0], lambda b: corpus.set_last_scale(b, 3e38)))
+    decode_bundle(corpus.with_body(bases[0], lambda b: corpus.set_last_scale(b, 1e-3)))  # an ordinary scale passes
 
 
 def test_folded_flag_must_match_layer_zero(bases):

@@ -204,11 +204,16 @@ def _declare_spare(body: dict) -> None:
     body["tensors"]["spare"] = copy.deepcopy(body["tensors"]["layer.1.bias"])
 
 
+def set_last_scale(body: dict, value: float) -> None:
+    """Set the last row's scale (outside the probe's ids, so only the reader's range check sees it)."""
+    scales = np.frombuffer(body["tensors"]["scales"]["data"], "<f4").copy()
+    scales[-1] = np.float32(value)
+    body["tensors"]["scales"]["data"] = scales.tobytes()
+
+
 def _huge_last_scale(body: dict) -> None:
     """The last row's scale at 3e38: finite, but some text's logits would overflow float32."""
-    scales = np.frombuffer(body["tensors"]["scales"]["data"], "<f4").copy()
-    scales[-1] = np.float32(3e38)
-    body["tensors"]["scales"]["data"] = scales.tobytes()
+    set_last_scale(body, 3e38)
 
 
 # --- the corpus -----------------------------------------------------------------------------------------------
