@@ -93,13 +93,22 @@ class Trickle(io.RawIOBase):
         return piece
 
 
+def _reset_sigint() -> None:
+    """In the child before exec: SIGINT at its default and unblocked, as an interactive shell leaves it.
+
+    Both are inherited through fork and exec (signal(7)): a CI launcher that ignores SIGINT, or blocks it
+    in its signal mask, would otherwise hand that on, and the child would never see the Ctrl-C.
+    """
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+
+
 def child(bundle: Path, *args: str, **popen) -> subprocess.Popen:
     """`danpack-run BUNDLE ARGS` as a subprocess (python -m runtime.stream), SIGINT at its default."""
     env = dict(os.environ, PYTHONPATH=str(REPO))
     return subprocess.Popen(
         [sys.executable, "-m", "runtime.stream", str(bundle), *args], env=env, cwd=popen.pop("cwd"),
-        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),  # an ignored SIGINT would be inherited
-        **popen,
+        preexec_fn=_reset_sigint, **popen,
     )
 
 
