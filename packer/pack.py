@@ -124,6 +124,18 @@ def _probe(table, scales, layers, rows: int, seed_ids: list[list[int]]) -> dict:
     return {"ids": [list(map(int, s)) for s in seed_ids], "probs": probs.astype(np.float32).tolist()}
 
 
+def source_date_epoch() -> int | None:
+    """SOURCE_DATE_EPOCH as the build time to record, None when unset (reproducible-builds.org: a
+    malformed value is an error, never silently ignored)."""
+    epoch = os.environ.get("SOURCE_DATE_EPOCH")
+    if epoch is None:
+        return None
+    if not (epoch.isascii() and epoch.isdigit()):
+        raise PackError(f"SOURCE_DATE_EPOCH={epoch!r} is not a count of seconds since 1970-01-01 UTC; "
+                        "set it to digits only (e.g. the last commit's `git log -1 --format=%ct`) or unset it")
+    return int(epoch)
+
+
 def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str, quantize: bool,
                  source: dict, options: dict) -> tuple[bytes, dict[str, int], bool, int, int]:
     """Assemble the bundle bytes for a vocabulary plan; returns (bytes, breakdown, folded, rows, width)."""
@@ -177,9 +189,9 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
         "packer": f"danpack {__version__}",
         "probe": _probe(tensors["table"], tensors.get("scales"), layers, rows, probe_ids),
     }
-    epoch = os.environ.get("SOURCE_DATE_EPOCH")
-    if epoch is not None and epoch.isdigit():
-        manifest["created_epoch"] = int(epoch)
+    epoch = source_date_epoch()
+    if epoch is not None:
+        manifest["created_epoch"] = epoch
     payload = encode_payload(manifest, vocab, graph_bytes, tensors)
     data = encode_bundle(payload)
     breakdown = {
@@ -223,6 +235,7 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
                steps: Steps | None = None) -> PackResult:
     """Pack a float model directory into a bundle at `out` (None: only build the bytes)."""
     steps = steps or Steps(6, quiet=True)
+    source_date_epoch()  # a malformed value fails before any work
     with steps.step(f"reading float model {model_dir}"):
         model = load_model(model_dir)
         source = {"sha256": model_digest(model_dir), "rows": len(model.vocab),

@@ -25,7 +25,7 @@ from helpers import make_corpus, make_float_model, make_model, random_texts, tok
 import packer.files as bundle_module
 from packer.fold import should_fold
 from packer.model import load_model, save_model
-from packer.pack import PackOptions, pack_model
+from packer.pack import PackError, PackOptions, pack_model
 from runtime.bundle import decode_bundle, read_bundle
 from runtime.classifier import Classifier
 from runtime.forward import Layer
@@ -200,6 +200,14 @@ def test_source_date_epoch_is_recorded(packed_inputs, monkeypatch):
     assert pack_model(model_dir, None, options).data == stamped  # still reproducible
     monkeypatch.setenv("SOURCE_DATE_EPOCH", "1700000001")
     assert _sha(pack_model(model_dir, None, options).data) != _sha(stamped)
+
+
+@pytest.mark.parametrize("value", ["abc", "", "-1", "1.5", " 1700000000", "١٧٠٠"])  # the last: Arabic-Indic digits
+def test_malformed_source_date_epoch_is_refused(packed_inputs, monkeypatch, value):
+    _, model_dir, corpus = packed_inputs
+    monkeypatch.setenv("SOURCE_DATE_EPOCH", value)
+    with pytest.raises(PackError, match="SOURCE_DATE_EPOCH=.*digits only"):
+        pack_model(model_dir, None, PackOptions(corpora=(str(corpus),)))
 
 
 # --- the atomic write ----------------------------------------------------------------------
