@@ -5,6 +5,7 @@ One reader for the packer's corpora and the check's evaluation sets.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import json
 import os
@@ -32,30 +33,40 @@ def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | N
     """Yield one dict per record, each with a str under `text_field`; raise TextFileError on bad input."""
     path = Path(path)
     fmt = fmt or detect_format(path)
+    if fmt not in ("lines", "jsonl", "csv", "tsv"):
+        raise TextFileError(f"{path}: unknown format {fmt!r}; use lines, jsonl, csv or tsv")
     try:
-        handle = open(path, encoding="utf-8-sig", newline="")  # a leading byte-order mark (Windows editors) is dropped
+        handle = open(path, "rb")
     except FileNotFoundError as e:
         raise TextFileError(f"{path}: no such file") from e
     except OSError as e:
         raise TextFileError(f"{path}: cannot be opened ({e})") from e
     with handle:
+        lines = _decode_lines(path, handle)
+        if fmt == "lines":
+            for line in lines:
+                yield {text_field: line.rstrip("\r\n")}
+        elif fmt == "jsonl":
+            yield from _iter_jsonl(path, lines, text_field)
+        else:
+            yield from _iter_table(path, lines, text_field, "," if fmt == "csv" else "\t")
+
+
+def _decode_lines(path: Path, handle) -> Iterator[str]:
+    """The file's lines as text, each with its LF (or CRLF); a leading byte-order mark (Windows editors) is
+    dropped. Decoding line by line lets a byte that is not UTF-8 be reported with its line."""
+    for number, raw in enumerate(handle, start=1):
+        if number == 1 and raw.startswith(codecs.BOM_UTF8):
+            raw = raw[len(codecs.BOM_UTF8):]
         try:
-            if fmt == "lines":
-                for line in handle:
-                    yield {text_field: line.rstrip("\r\n")}
-            elif fmt == "jsonl":
-                yield from _iter_jsonl(path, handle, text_field)
-            elif fmt in ("csv", "tsv"):
-                yield from _iter_table(path, handle, text_field, "," if fmt == "csv" else "\t")
-            else:
-                raise TextFileError(f"{path}: unknown format {fmt!r}; use lines, jsonl, csv or tsv")
+            yield raw.decode("utf-8")
         except UnicodeDecodeError as e:
-            raise TextFileError(f"{path}: is not valid UTF-8 ({e.reason} at byte {e.start} of a read block)",
-                                ) from e
+            raise TextFileError(f"{path}:{number}: is not valid UTF-8 ({e.reason} at byte {e.start + 1} of the "
+                                "line); save the file as UTF-8") from e
 
 
-def _iter_jsonl(path: Path, handle, text_field: str) -> Iterator[dict]:
-    for number, line in enumerate(handle, start=1):
+def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[dict]:
+    for number, line in enumerate(lines, start=1):
         if not line.strip():
             continue
         try:
@@ -70,12 +81,29 @@ def _iter_jsonl(path: Path, handle, text_field: str) -> Iterator[dict]:
         yield record
 
 
-def _iter_table(path: Path, handle, text_field: str, delimiter: str) -> Iterator[dict]:
-    reader = csv.DictReader(handle, delimiter=delimiter)
-    if reader.fieldnames is None or text_field not in reader.fieldnames:
-        raise TextFileError(f"{path}: header {reader.fieldnames} has no column {text_field!r} "
-                            "(the first line must name the columns; choose the text column with --text-field)")
-    for number, row in enumerate(reader, start=2):
-        if None in row or any(v is None for v in row.values()):
-            raise TextFileError(f"{path}:{number}: has a different number of columns than the header")
-        yield row
+def _iter_table(path: Path, lines: Iterator[str], text_field: str, delimiter: str) -> Iterator[dict]:
+    """Rows of a CSV/TSV file with a header line, as dicts. Strict quoting (RFC 4180): an opened quote must
+    close, or one unterminated quote would swallow the rest of the file as a single text."""
+    kind = "CSV" if delimiter == "," else "TSV"
+    reader = csv.reader(lines, delimiter=delimiter, strict=True)
+    first = 1  # the line where the current row starts (a quoted field may span lines)
+    try:
+        header = next(reader, None)
+        if header is None:
+            raise TextFileError(f"{path}: is empty; a {kind} file starts with a header line naming its columns")
+        if text_field not in header:
+            raise TextFileError(f"{path}: header {header} has no column {text_field!r} "
+                                "(the first line must name the columns; choose the text column with --text-field)")
+        while True:
+            first = reader.line_num + 1
+            fields = next(reader, None)
+            if fields is None:
+                return
+            if not fields:  # a blank line
+                continue
+            if len(fields) != len(header):
+                raise TextFileError(f"{path}:{first}: has {len(fields)} columns where the header has {len(header)}")
+            yield dict(zip(header, fields))
+    except csv.Error as e:
+        raise TextFileError(f"{path}:{first}: malformed {kind} ({e}); a field that opens a quote must close it, "
+                            'and a quote inside a quoted field is written twice ("")') from e
