@@ -29,6 +29,8 @@ FORMATS = ("jsonl", "tsv")
 EXIT_OK, EXIT_RECORD_ERRORS, EXIT_USAGE = 0, 1, 2
 EXIT_SIGPIPE = 128 + signal.SIGPIPE  # what a shell reports for a filter whose reader went away (141)
 EXIT_SIGINT = 128 + signal.SIGINT  # what a shell reports after Ctrl-C (130)
+EXIT_SIGTERM = 128 + signal.SIGTERM  # what a shell reports after a stop request, kill or a service manager (143)
+STOP_SIGNALS = (signal.SIGINT, signal.SIGTERM)  # each ends the stream cleanly, after the batch being written
 
 
 class StreamError(DanpackError):
@@ -85,43 +87,56 @@ class StreamStats:
         return self.records / self.seconds if self.seconds > 0 else 0.0
 
 
-class StreamInterrupted(KeyboardInterrupt):
-    """Ctrl-C during a stream: every answered record was written; `stats` counts them."""
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised where Ctrl-C would be (the `danpack-run` command installs this), so a service manager's
+    stop ends the stream as cleanly as Ctrl-C does."""
 
-    def __init__(self, stats: StreamStats) -> None:
-        super().__init__("interrupted")
+
+def _raise_terminated(signum, frame) -> None:
+    raise Terminated()
+
+
+class StreamInterrupted(KeyboardInterrupt):
+    """Ctrl-C (SIGINT) or, under `danpack-run`, SIGTERM stopped the stream; every answered batch was written."""
+
+    def __init__(self, stats: StreamStats, signum: int = signal.SIGINT) -> None:
+        super().__init__("terminated" if signum == signal.SIGTERM else "interrupted")
         self.stats = stats
+        self.signum = signum
 
 
 @contextmanager
-def _sigint_held():
-    """Hold Ctrl-C back while a batch is written and counted, so it never cuts a record in half.
+def _stop_signals_held():
+    """Hold SIGINT and SIGTERM back while a batch is written and counted, so neither cuts a record in half.
 
-    A Python-level handler, not a thread signal mask: the kernel may hand SIGINT to any thread
-    (onnxruntime's, the BLAS pool's), and Python then interrupts the main thread all the same.
+    Python-level handlers, not a thread signal mask: the kernel may hand a signal to any thread
+    (onnxruntime's, the BLAS pool's), and Python then runs the handler in the main thread all the same.
+    A signal that came meanwhile takes effect afterwards, as its own handler (or default action) says.
     """
-    if threading.current_thread() is not threading.main_thread():  # only the main thread gets SIGINT
+    if threading.current_thread() is not threading.main_thread():  # only the main thread may set handlers
         yield
         return
     caught: list[int] = []
-    previous = signal.signal(signal.SIGINT, lambda signum, frame: caught.append(signum))
+    previous = {signum: signal.signal(signum, lambda n, frame: caught.append(n)) for signum in STOP_SIGNALS}
     try:
         yield
     finally:
-        signal.signal(signal.SIGINT, previous)
-        if caught:  # a Ctrl-C that came meanwhile takes effect now, after the batch is out
-            if callable(previous):
-                previous(signal.SIGINT, None)
-            elif previous == signal.SIG_DFL:
-                signal.raise_signal(signal.SIGINT)
+        for signum, handler in previous.items():
+            signal.signal(signum, signal.SIG_DFL if handler is None else handler)  # None: set outside Python
+        for signum in dict.fromkeys(caught):  # each signal once, in arrival order
+            handler = previous[signum]
+            if callable(handler):
+                handler(signum, None)
+            elif handler is None or handler == signal.SIG_DFL:  # the default action, now that it is back
+                signal.raise_signal(signum)
 
 
 def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
                     config: StreamConfig = StreamConfig()) -> StreamStats:
     """Classify every line of `source` into `sink` (both binary); returns the counts.
 
-    Raises StreamInterrupted on Ctrl-C (after writing every answered batch) and lets OSError from the
-    sink (BrokenPipeError when the reader went away) propagate.
+    Raises StreamInterrupted on Ctrl-C or Terminated (after writing every answered batch) and lets OSError
+    from the sink (BrokenPipeError when the reader went away) propagate.
     """
     if config.top_k is not None and config.top_k > len(classifier.labels):
         raise StreamError(f"top-k {config.top_k} is more than the bundle's {len(classifier.labels)} labels "
@@ -139,21 +154,21 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
 
     try:
         if formatter.header:
-            with _sigint_held():
+            with _stop_signals_held():
                 sink.write(formatter.header)
         for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes):
             parsed = [parse(raw, records + i) for i, raw in enumerate(lines, start=1)]
             texts = [p[1] for p in parsed if p[3] is None]
             probs = classifier.predict_proba(texts) if texts else None  # (N, C)
             data = formatter.format(parsed, probs)
-            with _sigint_held():  # one write and one flush per batch
+            with _stop_signals_held():  # one write and one flush per batch
                 sink.write(data)
                 sink.flush()
                 records += len(parsed)
                 errors += len(parsed) - len(texts)
                 batches += 1
-    except KeyboardInterrupt:
-        raise StreamInterrupted(stats()) from None
+    except KeyboardInterrupt as e:
+        raise StreamInterrupted(stats(), signal.SIGTERM if isinstance(e, Terminated) else signal.SIGINT) from None
     return stats()
 
 
@@ -187,8 +202,9 @@ error records, one per bad input line:
 
 exit status:
   0 every record was classified (or --lenient); 1 some record got an error record;
-  2 bad usage or unreadable bundle/input; 130 interrupted (Ctrl-C) after writing every answered
-  record; 141 the reader of the output went away (as `| head` does).
+  2 bad usage or unreadable bundle/input; 130 interrupted (Ctrl-C) and 143 terminated (SIGTERM, as a
+  service manager stops a program), each after writing every answered record and never half a record;
+  141 the reader of the output went away (as `| head` does).
 """
 
 
@@ -305,8 +321,8 @@ def _run(argv: list[str] | None) -> int:
             return EXIT_USAGE
         except StreamInterrupted as e:
             if args.verbose:
-                _summary(e.stats, " (interrupted)")
-            return EXIT_SIGINT
+                _summary(e.stats, f" ({e})")
+            return EXIT_SIGTERM if e.signum == signal.SIGTERM else EXIT_SIGINT
         except BrokenPipeError:  # the reader went away (`| head`): stop quietly, as a filter killed by SIGPIPE
             return EXIT_SIGPIPE
         except OSError as e:  # an input that fails to read, an output that fails to write (disk full)
@@ -321,11 +337,22 @@ def _run(argv: list[str] | None) -> int:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """Entry point of the `danpack-run` console script; returns the exit status."""
+    """Entry point of the `danpack-run` console script; returns the exit status.
+
+    SIGTERM is turned into Terminated for the run (and the previous handler put back after), so a stop
+    request finishes the batch being written instead of killing the process in the middle of a record.
+    """
+    in_main_thread = threading.current_thread() is threading.main_thread()
+    previous = signal.signal(signal.SIGTERM, _raise_terminated) if in_main_thread else None
     try:
         return _run(argv)
-    except KeyboardInterrupt:  # Ctrl-C while loading, before any record was read
+    except Terminated:  # while loading, before any record was read
+        return EXIT_SIGTERM
+    except KeyboardInterrupt:  # Ctrl-C while loading
         return EXIT_SIGINT
+    finally:
+        if in_main_thread:
+            signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
 
 
 if __name__ == "__main__":

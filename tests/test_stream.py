@@ -28,7 +28,8 @@ from hypothesis import strategies as st
 import runtime
 from packer.pack import PackOptions, pack_model
 from runtime.errors import DanpackError
-from runtime.stream import StreamConfig, StreamError, StreamStats, classify_stream, main
+from runtime.stream import (StreamConfig, StreamError, StreamInterrupted, StreamStats, Terminated, classify_stream,
+                            main)
 from runtime.stream_lines import OVERLONG, LineSplitter, read_batches
 from tests.helpers import LABELS, make_model, random_texts, token
 
@@ -93,22 +94,26 @@ class Trickle(io.RawIOBase):
         return piece
 
 
-def _reset_sigint() -> None:
-    """In the child before exec: SIGINT at its default and unblocked, as an interactive shell leaves it.
+STOPS = [(signal.SIGINT, 130, "interrupted"), (signal.SIGTERM, 143, "terminated")]  # 128 + N: shell convention
 
-    Both are inherited through fork and exec (signal(7)): a CI launcher that ignores SIGINT, or blocks it
-    in its signal mask, would otherwise hand that on, and the child would never see the Ctrl-C.
+
+def _reset_stop_signals() -> None:
+    """In the child before exec: SIGINT and SIGTERM at their defaults and unblocked, as a shell leaves them.
+
+    Both are inherited through fork and exec (signal(7)): a CI launcher that ignores a signal, or blocks it
+    in its signal mask, would otherwise hand that on, and the child would never see it.
     """
-    signal.signal(signal.SIGINT, signal.SIG_DFL)
-    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT})
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(signum, signal.SIG_DFL)
+    signal.pthread_sigmask(signal.SIG_UNBLOCK, {signal.SIGINT, signal.SIGTERM})
 
 
 def child(bundle: Path, *args: str, **popen) -> subprocess.Popen:
-    """`danpack-run BUNDLE ARGS` as a subprocess (python -m runtime.stream), SIGINT at its default."""
+    """`danpack-run BUNDLE ARGS` as a subprocess (python -m runtime.stream), stop signals at their defaults."""
     env = dict(os.environ, PYTHONPATH=str(REPO))
     return subprocess.Popen(
         [sys.executable, "-m", "runtime.stream", str(bundle), *args], env=env, cwd=popen.pop("cwd"),
-        preexec_fn=_reset_sigint, **popen,
+        preexec_fn=_reset_stop_signals, **popen,
     )
 
 
@@ -421,6 +426,42 @@ def test_config_errors(clf):
         classify_stream(clf, io.BytesIO(b"w1\n"), io.BytesIO(), StreamConfig(top_k=4))
 
 
+class _SignalMidWrite(io.BytesIO):
+    """A sink that receives a signal halfway through its second write, as a pipe write can be interrupted."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__()
+        self.signum, self.writes = signum, 0
+
+    def write(self, data) -> int:
+        self.writes += 1
+        if self.writes < 2:
+            return super().write(data)
+        half = len(data) // 2
+        super().write(data[:half])
+        signal.raise_signal(self.signum)  # its Python handler runs at the next bytecode
+        return half + super().write(data[half:])
+
+
+def _raise_terminated_for_test(signum, frame):
+    raise Terminated()
+
+
+@pytest.mark.parametrize("signum", [signal.SIGINT, signal.SIGTERM])
+def test_a_signal_during_a_write_waits_for_the_batch_to_be_out(clf, signum):
+    sink = _SignalMidWrite(signum)
+    previous = signal.signal(signal.SIGTERM, _raise_terminated_for_test)  # what danpack-run's main installs
+    try:
+        with pytest.raises(StreamInterrupted) as e:
+            classify_stream(clf, io.BytesIO(b"w1 w2\n" * 10), sink, StreamConfig(batch=4))
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    assert e.value.signum == signum and str(e.value) == ("terminated" if signum == signal.SIGTERM else "interrupted")
+    raw = sink.getvalue()
+    assert raw.count(b"\n") == 8 and raw.endswith(b"\n")  # two whole batches of 4, the second not cut
+    assert e.value.stats.records == 8 and e.value.stats.batches == 2
+
+
 # --- the command line, in process ----------------------------------------------------------------
 
 def cli(monkeypatch, capsys, argv: list[str]) -> tuple[int, bytes, str]:
@@ -526,7 +567,8 @@ def test_reader_going_away_is_quiet(bundle, tmp_path):
     assert len(shell.stdout.splitlines()) == 1 and (tmp_path / "err.txt").read_bytes() == b""
 
 
-def test_sigint_flushes_answers_and_exits_130(bundle, tmp_path):
+@pytest.mark.parametrize("signum,status,word", STOPS)
+def test_stop_signal_flushes_answers_and_exits_128_plus_n(bundle, tmp_path, signum, status, word):
     proc = child(bundle, "--verbose", cwd=tmp_path, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
                  stderr=subprocess.PIPE)
     try:
@@ -536,13 +578,51 @@ def test_sigint_flushes_answers_and_exits_130(bundle, tmp_path):
             assert json.loads(read_line(proc.stdout))["line"] == i + 1
         proc.stdin.write(b"w1 unfinished")  # a line still being typed
         proc.stdin.flush()
-        proc.send_signal(signal.SIGINT)
-        assert proc.wait(CHILD_TIMEOUT) == 130
+        proc.send_signal(signum)
+        assert proc.wait(CHILD_TIMEOUT) == status
         err = proc.stderr.read().decode()
-        assert "Traceback" not in err and "3 records, 0 errors" in err and "(interrupted)" in err
+        assert "Traceback" not in err and "3 records, 0 errors" in err and f"({word})" in err
         assert proc.stdout.read() == b""  # every answered record was already out; nothing half-written
     finally:
         proc.kill()
+
+
+@pytest.mark.parametrize("signum,status,word", STOPS)
+def test_stop_signal_mid_stream_never_cuts_a_record(bundle, tmp_path, signum, status, word):
+    """A signal while batches are flowing: the output is whole records 1..N and the summary counts N."""
+    proc = child(bundle, "--verbose", "--batch", "16", cwd=tmp_path, stdin=subprocess.PIPE, stdout=subprocess.PIPE,
+                 stderr=subprocess.PIPE)
+    out = bytearray()
+    lines_out = threading.Event()
+
+    def feed() -> None:
+        try:
+            for start in range(0, 2_000_000, 500):  # far more than arrives before the signal
+                proc.stdin.write("".join(f"w{i % 200} w{i * 7 % 200} charger\n" for i in range(start, start + 500)).encode())
+        except (BrokenPipeError, ValueError):
+            pass
+
+    def drain() -> None:
+        while chunk := proc.stdout.read1(1 << 16):
+            out.extend(chunk)
+            if out.count(b"\n") >= 2_000:
+                lines_out.set()
+
+    threads = [threading.Thread(target=feed, daemon=True), threading.Thread(target=drain, daemon=True)]
+    try:
+        for t in threads:
+            t.start()
+        assert lines_out.wait(CHILD_TIMEOUT), "danpack-run answered too little within the timeout"
+        proc.send_signal(signum)
+        assert proc.wait(CHILD_TIMEOUT) == status
+        threads[1].join(CHILD_TIMEOUT)
+        err = proc.stderr.read().decode()
+    finally:
+        proc.kill()
+    assert out.endswith(b"\n"), "the last record was cut"
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [r["line"] for r in records] == list(range(1, len(records) + 1))
+    assert "Traceback" not in err and f"{len(records):,} records, 0 errors" in err and f"({word})" in err
 
 
 def rss_kib(pid: int) -> int | None:
