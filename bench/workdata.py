@@ -130,6 +130,23 @@ def glove_model_dir(config: BenchConfig) -> Path:
     return target
 
 
+def glove_words_model_dir(config: BenchConfig, rows: int) -> Path:
+    """The synthetic `rows`-row model with GloVe 6B's `rows` most frequent tokens as its vocabulary (real
+    words, for the vocabulary's share of a bundle); built once."""
+    from dataclasses import replace
+
+    from models_demo.glove import load_glove
+    from packer.model import load_model
+
+    target = config.models_dir / f"synthetic-{rows}-glove-words"
+    if not (target / "config.json").exists():
+        say(f"writing the {rows:,}-row model with GloVe's most frequent words -> {target}")
+        words = load_glove().tokens[:rows]  # the GloVe files list tokens most frequent first
+        save_model(replace(load_model(synthetic_model_dir(config, rows)), vocab=tuple(words)), target,
+                   weights_format="npz")
+    return target
+
+
 def synthetic_tokens(n: int) -> list[str]:
     """n distinct lowercase tokens: a..z, aa..zz, aaa.. (bijective base 26), all reachable by the tokenizer."""
     letters = "abcdefghijklmnopqrstuvwxyz"

@@ -15,7 +15,7 @@ def size_breakdown(bundle: Bundle) -> dict[str, int]:
         "table": t["table"].nbytes,
         "scales": t["scales"].nbytes if "scales" in t else 0,
         "layers": sum(a.nbytes for n, a in t.items() if n.startswith("layer.")),
-        "vocab": len("\n".join(bundle.vocab).encode("utf-8")),
+        "vocab": bundle.vocab_bytes,
         "graph": len(bundle.graph),
     }
     parts["other"] = bundle.size - sum(parts.values())

@@ -19,7 +19,7 @@ from runtime.forward import forward_logits, softmax
 from runtime.tokenize import Tokenizer
 
 from . import __version__
-from .bundle import encode_bundle, encode_payload
+from .bundle import encode_bundle, encode_payload, encode_vocab
 from .files import file_sha256, write_atomic
 from .fold import fold_first_layer, should_fold
 from .graph import GraphSpec, build_graph, check_graph
@@ -192,13 +192,14 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
     epoch = source_date_epoch()
     if epoch is not None:
         manifest["created_epoch"] = epoch
-    payload = encode_payload(manifest, vocab, graph_bytes, tensors)
+    vocab_blob = encode_vocab(vocab)
+    payload = encode_payload(manifest, vocab_blob, graph_bytes, tensors)
     data = encode_bundle(payload)
     breakdown = {
         "table": tensors["table"].nbytes,
         "scales": tensors["scales"].nbytes if quantize else 0,
         "layers": sum(t.nbytes for n, t in tensors.items() if n.startswith("layer.")),
-        "vocab": len("\n".join(vocab).encode("utf-8")),
+        "vocab": len(vocab_blob),
         "graph": len(graph_bytes),
     }
     breakdown["other"] = len(data) - sum(breakdown.values())

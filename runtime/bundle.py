@@ -3,7 +3,8 @@
 File layout (format "danpack-bundle", version 1), specified in the README:
 a msgpack map {"format": str, "payload": bin, "sha256": bin(32), "version": int};
 sha256 is over the payload bytes, which are themselves a msgpack map
-{"graph": bin, "manifest": map, "tensors": map, "vocab": str}.
+{"graph": bin, "manifest": map, "tensors": map, "vocab": bin}; vocab is the zlib stream (RFC 1950) of the
+deployment tokens joined by newlines, inflated with a bound.
 Everything is checked before use: msgpack container counts against the bytes present (before msgpack
 allocates), the checksum before the payload is parsed, then tensors, manifest and the ONNX graph (read
 with the protobuf wire format, stdlib only). Every failure is a BundleError saying what is wrong.
@@ -16,6 +17,7 @@ import math
 import os
 import reprlib
 import stat
+import zlib
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,6 +39,9 @@ MAX_PAYLOAD_ITEMS = 1 << 18
 # sum or a 300-term dot product of values below this stays far from it. Trained models reach < 1e4.
 MAX_LOGIT_REACH = 1e30
 MAX_CONTAINER = 1 << 16  # entries of one map or list (the probe's lists hold at most 64)
+# The vocabulary inflates to at most this many bytes per table row (plus a little): real tokens average
+# under 10 bytes (GloVe 6B: 8.4 with its newline), so a stream that inflates further is a zlib bomb.
+MAX_VOCAB_BYTES_PER_ROW, VOCAB_SLACK_BYTES = 256, 4096
 DTYPES = {"int8": np.dtype("i1"), "float32": np.dtype("<f4")}
 OOV_POLICIES = ("skip", "unk", "rest")
 ACTIVATIONS = ("relu", "tanh", None)
@@ -66,6 +71,7 @@ class Bundle:
     tensors: dict[str, np.ndarray]  # read-only arrays over the payload bytes
     sha256: str  # hex digest of the payload, for pinning a deployment
     size: int  # bytes of the file
+    vocab_bytes: int  # bytes the vocabulary takes in the file (compressed)
 
     @property
     def labels(self) -> tuple[str, ...]:
@@ -174,21 +180,23 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
     if not isinstance(body, dict) or set(body) != PAYLOAD_KEYS:
         keys = sorted(map(str, body)) if isinstance(body, dict) else type(body).__name__
         raise BundleError(f"{source}: payload holds {keys}, expected the keys {sorted(PAYLOAD_KEYS)}")
-    manifest, vocab_text, graph, raw_tensors = body["manifest"], body["vocab"], body["graph"], body["tensors"]
+    manifest, vocab_blob, graph, raw_tensors = body["manifest"], body["vocab"], body["graph"], body["tensors"]
     if not isinstance(manifest, dict):
         raise BundleError(f"{source}: manifest is {type(manifest).__name__}, expected a map")
-    if not isinstance(vocab_text, str):
-        raise BundleError(f"{source}: vocab is {type(vocab_text).__name__}, expected a newline-joined string")
+    if not isinstance(vocab_blob, bytes):
+        raise BundleError(f"{source}: vocab is {type(vocab_blob).__name__}, expected bytes (a zlib stream)")
     if not isinstance(graph, bytes):
         raise BundleError(f"{source}: graph is {type(graph).__name__}, expected bytes")
     if not isinstance(raw_tensors, dict):
         raise BundleError(f"{source}: tensors is {type(raw_tensors).__name__}, expected a map")
     # 4. tensors, then the manifest against them, then the graph against both
-    vocab = tuple(vocab_text.split("\n")) if vocab_text else ()
     tensors = {name: _decode_tensor(source, name, spec) for name, spec in raw_tensors.items()}
+    table = tensors.get("table")
+    rows = table.shape[0] if table is not None else 0
+    vocab = _decode_vocab(source, vocab_blob, MAX_VOCAB_BYTES_PER_ROW * rows + VOCAB_SLACK_BYTES)
     _check_manifest(source, manifest, vocab, tensors)
     _check_graph(source, graph, tensors)
-    return Bundle(manifest, vocab, graph, tensors, digest.hex(), len(data))
+    return Bundle(manifest, vocab, graph, tensors, digest.hex(), len(data), len(vocab_blob))
 
 
 def read_bundle(path: str | os.PathLike) -> Bundle:
@@ -211,6 +219,26 @@ def read_bundle(path: str | os.PathLike) -> Bundle:
     except OSError as e:
         raise BundleError(f"{path}: cannot be read ({e})") from e
     return decode_bundle(data, str(path))
+
+
+def _decode_vocab(source: str, blob: bytes, limit: int) -> tuple[str, ...]:
+    """The tokens from their zlib stream; never inflates more than `limit` bytes (a crafted stream can
+    expand a thousandfold), and refuses a stream that is cut short or followed by other bytes."""
+    inflater = zlib.decompressobj()
+    try:
+        text = inflater.decompress(blob, limit)
+    except zlib.error as e:
+        raise BundleError(f"{source}: vocab is not a valid zlib stream ({e})") from None
+    if inflater.unconsumed_tail or (not inflater.eof and len(text) >= limit):
+        raise BundleError(f"{source}: vocab inflates to more than {limit:,} bytes ({MAX_VOCAB_BYTES_PER_ROW} per "
+                          "table row, far beyond any real vocabulary); refused as a decompression bomb")
+    if not inflater.eof or inflater.unused_data:
+        raise BundleError(f"{source}: vocab's zlib stream is {'cut short' if not inflater.eof else 'followed by other bytes'}")
+    try:
+        tokens = text.decode("utf-8")
+    except UnicodeDecodeError as e:
+        raise BundleError(f"{source}: vocab is not UTF-8 ({e.reason} at byte {e.start})") from None
+    return tuple(tokens.split("\n")) if tokens else ()
 
 
 def _decode_tensor(source: str, name: object, spec: object) -> np.ndarray:

@@ -22,7 +22,7 @@ import scipy.stats
 from typer.testing import CliRunner
 
 from helpers import make_model, zipf_texts
-from packer.bundle import encode_bundle, encode_payload
+from packer.bundle import encode_bundle, encode_payload, encode_vocab
 from packer.check import (CheckError, CheckOptions, MeanShift, align_labels, bootstrap_drop_interval,
                           clopper_pearson, exact_drop_interval, kl_divergence, mcnemar_exact_p, per_class_recall,
                           read_eval_set, run_check)
@@ -99,7 +99,7 @@ def reencode(source: Path, out: Path, *, table=None, labels=None) -> Path:
     ids, counts = encode_batch(manifest["probe"]["ids"])
     probs = softmax(forward_logits(tensors["table"], layers, ids, counts, tensors.get("scales")))  # (P, C)
     manifest["probe"]["probs"] = probs.astype(np.float32).tolist()
-    out.write_bytes(encode_bundle(encode_payload(manifest, list(b.vocab), b.graph, tensors)))
+    out.write_bytes(encode_bundle(encode_payload(manifest, encode_vocab(list(b.vocab)), b.graph, tensors)))
     return out
 
 

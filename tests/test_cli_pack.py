@@ -10,6 +10,7 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+import zlib
 from pathlib import Path
 
 import msgpack
@@ -135,6 +136,11 @@ def test_inspect_json_breakdown_sums_to_the_file_size(packed):
     t = info["manifest"]["table"]
     assert info["breakdown"]["table"] == t["rows"] * t["width"]  # int8: one byte per element
     assert info["breakdown"]["scales"] == 4 * t["rows"]  # one float32 per row
+    # the vocabulary: one zlib stream (RFC 1950), inflated by the stdlib, of the tokens joined by newlines
+    stored = msgpack.unpackb(msgpack.unpackb(out.read_bytes(), raw=False)["payload"], raw=False)["vocab"]
+    assert info["breakdown"]["vocab"] == len(stored)
+    tokens = zlib.decompress(stored).decode("utf-8").split("\n")
+    assert len(tokens) == info["tokens"] == t["tokens"] and len(set(tokens)) == len(tokens)
     assert info["sha256"] == _payload_sha(out)
     assert info["labels"] == list(LABELS) and "probe" not in info["manifest"]
 

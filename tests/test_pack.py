@@ -210,6 +210,15 @@ def test_malformed_source_date_epoch_is_refused(packed_inputs, monkeypatch, valu
         pack_model(model_dir, None, PackOptions(corpora=(str(corpus),)))
 
 
+def test_long_tokens_stay_within_the_vocabulary_inflate_bound(tmp_path):
+    """The reader inflates at most 256 bytes per table row (a bomb guard); 250-byte tokens still load."""
+    vocab = [f"{'x' * 246}{i:03d}" for i in range(40)]  # 249 bytes + newline per row, incompressible digits aside
+    model_dir = save_model(make_float_model(vocab=vocab, dim=8, hidden=(4,), seed=2), tmp_path / "model")
+    bundle = decode_bundle(pack_model(model_dir, None, PackOptions()).data)
+    assert list(bundle.vocab) == vocab
+    assert bundle.vocab_bytes < len("\n".join(vocab)) // 10  # repeated letters deflate well
+
+
 # --- the atomic write ----------------------------------------------------------------------
 
 class _FailingFile:

@@ -21,7 +21,7 @@ import pytest
 from helpers import LABELS, make_corpus, make_model, random_texts, token, zipf_texts
 
 import runtime
-from packer.bundle import encode_bundle, encode_payload
+from packer.bundle import encode_bundle, encode_payload, encode_vocab
 from packer.pack import PackOptions, pack_model
 from runtime import BundleError, DanpackError
 from runtime.bundle import read_bundle
@@ -138,7 +138,7 @@ def _rewrite(bundle_path: Path, out: Path, edit) -> Path:
     manifest = json.loads(json.dumps(b.manifest))  # a deep, mutable copy
     tensors = {k: np.array(v) for k, v in b.tensors.items()}
     edit(manifest, tensors)
-    out.write_bytes(encode_bundle(encode_payload(manifest, list(b.vocab), b.graph, tensors)))
+    out.write_bytes(encode_bundle(encode_payload(manifest, encode_vocab(list(b.vocab)), b.graph, tensors)))
     return out
 
 

@@ -15,6 +15,7 @@ import json
 import struct
 import sys
 import tempfile
+import zlib
 from pathlib import Path
 
 import msgpack
@@ -120,6 +121,17 @@ def set_path(body: dict, path: tuple, value) -> None:
 
 def edit_value(path: tuple, value):
     return lambda body: set_path(body, path, value)
+
+
+def edit_vocab(edit):
+    """Apply `edit(text)` to the inflated vocabulary and deflate it again (a valid zlib stream)."""
+    def apply(body: dict) -> None:
+        body["vocab"] = zlib.compress(edit(zlib.decompress(body["vocab"]).decode("utf-8")).encode("utf-8"), 9)
+    return apply
+
+
+def _vocab_bytes(body: dict) -> bytes:
+    return zlib.decompress(body["vocab"])
 
 
 def payload_offset(data: bytes) -> int:
@@ -278,8 +290,18 @@ CASES: list[tuple[str, str, object]] = [
     ("tensors_is_list.bundle", "tensors is a list", lambda b: with_body(b, edit_value(("tensors",), []))),
     ("graph_is_text.bundle", "graph is a str", lambda b: with_body(b, edit_value(("graph",), "onnx"))),
     ("vocab_is_list.bundle", "vocab is a list of tokens", lambda b: with_body(b, edit_value(("vocab",), ["charger"]))),
-    ("vocab_not_utf8.bundle", "vocab str holds invalid UTF-8",
-     lambda b: seal_raw(msgpack.packb(split(b)[1], use_bin_type=True).replace(b"charger", b"ch\xffrger", 1))),
+    ("vocab_is_text.bundle", "vocab is the plain newline-joined text, not its zlib stream",
+     lambda b: with_body(b, lambda d: d.update(vocab=_vocab_bytes(d).decode("utf-8")))),
+    ("vocab_not_zlib.bundle", "vocab bytes are the plain text, not a zlib stream",
+     lambda b: with_body(b, lambda d: d.update(vocab=_vocab_bytes(d)))),
+    ("vocab_zlib_cut.bundle", "vocab's zlib stream without its last 4 bytes (the Adler-32)",
+     lambda b: with_body(b, lambda d: d.update(vocab=d["vocab"][:-4]))),
+    ("vocab_zlib_trailing.bundle", "a byte after the end of vocab's zlib stream",
+     lambda b: with_body(b, lambda d: d.update(vocab=d["vocab"] + b"\x00"))),
+    ("vocab_zlib_bomb.bundle", "vocab deflated from 400 kB of one repeated token (a 24-row table allows 10 kB)",
+     lambda b: with_body(b, edit_value(("vocab",), zlib.compress(b"charger\n" * 50_000, 9)))),
+    ("vocab_not_utf8.bundle", "vocab inflates to bytes that are not UTF-8",
+     lambda b: with_body(b, lambda d: d.update(vocab=zlib.compress(_vocab_bytes(d).replace(b"charger", b"ch\xffrger", 1), 9)))),
     # tensors
     ("tensor_dtype_float64.bundle", "table dtype float64", lambda b: with_body(b, edit_value(("tensors", "table", "dtype"), "float64"))),
     ("tensor_dtype_is_list.bundle", "table dtype is a list (unhashable)", lambda b: with_body(b, edit_value(("tensors", "table", "dtype"), ["int8"]))),
@@ -319,12 +341,12 @@ CASES: list[tuple[str, str, object]] = [
      lambda b: with_body(b, lambda d: d["manifest"]["layers"][1].pop("activation"))),
     ("layer_bias_missing.bundle", "layer 1 has no bias", lambda b: with_body(b, lambda d: d["tensors"].pop("layer.1.bias"))),
     ("vocab_duplicate_token.bundle", "a token listed twice",
-     lambda b: with_body(b, lambda d: d.update(vocab=d["vocab"].replace("slow", "charger", 1)))),
+     lambda b: with_body(b, edit_vocab(lambda v: v.replace("slow", "charger", 1)))),
     ("vocab_empty_token.bundle", "an empty token between two others",
-     lambda b: with_body(b, lambda d: d.update(vocab=d["vocab"].replace("\nslow\n", "\n\n", 1)))),
+     lambda b: with_body(b, edit_vocab(lambda v: v.replace("\nslow\n", "\n\n", 1)))),
     ("table_rows_misdescribed.bundle", "the manifest says the table has 25 rows; it has 24",
      lambda b: with_body(b, edit_value(("manifest", "table", "rows"), 25))),
-    ("vocab_too_long.bundle", "more tokens than table rows", lambda b: with_body(b, lambda d: d.update(vocab=d["vocab"] + "\nextra\nmore"))),
+    ("vocab_too_long.bundle", "more tokens than table rows", lambda b: with_body(b, edit_vocab(lambda v: v + "\nextra\nmore"))),
     ("oov_policy_unknown.bundle", "oov policy 'drop'", lambda b: with_body(b, edit_value(("manifest", "oov", "policy"), "drop"))),
     ("oov_row_out_of_range.bundle", "policy unk with row 999", lambda b: with_body(b, edit_value(("manifest", "oov"), {"policy": "unk", "row": 999}))),
     ("oov_row_is_bool.bundle", "policy unk with row true", lambda b: with_body(b, edit_value(("manifest", "oov"), {"policy": "unk", "row": True}))),
@@ -389,7 +411,7 @@ def _deep_list(depth: int) -> list:
 def _zero_rows(body: dict) -> None:
     tensor(body, "table").update(shape=[0, 6], data=b"")
     tensor(body, "scales").update(shape=[0], data=b"")
-    body["vocab"] = ""
+    body["vocab"] = zlib.compress(b"", 9)
     body["manifest"]["probe"] = {"ids": [[]], "probs": [body["manifest"]["probe"]["probs"][0]]}
 
 
