@@ -10,6 +10,7 @@ stream goes on. `classify_stream` is the library function; `main` only parses op
 from __future__ import annotations
 
 import argparse
+import os
 import signal
 import sys
 import threading
@@ -132,11 +133,12 @@ def _stop_signals_held():
 
 
 def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
-                    config: StreamConfig = StreamConfig()) -> StreamStats:
+                    config: StreamConfig = StreamConfig(), wake_fd: int | None = None) -> StreamStats:
     """Classify every line of `source` into `sink` (both binary); returns the counts.
 
     Raises StreamInterrupted on Ctrl-C or Terminated (after writing every answered batch) and lets OSError
-    from the sink (BrokenPipeError when the reader went away) propagate.
+    from the sink (BrokenPipeError when the reader went away) propagate. `wake_fd`, the read end of the
+    descriptor given to `signal.set_wakeup_fd`, lets a signal end a wait for input at once.
     """
     if config.top_k is not None and config.top_k > len(classifier.labels):
         raise StreamError(f"top-k {config.top_k} is more than the bundle's {len(classifier.labels)} labels "
@@ -156,7 +158,7 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
         if formatter.header:
             with _stop_signals_held():
                 sink.write(formatter.header)
-        for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes):
+        for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes, wake_fd):
             parsed = [parse(raw, records + i) for i, raw in enumerate(lines, start=1)]
             texts = [p[1] for p in parsed if p[3] is None]
             probs = classifier.predict_proba(texts) if texts else None  # (N, C)
@@ -299,7 +301,7 @@ def _summary(stats: StreamStats, note: str = "") -> None:
          f"{stats.seconds:.2f} s, {stats.lines_per_second:,.0f} lines/s{note}")
 
 
-def _run(argv: list[str] | None) -> int:
+def _run(argv: list[str] | None, wake_fd: int | None) -> int:
     parser = build_parser()
     args = parser.parse_intermixed_args(argv)  # options may stand between BUNDLE and INPUT
     config = _config_from_args(parser, args)
@@ -315,7 +317,7 @@ def _run(argv: list[str] | None) -> int:
     try:
         try:
             classifier = load(args.bundle, backend=args.backend, threads=args.threads)
-            stats = classify_stream(classifier, source, sys.stdout.buffer, config)
+            stats = classify_stream(classifier, source, sys.stdout.buffer, config, wake_fd)
         except DanpackError as e:  # an unreadable bundle, or options the bundle cannot honour (--top-k)
             _say(f"error: {e}")
             return EXIT_USAGE
@@ -340,19 +342,27 @@ def main(argv: list[str] | None = None) -> int:
     """Entry point of the `danpack-run` console script; returns the exit status.
 
     SIGTERM is turned into Terminated for the run (and the previous handler put back after), so a stop
-    request finishes the batch being written instead of killing the process in the middle of a record.
+    request finishes the batch being written instead of killing the process in the middle of a record;
+    a signal wakeup pipe makes a signal that lands just before a wait for input end that wait.
     """
-    in_main_thread = threading.current_thread() is threading.main_thread()
-    previous = signal.signal(signal.SIGTERM, _raise_terminated) if in_main_thread else None
+    if threading.current_thread() is not threading.main_thread():  # signals are the main thread's
+        return _run(argv, None)
+    wake_read, wake_write = os.pipe()
+    for fd in (wake_read, wake_write):
+        os.set_blocking(fd, False)
+    previous_wake = signal.set_wakeup_fd(wake_write, warn_on_full_buffer=False)
+    previous = signal.signal(signal.SIGTERM, _raise_terminated)
     try:
-        return _run(argv)
+        return _run(argv, wake_read)
     except Terminated:  # while loading, before any record was read
         return EXIT_SIGTERM
     except KeyboardInterrupt:  # Ctrl-C while loading
         return EXIT_SIGINT
     finally:
-        if in_main_thread:
-            signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
+        signal.signal(signal.SIGTERM, signal.SIG_DFL if previous is None else previous)
+        signal.set_wakeup_fd(previous_wake)
+        os.close(wake_read)
+        os.close(wake_write)
 
 
 if __name__ == "__main__":

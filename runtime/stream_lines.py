@@ -69,37 +69,72 @@ def _fileno(source: BinaryIO) -> int | None:
         return None
 
 
-def _read_fd(fd: int, poller: select.poll) -> bytes:
-    """One read of at most CHUNK_BYTES from a descriptor; waits on a non-blocking one instead of failing."""
-    while True:
+class _Waiter:
+    """Waits for input on a descriptor, and for a signal when given the signal wakeup descriptor.
+
+    Without the wakeup descriptor a signal that lands just before a blocking read is lost until more
+    input comes (its Python handler runs only when the read returns): with it, the signal makes the
+    wait return and its handler runs at once.
+    """
+
+    def __init__(self, fd: int, wake_fd: int | None) -> None:
+        self.fd, self.wake_fd = fd, wake_fd
+        self.poller = select.poll()
+        self.poller.register(fd, select.POLLIN | select.POLLPRI)
+        if wake_fd is not None:
+            self.poller.register(wake_fd, select.POLLIN)
+
+    def wait(self, timeout_ms: int | None) -> bool:
+        """Whether input (or its end) is ready within the timeout (None: wait for it); runs signal handlers."""
+        deadline = None if timeout_ms is None else time.monotonic() + timeout_ms / 1000.0
+        while True:
+            left = None if deadline is None else max(0, int((deadline - time.monotonic()) * 1000.0 + 0.999))
+            ready = {fd for fd, _ in self.poller.poll(left)}
+            if self.wake_fd in ready:
+                self._drain_wakeups()  # a handler that stops the stream has raised by now
+            if self.fd in ready:
+                return True
+            if deadline is not None and time.monotonic() >= deadline:
+                return False
+
+    def _drain_wakeups(self) -> None:
         try:
-            return os.read(fd, CHUNK_BYTES)
+            while os.read(self.wake_fd, 512):
+                pass
         except BlockingIOError:
-            poller.poll()
+            pass
+
+    def read(self) -> bytes:
+        """One read of at most CHUNK_BYTES once input is ready (b"" at its end)."""
+        while True:
+            self.wait(None)
+            try:
+                return os.read(self.fd, CHUNK_BYTES)
+            except BlockingIOError:  # a non-blocking descriptor that another reader emptied first
+                continue
 
 
-def read_batches(source: BinaryIO, size: int, max_wait: float, limit: int) -> Iterator[list]:
+def read_batches(source: BinaryIO, size: int, max_wait: float, limit: int,
+                 wake_fd: int | None = None) -> Iterator[list]:
     """Batches (lists of at most `size` lines or OVERLONG markers) in input order.
 
     A source with a file descriptor is read through the descriptor directly (unbuffered `os.read`, so a
     partial batch can be answered while the producer pauses); other sources (BytesIO) through `read`.
+    `wake_fd` is the read end of the descriptor given to `signal.set_wakeup_fd`, if any.
     """
     splitter = LineSplitter(limit)
     fd = _fileno(source)
-    poller = None
-    if fd is not None:
-        poller = select.poll()
-        poller.register(fd, select.POLLIN | select.POLLPRI)
+    waiter = _Waiter(fd, wake_fd) if fd is not None else None
     pending: list = []
     deadline = 0.0  # when the oldest pending line has waited max_wait
     while True:
-        if pending and poller is not None:
+        if pending and waiter is not None:
             wait_ms = max(0, int((deadline - time.monotonic()) * 1000.0 + 0.999))
-            if not poller.poll(wait_ms):  # the input paused: answer what is there
+            if not waiter.wait(wait_ms):  # the input paused: answer what is there
                 yield pending
                 pending = []
                 continue
-        chunk = _read_fd(fd, poller) if fd is not None else source.read(CHUNK_BYTES)
+        chunk = waiter.read() if waiter is not None else source.read(CHUNK_BYTES)
         if not chunk:
             break
         arrived = time.monotonic()

@@ -462,6 +462,44 @@ def test_a_signal_during_a_write_waits_for_the_batch_to_be_out(clf, signum):
     assert e.value.stats.records == 8 and e.value.stats.batches == 2
 
 
+@pytest.mark.parametrize("wake", [True, False])
+def test_a_signal_handled_off_the_main_thread_ends_a_wait_for_input(wake):
+    """The lost-wakeup race, made deterministic: the signal's C handler runs in another thread (as when it
+    lands just before the main thread blocks), so only the wakeup descriptor can end the wait. Without
+    it the wait lasts until input comes (here: a byte written after 2 s)."""
+    in_read, in_write = os.pipe()
+    wake_read, wake_write = os.pipe()
+    for fd in (wake_read, wake_write):
+        os.set_blocking(fd, False)
+    previous_wake = signal.set_wakeup_fd(wake_write, warn_on_full_buffer=False)
+    previous = signal.signal(signal.SIGUSR1, _raise_terminated_for_test)
+    sender = threading.Thread(target=lambda: (time.sleep(0.1), signal.pthread_kill(threading.get_ident(), signal.SIGUSR1)))
+    rescue = threading.Timer(2.0, lambda: os.write(in_write, b"x\n"))  # bounds the test when the wait hangs
+    started = time.monotonic()
+    try:
+        with open(in_read, "rb", buffering=0, closefd=False) as source:
+            sender.start()
+            rescue.start()
+            batches = read_batches(source, 64, max_wait=0.005, limit=100, wake_fd=wake_read if wake else None)
+            try:
+                next(batches)
+                stopped = False
+            except Terminated:
+                stopped = True
+    finally:
+        rescue.cancel()
+        sender.join()
+        signal.signal(signal.SIGUSR1, previous)
+        signal.set_wakeup_fd(previous_wake)
+        for fd in (in_read, in_write, wake_read, wake_write):
+            os.close(fd)
+    elapsed = time.monotonic() - started
+    if wake:
+        assert stopped and elapsed < 1.5, elapsed
+    else:  # the failure the wakeup descriptor prevents: the signal waited for the rescue input
+        assert elapsed >= 1.9
+
+
 # --- the command line, in process ----------------------------------------------------------------
 
 def cli(monkeypatch, capsys, argv: list[str]) -> tuple[int, bytes, str]:
