@@ -118,8 +118,10 @@ def _stop_signals_held():
         yield
         return
     caught: list[int] = []
-    previous = {signum: signal.signal(signum, lambda n, frame: caught.append(n)) for signum in STOP_SIGNALS}
+    previous: dict[int, object] = {}
     try:
+        for signum in STOP_SIGNALS:  # a signal between two of these still finds every handler put back
+            previous[signum] = signal.signal(signum, lambda n, frame: caught.append(n))
         yield
     finally:
         for signum, handler in previous.items():
