@@ -11,12 +11,13 @@ import os
 import subprocess
 import sys
 import time
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
 
 from models_demo import scenario
-from packer.model import FloatModel, save_model
+from packer.model import FloatModel, load_model, save_model
 from runtime.forward import Layer
 from runtime.tokenize import Tokenizer, TokenizerSpec
 
@@ -133,10 +134,7 @@ def glove_model_dir(config: BenchConfig) -> Path:
 def glove_words_model_dir(config: BenchConfig, rows: int) -> Path:
     """The synthetic `rows`-row model with GloVe 6B's `rows` most frequent tokens as its vocabulary (real
     words, for the vocabulary's share of a bundle); built once."""
-    from dataclasses import replace
-
-    from models_demo.glove import load_glove
-    from packer.model import load_model
+    from models_demo.glove import load_glove  # the glove extra: only this case needs it
 
     target = config.models_dir / f"synthetic-{rows}-glove-words"
     if not (target / "config.json").exists():

@@ -84,9 +84,9 @@ class _Waiter:
         if wake_fd is not None:
             self.poller.register(wake_fd, select.POLLIN)
 
-    def wait(self, timeout_ms: int | None) -> bool:
-        """Whether input (or its end) is ready within the timeout (None: wait for it); runs signal handlers."""
-        deadline = None if timeout_ms is None else time.monotonic() + timeout_ms / 1000.0
+    def wait(self, deadline: float | None) -> bool:
+        """Whether input (or its end) is ready before `deadline` (a time.monotonic() value; None: wait for
+        it); runs signal handlers."""
         while True:
             left = None if deadline is None else max(0, int((deadline - time.monotonic()) * 1000.0 + 0.999))
             ready = {fd for fd, _ in self.poller.poll(left)}
@@ -129,8 +129,7 @@ def read_batches(source: BinaryIO, size: int, max_wait: float, limit: int,
     deadline = 0.0  # when the oldest pending line has waited max_wait
     while True:
         if pending and waiter is not None:
-            wait_ms = max(0, int((deadline - time.monotonic()) * 1000.0 + 0.999))
-            if not waiter.wait(wait_ms):  # the input paused: answer what is there
+            if not waiter.wait(deadline):  # the input paused: answer what is there
                 yield pending
                 pending = []
                 continue

@@ -26,7 +26,7 @@ sys.path.insert(0, str(HERE.parents[1]))  # the repository root, when run as a s
 
 import onnx  # noqa: E402
 
-from packer.bundle import encode_bundle  # noqa: E402
+from packer.bundle import encode_bundle, encode_vocab  # noqa: E402
 from packer.model import FloatModel, save_model  # noqa: E402
 from packer.pack import PackOptions, pack_model  # noqa: E402
 from runtime.forward import Layer  # noqa: E402
@@ -123,15 +123,16 @@ def edit_value(path: tuple, value):
     return lambda body: set_path(body, path, value)
 
 
-def edit_vocab(edit):
-    """Apply `edit(text)` to the inflated vocabulary and deflate it again (a valid zlib stream)."""
-    def apply(body: dict) -> None:
-        body["vocab"] = zlib.compress(edit(zlib.decompress(body["vocab"]).decode("utf-8")).encode("utf-8"), 9)
-    return apply
-
-
 def _vocab_bytes(body: dict) -> bytes:
+    """The payload's vocabulary, inflated: the tokens joined by newlines, as UTF-8."""
     return zlib.decompress(body["vocab"])
+
+
+def edit_vocab(edit):
+    """Apply `edit(text)` to the inflated vocabulary and deflate it again as the packer does."""
+    def apply(body: dict) -> None:
+        body["vocab"] = encode_vocab(edit(_vocab_bytes(body).decode("utf-8")).split("\n"))
+    return apply
 
 
 def payload_offset(data: bytes) -> int:
@@ -411,7 +412,7 @@ def _deep_list(depth: int) -> list:
 def _zero_rows(body: dict) -> None:
     tensor(body, "table").update(shape=[0, 6], data=b"")
     tensor(body, "scales").update(shape=[0], data=b"")
-    body["vocab"] = zlib.compress(b"", 9)
+    body["vocab"] = encode_vocab([])
     body["manifest"]["probe"] = {"ids": [[]], "probs": [body["manifest"]["probe"]["probs"][0]]}
 
 
