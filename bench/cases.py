@@ -12,12 +12,12 @@ from pathlib import Path
 
 import numpy as np
 
-from packer.inspect import size_breakdown
-from packer.model import load_model, model_bytes
-from packer.pack import PackOptions, pack_model
-from runtime.bundle import read_bundle
-from runtime.errors import DanpackError
-from runtime.tokenize import Tokenizer
+from danpack.pack.inspect import size_breakdown
+from danpack.model import load_model, model_bytes
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime.bundle import read_bundle
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.tokenize import Tokenizer
 
 from . import contenders as ct
 from . import probes

@@ -18,7 +18,7 @@ class BenchConfig:
     work: Path = DEFAULT_WORK  # where generated data, models and bundles go
     quick: bool = False  # smoke run: small sizes, few repetitions (figures are not meaningful)
     cases: tuple[str, ...] = CASES  # which cases to run
-    seed: int = 2024  # scenario seed of the demo data (models_demo.scenario.DEFAULT_SEED)
+    seed: int = 2024  # scenario seed of the demo data (danpack.models_demo.scenario.DEFAULT_SEED)
     test_texts: int = 2000  # labelled demo test comments for fidelity (the whole test split)
     stream_texts: int = 50_000  # deployment stream: the pack corpus (the scenario's default size)
     run_lines: int = 100_000  # lines of the danpack-run input file (fresh comments, another seed)

@@ -13,11 +13,11 @@ from pathlib import Path
 
 import numpy as np
 
-import runtime
-from packer.model import FloatModel
-from runtime.bundle import decode_bundle
-from runtime.classifier import Classifier
-from runtime.forward import forward_logits, softmax
+from danpack import runtime
+from danpack.model import FloatModel
+from danpack.runtime.bundle import decode_bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.forward import forward_logits, softmax
 
 from . import torch_baselines as tb
 
@@ -57,7 +57,7 @@ def ort_session(model_bytes: bytes):
     """An onnxruntime session with the runtime's device settings (one intra-op thread, no spinning)."""
     import onnxruntime as ort
 
-    from runtime.backends import session_options
+    from danpack.runtime.backends import session_options
 
     return ort.InferenceSession(model_bytes, session_options(1), providers=["CPUExecutionProvider"])
 

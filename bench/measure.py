@@ -10,7 +10,7 @@ from pathlib import Path
 
 import numpy as np
 
-from packer.model import model_bytes
+from danpack.model import model_bytes
 
 from . import contenders as ct
 from .config import BenchConfig
@@ -209,7 +209,7 @@ def model_only(cs: dict[str, ct.Contender], texts: Sequence[str], config: BenchC
 
 def profile(bundle_path: Path, texts: Sequence[str], config: BenchConfig, report: CaseReport) -> None:
     """Where predict's time goes for the packed bundle, at batch 1 and 256."""
-    import runtime
+    from danpack import runtime
 
     clf = runtime.load(bundle_path, backend="onnxruntime")
     nclf = runtime.load(bundle_path, backend="numpy")

@@ -19,9 +19,9 @@ from pathlib import Path
 
 import numpy as np
 
-from runtime.bundle import Bundle
-from runtime.classifier import Classifier
-from runtime.forward import run_layers, softmax
+from danpack.runtime.bundle import Bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.forward import run_layers, softmax
 
 from .stats import summarize
 from .timing import interleave
@@ -70,7 +70,7 @@ def _session(bundle: Bundle, profile_prefix: str | None):
     """A session over the bundle like runtime.backends.OrtBackend builds it, optionally with the profiler on."""
     import onnxruntime as ort
 
-    from runtime.backends import session_options
+    from danpack.runtime.backends import session_options
 
     options = session_options(1)
     if profile_prefix is not None:
@@ -136,7 +136,7 @@ def numpy_steps(bundle: Bundle, ids: np.ndarray, counts: np.ndarray, reps: int) 
     """Seconds per call of each step of runtime.forward on the bundle's int8 tensors (same arithmetic)."""
     t = bundle.tensors
     table, scales = t["table"], t.get("scales")
-    from runtime.backends import NumpyBackend
+    from danpack.runtime.backends import NumpyBackend
 
     layers = NumpyBackend(bundle).layers
     width = ids.shape[1]

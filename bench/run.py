@@ -49,7 +49,7 @@ def main(argv: list[str] | None = None) -> int:
     corpus = workdata.stream_corpus(config)
     lines = workdata.run_lines_file(config)
     intro_corpus = (f"Packed with the demo deployment stream ({config.stream_texts:,} comments, "
-                    "`models_demo.scenario.generate_stream`) as corpus, default pack options (coverage 0.995).")
+                    "`danpack.models_demo.scenario.generate_stream`) as corpus, default pack options (coverage 0.995).")
 
     if "demo" in chosen or "long" in chosen:
         for task in ("sentiment", "topic"):
@@ -62,7 +62,7 @@ def main(argv: list[str] | None = None) -> int:
                 with_profile=True, intro=intro_corpus)
             reports[report.key] = report
             if task == "sentiment" and "long" in chosen:
-                from packer.model import load_model
+                from danpack.model import load_model
 
                 spec = load_model(model_dir).tokenizer
                 reports["long"] = cases.long_case(config, contenders, spec, [r["text"] for r in records])

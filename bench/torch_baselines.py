@@ -15,8 +15,8 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from packer.model import FloatModel
-from runtime.encode import Encoder
+from danpack.model import FloatModel
+from danpack.runtime.encode import Encoder
 
 OPSET = 17  # the same opset as danpack's own graph
 

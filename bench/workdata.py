@@ -1,7 +1,7 @@
 """The bench's inputs, generated into the work dir and reused across runs: demo data, models, long comments.
 
-Nothing here is committed: the demo comments come from `models_demo.scenario`, the GloVe model
-from `models_demo.build`, the synthetic model from a seeded numpy generator. A cached file is
+Nothing here is committed: the demo comments come from `danpack.models_demo.scenario`, the GloVe model
+from `danpack.models_demo.build`, the synthetic model from a seeded numpy generator. A cached file is
 written under a temporary name and renamed, so an interrupted run never leaves half a file.
 """
 
@@ -16,10 +16,10 @@ from pathlib import Path
 
 import numpy as np
 
-from models_demo import scenario
-from packer.model import FloatModel, load_model, save_model
-from runtime.forward import Layer
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.models_demo import scenario
+from danpack.model import FloatModel, load_model, save_model
+from danpack.runtime.forward import Layer
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 from .config import BenchConfig
 
@@ -111,7 +111,7 @@ def demo_model_dir(config: BenchConfig, task: str) -> tuple[Path, str]:
         return shipped, "models_demo/shipped"
     target = config.models_dir / "demo-random" / task
     if not (target / "config.json").exists():
-        from models_demo.build import build_model, write_model
+        from danpack.models_demo.build import build_model, write_model
 
         say(f"models_demo/shipped/{task} is missing: training the same demo model into {target}")
         write_model(build_model(task, "random", config.seed), target)
@@ -119,13 +119,13 @@ def demo_model_dir(config: BenchConfig, task: str) -> tuple[Path, str]:
 
 
 def glove_model_dir(config: BenchConfig) -> Path:
-    """The GloVe 6B 50d fine-tuned demo sentiment model (400,243 rows), built once by models_demo.build."""
+    """The GloVe 6B 50d fine-tuned demo sentiment model (400,243 rows), built once by danpack.models_demo.build."""
     parent = config.models_dir / "glove-finetune"
     target = parent / "sentiment"
     if not (target / "config.json").exists():
-        say(f"building the GloVe fine-tuned sentiment model into {target} (python -m models_demo.build)")
+        say(f"building the GloVe fine-tuned sentiment model into {target} (python -m danpack.models_demo.build)")
         started = time.perf_counter()
-        subprocess.run([sys.executable, "-m", "models_demo.build", "--regime", "finetune", "--task", "sentiment",
+        subprocess.run([sys.executable, "-m", "danpack.models_demo.build", "--regime", "finetune", "--task", "sentiment",
                         "--out", str(parent), "--data-seed", str(config.seed)], check=True, stdout=subprocess.DEVNULL)
         say(f"  built in {time.perf_counter() - started:.1f} s")
     return target
@@ -134,7 +134,7 @@ def glove_model_dir(config: BenchConfig) -> Path:
 def glove_words_model_dir(config: BenchConfig, rows: int) -> Path:
     """The synthetic `rows`-row model with GloVe 6B's `rows` most frequent tokens as its vocabulary (real
     words, for the vocabulary's share of a bundle); built once."""
-    from models_demo.glove import load_glove  # the glove extra: only this case needs it
+    from danpack.models_demo.glove import load_glove  # the glove extra: only this case needs it
 
     target = config.models_dir / f"synthetic-{rows}-glove-words"
     if not (target / "config.json").exists():

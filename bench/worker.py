@@ -39,7 +39,7 @@ def cold(request: dict) -> dict:
     if what == "packed":
         import numpy  # noqa: F401  (imported before the clock starts, as on a device after boot)
 
-        import runtime
+        from danpack import runtime
 
         if request["backend"] == "onnxruntime":
             import onnxruntime  # noqa: F401  (the backend imports it on load; the numpy backend never does)
@@ -51,7 +51,7 @@ def cold(request: dict) -> dict:
         seconds = time.perf_counter() - start
         predict = clf.predict_proba
     elif what == "float-numpy":
-        from packer.model import load_model
+        from danpack.model import load_model
 
         base = status_bytes("VmHWM")
         start = time.perf_counter()
@@ -66,7 +66,7 @@ def cold(request: dict) -> dict:
         import torch
 
         from bench.torch_baselines import build_bag_module, flat_inputs
-        from packer.model import load_model
+        from danpack.model import load_model
 
         torch.set_num_threads(1)
         base = status_bytes("VmHWM")
@@ -93,7 +93,7 @@ def cold(request: dict) -> dict:
 
 def pack(request: dict) -> dict:
     """pack_model on a model directory; time and peak memory of the call."""
-    from packer.pack import PackOptions, pack_model
+    from danpack.pack.build import PackOptions, pack_model
 
     options = PackOptions(**{k: tuple(v) if isinstance(v, list) else v for k, v in request["options"].items()})
     base = status_bytes("VmHWM")
@@ -107,11 +107,11 @@ def pack(request: dict) -> dict:
 
 
 def stream(request: dict) -> dict:
-    """danpack-run's own entry point (runtime.stream.main, what the console script calls), output to /dev/null."""
+    """danpack-run's own entry point (danpack.runtime.stream.main, what the console script calls), output to /dev/null."""
     import io
     import os
 
-    from runtime.stream import main as run_main
+    from danpack.runtime.stream import main as run_main
 
     argv = [request["bundle"], request["lines"], "--verbose", "--backend", request["backend"], *request.get("extra", [])]
     saved, devnull = os.dup(1), os.open(os.devnull, os.O_WRONLY)

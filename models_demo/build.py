@@ -1,10 +1,10 @@
 """Build the demo models from their seeds: the shipped ones, byte for byte, or GloVe ones on demand.
 
-    python -m models_demo.build                      # rewrite models_demo/shipped/{sentiment,topic}
-    python -m models_demo.build --check              # rebuild in a temp dir, compare bytes with shipped/
-    python -m models_demo.build --regime finetune --task sentiment --out DIR   # DIR/sentiment (~80 MB)
+    python -m danpack.models_demo.build                      # rewrite models_demo/shipped/{sentiment,topic}
+    python -m danpack.models_demo.build --check              # rebuild in a temp dir, compare bytes with shipped/
+    python -m danpack.models_demo.build --regime finetune --task sentiment --out DIR   # DIR/sentiment (~80 MB)
 
-The data come from `models_demo.scenario` (seed DEFAULT_SEED, default sizes); the training
+The data come from `danpack.models_demo.scenario` (seed DEFAULT_SEED, default sizes); the training
 run from the `TrainConfig` below. Rebuilding with the same BLAS kernel gives the same
 bytes; OpenBLAS picks its kernel per CPU (or from OPENBLAS_CORETYPE) and another kernel
 sums in another order, so `--check` also accepts weights equal within WEIGHT_TOLERANCE.
@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 import typer
 
-from packer.model import FloatModel, model_bytes, save_model
+from danpack.model import FloatModel, model_bytes, save_model
 
 from . import scenario
 from .glove import Pretrained
@@ -64,12 +64,12 @@ def build_model(
     metadata = {
         "task": task,
         "scenario": "drivers' comments on public EV chargers (invented demo data)",
-        "data": {"generator": "models_demo.scenario", "generator_version": scenario.GENERATOR_VERSION,
+        "data": {"generator": "danpack.models_demo.scenario", "generator_version": scenario.GENERATOR_VERSION,
                  "seed": data_seed, "sizes": {"train": sizes.train, "dev": sizes.dev, "test": sizes.test}},
         **model.metadata,
         "test_comments": len(test),
         "test_accuracy": round(evaluate(model, test), 6),
-        "rebuild": f"python -m models_demo.build --task {task} --regime {config.regime}",
+        "rebuild": f"python -m danpack.models_demo.build --task {task} --regime {config.regime}",
     }
     return replace(model, metadata=metadata)
 

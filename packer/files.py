@@ -7,7 +7,7 @@ import os
 import tempfile
 from pathlib import Path
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
 
 class OutputError(DanpackError):

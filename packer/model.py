@@ -23,12 +23,12 @@ from pathlib import Path
 
 import numpy as np
 
-from runtime.encode import Encoder
-from runtime.errors import ModelError, TokenizerError
-from runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.runtime.encode import Encoder
+from danpack.runtime.errors import ModelError, TokenizerError
+from danpack.runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
-from .files import current_umask, feed_file
+from danpack.files import current_umask, feed_file
 
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1

@@ -12,7 +12,7 @@ import os
 from collections.abc import Iterator
 from pathlib import Path
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
 
 class TextFileError(DanpackError):

@@ -19,9 +19,9 @@ from pathlib import Path
 
 import numpy as np
 
-from packer.model import FloatModel, save_model
-from runtime.forward import Layer
-from runtime.tokenize import TokenizerSpec
+from danpack.model import FloatModel, save_model
+from danpack.runtime.forward import Layer
+from danpack.runtime.tokenize import TokenizerSpec
 
 LABELS = ("negative", "neutral", "positive")  # the EV-charging comment classes used across tests
 UNK = "<unk>"  # unknown-token spelling of models built with oov="unk" (no text can produce it)

@@ -18,14 +18,14 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import runtime.certify as certify
-from packer.bound import (BoundError, CertifiedReport, certify_texts, check_certified, check_rows, describe_bound,
+import danpack.runtime.certify as certify
+from danpack.check.bound import (BoundError, CertifiedReport, certify_texts, check_certified, check_rows, describe_bound,
                           worst_case_bound)
-from packer.model import FloatModel, load_model, save_model
-from packer.pack import PackOptions, pack_model
-from runtime.bundle import Bundle, decode_bundle
-from runtime.classifier import Classifier
-from runtime.forward import Layer
+from danpack.model import FloatModel, load_model, save_model
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime.bundle import Bundle, decode_bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.forward import Layer
 
 # --- helpers -------------------------------------------------------------------------------------
 
@@ -159,7 +159,7 @@ SHIPPED = Path(__file__).resolve().parents[1] / "models_demo" / "shipped"
 def test_bound_is_not_vacuous_on_the_demo_models(tmp_path, task):
     """Most test comments of the shipped demo models are certified (measured 0.75-0.83 of all, 0.94-0.99 of
     those whose tokens are all kept); a certified comment never changes class."""
-    from models_demo import scenario
+    from danpack.models_demo import scenario
 
     model = load_model(SHIPPED / task)
     stream = scenario.write_jsonl(tmp_path / "stream.jsonl", scenario.generate_stream(5000))

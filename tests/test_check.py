@@ -22,18 +22,18 @@ import scipy.stats
 from typer.testing import CliRunner
 
 from helpers import make_model, zipf_texts
-from packer.bundle import encode_bundle, encode_payload, encode_vocab
-from packer.check import (CheckError, CheckOptions, MeanShift, align_labels, bootstrap_drop_interval,
+from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+from danpack.check.compare import (CheckError, CheckOptions, MeanShift, align_labels, bootstrap_drop_interval,
                           clopper_pearson, exact_drop_interval, kl_divergence, mcnemar_exact_p, per_class_recall,
                           read_eval_set, run_check)
-from packer.cli import app
-from packer.latency import LatencyOptions, measure_pair, pick_texts
-from packer.model import load_model
-from packer.pack import PackOptions, pack_model
-from packer.verdict import (THRESHOLDS, VerdictError, Verdict, evaluate, parse_limit, parse_tolerances,
+from danpack.cli import app
+from danpack.check.latency import LatencyOptions, measure_pair, pick_texts
+from danpack.model import load_model
+from danpack.pack.build import PackOptions, pack_model
+from danpack.check.verdict import (THRESHOLDS, VerdictError, Verdict, evaluate, parse_limit, parse_tolerances,
                             resolve_limits)
-from runtime import load, read_bundle
-from runtime.forward import Layer, encode_batch, forward_logits, softmax
+from danpack.runtime import load, read_bundle
+from danpack.runtime.forward import Layer, encode_batch, forward_logits, softmax
 
 RUNNER = CliRunner()
 NO_LATENCY = ["--no-latency", "--quiet"]
@@ -406,7 +406,7 @@ def test_explicit_limit_on_a_missing_figure_is_an_error():
 
 
 def test_threshold_table_names_figures_that_exist():
-    from packer.check import FIGURES
+    from danpack.check.compare import FIGURES
 
     assert all(t.key in FIGURES and t.op in ("<=", ">=") for t in THRESHOLDS)
 

@@ -6,9 +6,9 @@ import json
 
 from typer.testing import CliRunner
 
-import packer.check as check_module
-from packer.cli import app
-from packer.pack import PackOptions, pack_model
+import danpack.check.compare as check_module
+from danpack.cli import app
+from danpack.pack.build import PackOptions, pack_model
 from tests.helpers import LABELS, make_model, token, zipf_texts
 
 RUNNER = CliRunner()

@@ -21,8 +21,8 @@ import pytest
 from helpers import LABELS, make_corpus, make_model, random_texts, token, zipf_texts
 from typer.testing import CliRunner
 
-import runtime
-from packer.cli import app
+from danpack import runtime
+from danpack.cli import app
 
 RUNNER = CliRunner()
 
@@ -357,6 +357,6 @@ def test_a_full_standard_output_is_an_error_not_a_traceback(inputs, tmp_path):
     bundle = tmp_path / "m.danpack"
     assert invoke("pack", model_dir, "-o", bundle, "-c", corpus, "-q").exit_code == 0
     with open("/dev/full", "wb") as full:  # Linux: every write fails with ENOSPC
-        proc = subprocess.run([sys.executable, "-c", "from packer.cli import main; main()", "inspect", str(bundle)],
+        proc = subprocess.run([sys.executable, "-c", "from danpack.cli import main; main()", "inspect", str(bundle)],
                               stdout=full, stderr=subprocess.PIPE, text=True, timeout=60)
     assert proc.returncode == 2 and "cannot write the output" in proc.stderr and "Traceback" not in proc.stderr

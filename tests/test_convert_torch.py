@@ -12,11 +12,10 @@ import pytest
 torch = pytest.importorskip("torch")
 nn = torch.nn
 
-from packer.cli.app import app  # noqa: E402
-from packer.cli import convert_torch as _cli  # noqa: E402,F401  (registers the command)
-from packer.model import load_model  # noqa: E402
-from packer.torch_convert import CheckpointError, ConvertOptions, convert_checkpoint, read_labels  # noqa: E402
-from runtime.tokenize import Tokenizer  # noqa: E402
+from danpack.cli import app  # noqa: E402
+from danpack.model import load_model  # noqa: E402
+from danpack.convert.from_torch import CheckpointError, ConvertOptions, convert_checkpoint, read_labels  # noqa: E402
+from danpack.runtime.tokenize import Tokenizer  # noqa: E402
 
 LABELS = ("broken", "slow", "fine")
 SCENARIO = ["charger", "cable", "screen", "queue", "card", "plug", "fast", "slow", "broken", "paid", "bay",
@@ -501,7 +500,7 @@ def test_output_directory_is_protected(tmp_path):
 
 
 def test_written_model_is_read_back_and_compared(tmp_path, monkeypatch):
-    import packer.torch_convert as tc
+    import danpack.convert.from_torch as tc
 
     real_save = tc.save_model
 

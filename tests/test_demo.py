@@ -6,7 +6,7 @@ import json
 
 from typer.testing import CliRunner
 
-from packer.cli import app
+from danpack.cli import app
 
 RUNNER = CliRunner()
 

@@ -18,9 +18,9 @@ import scipy.special
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from runtime.encode import Encoder
-from runtime.forward import Layer, encode_batch, forward_logits, mean_embedding, run_layers, softmax
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.runtime.encode import Encoder
+from danpack.runtime.forward import Layer, encode_batch, forward_logits, mean_embedding, run_layers, softmax
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 TOL = dict(rtol=1e-5, atol=1e-5)
 

@@ -19,13 +19,13 @@ from helpers import make_model, random_texts, token
 from onnx import TensorProto
 from onnx.reference import ReferenceEvaluator
 
-from packer.inspect import export_onnx
-from packer.pack import PackOptions, pack_model
-from packer.quantize import dequantize_rows
-from runtime.backends import OrtBackend
-from runtime.bundle import Bundle, decode_bundle
-from runtime.classifier import Classifier
-from runtime.forward import Layer, encode_batch, forward_logits, softmax
+from danpack.pack.inspect import export_onnx
+from danpack.pack.build import PackOptions, pack_model
+from danpack.pack.quantize import dequantize_rows
+from danpack.runtime.backends import OrtBackend
+from danpack.runtime.bundle import Bundle, decode_bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.forward import Layer, encode_batch, forward_logits, softmax
 
 DIM = 16
 HIDDEN = {"0": (), "1": (8,), "3": (12, 6, 5)}  # first hidden layer narrower than DIM: folding is possible
@@ -204,7 +204,7 @@ def test_encode_batch_pads_with_zero_not_minus_one():
 
 def test_the_reader_allows_exactly_the_operators_the_packer_writes(tmp_path_factory):
     # runtime.bundle.GRAPH_OPS must list every operator of every configuration, and nothing more.
-    from runtime.bundle import GRAPH_OPS
+    from danpack.runtime.bundle import GRAPH_OPS
 
     written = set()
     for param in CONFIGS:

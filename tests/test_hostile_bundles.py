@@ -31,16 +31,16 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-import runtime
-import runtime.bundle as rb
-from runtime.onnx_wire import read_graph_names
-from runtime import BundleError, decode_bundle
-from runtime.classifier import Classifier
+from danpack import runtime
+import danpack.runtime.bundle as rb
+from danpack.runtime.onnx_wire import read_graph_names
+from danpack.runtime import BundleError, decode_bundle
+from danpack.runtime.classifier import Classifier
 
-from packer.bundle import encode_bundle
-from packer.model import FloatModel, save_model
-from packer.pack import PackOptions, pack_model
-from runtime.forward import Layer
+from danpack.pack.bundle import encode_bundle
+from danpack.model import FloatModel, save_model
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime.forward import Layer
 
 CORPUS_DIR = Path(__file__).parent / "adversarial"
 _spec = importlib.util.spec_from_file_location("make_corpus", CORPUS_DIR / "make_corpus.py")
@@ -293,7 +293,7 @@ def test_inspect_shows_every_accepted_bundle(bases, tmp_path):
     """`danpack inspect` (text and JSON) works on every manifest edit the reader accepts: what it displays is validated."""
     from typer.testing import CliRunner
 
-    from packer.cli import app
+    from danpack.cli import app
 
     body = msgpack.unpackb(msgpack.unpackb(bases[0])["payload"])
     runner, shown = CliRunner(), 0
@@ -351,8 +351,8 @@ def test_non_regular_files_are_refused(tmp_path):
 
 MEMORY_SCRIPT = textwrap.dedent("""
     import json, resource, sys
-    import runtime
-    from runtime import BundleError
+    from danpack import runtime
+    from danpack.runtime import BundleError
 
     def peak_kib():
         # ru_maxrss also counts the forked parent's peak (kept across exec), so a child of a large pytest
@@ -631,7 +631,7 @@ def test_checksum_is_verified_before_the_payload_is_used(bases, monkeypatch, tmp
 def test_bundle_sha256_is_the_payload_digest_and_inspect_shows_it(bases, tmp_path):
     from typer.testing import CliRunner
 
-    from packer.cli import app
+    from danpack.cli import app
 
     for data in bases:
         outer = msgpack.unpackb(data)

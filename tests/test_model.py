@@ -18,10 +18,10 @@ import pytest
 from safetensors.numpy import load_file as st_load
 from safetensors.numpy import save_file as st_save
 
-from packer.model import FloatModel, load_model, model_config, save_model
-from runtime.errors import DanpackError, ModelError
-from runtime.forward import Layer
-from runtime.tokenize import TokenizerSpec
+from danpack.model import FloatModel, load_model, model_config, save_model
+from danpack.runtime.errors import DanpackError, ModelError
+from danpack.runtime.forward import Layer
+from danpack.runtime.tokenize import TokenizerSpec
 
 VOCAB = ("fast", "slow", "broken", "great", "charger", "<unk>")
 LABELS = ("negative", "neutral", "positive")

@@ -19,16 +19,16 @@ import msgpack
 import numpy as np
 import pytest
 
-from packer.files import OutputError
+from danpack.files import OutputError
 from helpers import make_corpus, make_float_model, make_model, random_texts, token, zipf_texts
 
-import packer.files as bundle_module
-from packer.fold import should_fold
-from packer.model import load_model, save_model
-from packer.pack import PackError, PackOptions, pack_model
-from runtime.bundle import decode_bundle, read_bundle
-from runtime.classifier import Classifier
-from runtime.forward import Layer
+import danpack.files as bundle_module
+from danpack.pack.fold import should_fold
+from danpack.model import load_model, save_model
+from danpack.pack.build import PackError, PackOptions, pack_model
+from danpack.runtime.bundle import decode_bundle, read_bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.forward import Layer
 
 
 def _classify(data: bytes, texts, backend="onnxruntime") -> np.ndarray:

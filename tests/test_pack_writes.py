@@ -25,16 +25,16 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-import runtime
-from runtime import decode_bundle
-from runtime.forward import Layer
-from runtime.tokenize import TokenizerSpec
+from danpack import runtime
+from danpack.runtime import decode_bundle
+from danpack.runtime.forward import Layer
+from danpack.runtime.tokenize import TokenizerSpec
 
-from packer.model import FloatModel, save_model
-from packer.pack import PackOptions, pack_model
+from danpack.model import FloatModel, save_model
+from danpack.pack.build import PackOptions, pack_model
 
 ROOT = Path(__file__).resolve().parents[1]
-DANPACK = [sys.executable, "-c", "from packer.cli import main; main()"]  # the `danpack` console script's entry
+DANPACK = [sys.executable, "-c", "from danpack.cli import main; main()"]  # the `danpack` console script's entry
 
 
 def _model(vocab_size: int, dim: int, hidden: int, seed: int, labels=("payment", "connector_cable", "charging_speed")) -> FloatModel:
@@ -121,7 +121,7 @@ def test_sigkill_at_each_pack_stage_keeps_the_old_bundle(models, old_bundle, tmp
 
 KILL_POINT = textwrap.dedent("""
     import os, sys, time
-    from packer.pack import pack_model
+    from danpack.pack.build import pack_model
     model, dest, point = sys.argv[1], sys.argv[2], sys.argv[3]
     real_fdopen, real_replace = os.fdopen, os.replace
 

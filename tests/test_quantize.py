@@ -19,8 +19,8 @@ from hypothesis.extra import numpy as hnp
 from onnx import TensorProto, helper
 from onnx.reference import ReferenceEvaluator
 
-import packer.quantize as quantize_module
-from packer.quantize import QMAX, dequantize_rows, quantize_rows
+import danpack.pack.quantize as quantize_module
+from danpack.pack.quantize import QMAX, dequantize_rows, quantize_rows
 
 U32 = 2.0 ** -24  # float32 unit roundoff (half of machine epsilon 2**-23), IEEE 754 binary32
 TINY32 = float(np.finfo(np.float32).tiny)  # smallest normal float32

@@ -13,11 +13,11 @@ import xml.etree.ElementTree as ET
 import numpy as np
 import pytest
 
-from packer.check import CheckOptions, run_check
-from packer.reports import (SCHEMA, VERSION, ReportError, build_report, read_report, render_junit, render_markdown,
+from danpack.check.compare import CheckOptions, run_check
+from danpack.check.reports import (SCHEMA, VERSION, ReportError, build_report, read_report, render_junit, render_markdown,
                             render_table, write_report)
-from packer.verdict import Verdict, compare_baseline, evaluate, parse_tolerances, resolve_limits
-from runtime import read_bundle
+from danpack.check.verdict import Verdict, compare_baseline, evaluate, parse_tolerances, resolve_limits
+from danpack.runtime import read_bundle
 from test_check import NO_LATENCY, invoke, make_case, reencode
 
 

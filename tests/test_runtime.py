@@ -20,11 +20,11 @@ import numpy as np
 import pytest
 from helpers import LABELS, make_corpus, make_model, random_texts, token, zipf_texts
 
-import runtime
-from packer.bundle import encode_bundle, encode_payload, encode_vocab
-from packer.pack import PackOptions, pack_model
-from runtime import BundleError, DanpackError
-from runtime.bundle import read_bundle
+from danpack import runtime
+from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime import BundleError, DanpackError
+from danpack.runtime.bundle import read_bundle
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -188,18 +188,23 @@ def test_concurrent_predict_equals_serial(bundle_path, texts, backend):
 
 ISOLATED = textwrap.dedent('''
     import sys
-    BLOCKED = {"onnx", "typer", "safetensors", "packer"}
+    BLOCKED = {"onnx", "typer", "safetensors", "torch"}
+
+    def blocked(name):
+        """The packer's libraries, and every part of danpack but the runtime."""
+        top, _, rest = name.partition(".")
+        return top in BLOCKED or (top == "danpack" and rest != "" and rest.partition(".")[0] != "runtime")
 
     class Refuse:
-        """Any import of a blocked top-level package (or its submodules) fails."""
+        """Any import of a blocked package (or its submodules) fails."""
         def find_spec(self, name, path=None, target=None):
-            if name.partition(".")[0] in BLOCKED:
+            if blocked(name):
                 raise ImportError(f"{name} is blocked in this test")
             return None
 
-    already = sorted(m for m in sys.modules if m.partition(".")[0] in BLOCKED)
+    already = sorted(m for m in sys.modules if blocked(m))
     sys.meta_path.insert(0, Refuse())
-    for name in BLOCKED:  # the finder really refuses them
+    for name in [*BLOCKED, "danpack.pack", "danpack.model"]:  # the finder really refuses them
         try:
             __import__(name)
         except ImportError:
@@ -208,14 +213,14 @@ ISOLATED = textwrap.dedent('''
             raise SystemExit(f"{name} imported despite the block")
 
     import json
-    import runtime
+    from danpack import runtime
 
     texts = json.loads(sys.argv[2])
     out = {"already": already}
     for backend in ("onnxruntime", "numpy"):
         clf = runtime.load(sys.argv[1], backend=backend)
         out[backend] = {"labels": clf.predict(texts), "probs": clf.predict_proba(texts).tolist()}
-    out["loaded"] = sorted(m for m in sys.modules if m.partition(".")[0] in BLOCKED)
+    out["loaded"] = sorted(m for m in sys.modules if blocked(m))
     print(json.dumps(out))
 ''')
 

@@ -15,8 +15,8 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from models_demo import scenario
-from models_demo.scenario import (
+from danpack.models_demo import scenario
+from danpack.models_demo.scenario import (
     SMALL_SIZES,
     TASKS,
     ScenarioError,
@@ -25,8 +25,8 @@ from models_demo.scenario import (
     read_jsonl,
     write_scenario,
 )
-from runtime.errors import DanpackError
-from runtime.tokenize import Tokenizer
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.tokenize import Tokenizer
 
 ROOT = Path(__file__).resolve().parents[1]
 TOKENIZER = Tokenizer()
@@ -59,7 +59,7 @@ def test_splits_and_tasks_draw_different_comments():
 
 def test_output_does_not_depend_on_python_string_hashing():
     # Python salts str hashes per process (PYTHONHASHSEED); a generator iterating a set would differ.
-    code = ("import hashlib, json; from models_demo.scenario import generate_split, generate_stream; "
+    code = ("import hashlib, json; from danpack.models_demo.scenario import generate_split, generate_stream; "
             "print(hashlib.sha256(json.dumps(generate_split('topic', 'train', 200, 5) + generate_stream(200, 5))"
             ".encode()).hexdigest())")
     digests = set()
@@ -132,7 +132,7 @@ def test_typos_and_rare_words_are_unknown_to_glove(stream):
     # The GloVe 6B vocabulary (400k words from Wikipedia and news) as an outside dictionary:
     # typos ("contactkess") and invented place names fall outside it.
     pytest.importorskip("pyarrow")
-    from models_demo.glove import load_glove
+    from danpack.models_demo.glove import load_glove
 
     glove = set(load_glove().tokens)
     words = Counter(t for r in stream for t in TOKENIZER.tokenize(r["text"]) if t.isalpha())

@@ -25,12 +25,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import runtime
-from packer.pack import PackOptions, pack_model
-from runtime.errors import DanpackError
-from runtime.stream import (StreamConfig, StreamError, StreamInterrupted, StreamStats, Terminated, classify_stream,
+from danpack import runtime
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.stream import (StreamConfig, StreamError, StreamInterrupted, StreamStats, Terminated, classify_stream,
                             main)
-from runtime.stream_lines import OVERLONG, LineSplitter, read_batches
+from danpack.runtime.stream_lines import OVERLONG, LineSplitter, read_batches
 from tests.helpers import LABELS, make_model, random_texts, token
 
 REPO = Path(__file__).resolve().parents[1]
@@ -109,10 +109,10 @@ def _reset_stop_signals() -> None:
 
 
 def child(bundle: Path, *args: str, **popen) -> subprocess.Popen:
-    """`danpack-run BUNDLE ARGS` as a subprocess (python -m runtime.stream), stop signals at their defaults."""
+    """`danpack-run BUNDLE ARGS` as a subprocess (python -m danpack.runtime.stream), stop signals at their defaults."""
     env = dict(os.environ, PYTHONPATH=str(REPO))
     return subprocess.Popen(
-        [sys.executable, "-m", "runtime.stream", str(bundle), *args], env=env, cwd=popen.pop("cwd"),
+        [sys.executable, "-m", "danpack.runtime.stream", str(bundle), *args], env=env, cwd=popen.pop("cwd"),
         preexec_fn=_reset_stop_signals, **popen,
     )
 
@@ -551,7 +551,7 @@ def test_usage_errors_exit_2(capsys, bundle, argv):
 
 
 def test_help_and_version(capsys):
-    from runtime.stream import build_parser
+    from danpack.runtime.stream import build_parser
 
     parser = build_parser()
     for action in parser._actions:  # every option and argument carries its own help text
@@ -599,7 +599,7 @@ def test_reader_going_away_is_quiet(bundle, tmp_path):
         proc.kill()
     # and through a real shell pipeline
     shell = subprocess.run(
-        f'"{sys.executable}" -m runtime.stream "{bundle}" "{path}" 2>err.txt | head -n 1',
+        f'"{sys.executable}" -m danpack.runtime.stream "{bundle}" "{path}" 2>err.txt | head -n 1',
         shell=True, cwd=tmp_path, env=dict(os.environ, PYTHONPATH=str(REPO)), capture_output=True,
         timeout=CHILD_TIMEOUT)
     assert len(shell.stdout.splitlines()) == 1 and (tmp_path / "err.txt").read_bytes() == b""
@@ -725,7 +725,7 @@ def test_closed_standard_stream_is_a_usage_error(bundle, tmp_path, closed):
     # `danpack-run B <&-` / `>&-`: Python sees sys.stdin / sys.stdout as None; no traceback, exit 2.
     fd = 0 if closed == "input" else 1
     env = dict(os.environ, PYTHONPATH=str(REPO))
-    proc = subprocess.Popen([sys.executable, "-m", "runtime.stream", str(bundle)], env=env, cwd=tmp_path,
+    proc = subprocess.Popen([sys.executable, "-m", "danpack.runtime.stream", str(bundle)], env=env, cwd=tmp_path,
                             stdin=subprocess.PIPE, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             preexec_fn=lambda: os.close(fd))
     _, err = proc.communicate(timeout=CHILD_TIMEOUT)

@@ -16,7 +16,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from packer.textfile import TextFileError, iter_records
+from danpack.textfile import TextFileError, iter_records
 
 
 def read(tmp_path, name: str, data: bytes, field: str = "text") -> list[dict]:

@@ -17,8 +17,8 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from runtime.errors import DanpackError, TokenizerError
-from runtime.tokenize import ASCII_PRESETS, DEFAULT_PATTERN, PRESETS, Tokenizer, TokenizerSpec
+from danpack.runtime.errors import DanpackError, TokenizerError
+from danpack.runtime.tokenize import ASCII_PRESETS, DEFAULT_PATTERN, PRESETS, Tokenizer, TokenizerSpec
 
 TOK = Tokenizer()
 

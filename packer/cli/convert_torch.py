@@ -7,12 +7,12 @@ from typing import Optional
 
 import typer
 
-from runtime.errors import DanpackError
-from runtime.tokenize import TokenizerSpec
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.tokenize import TokenizerSpec
 
-from ..torch_convert import ConversionReport, ConvertOptions, convert_checkpoint
-from .app import app
-from .common import fail, human_bytes
+from danpack.convert.from_torch import ConversionReport, ConvertOptions, convert_checkpoint
+from danpack.cli.root import app
+from danpack.cli.common import fail, human_bytes
 
 
 def _padding(value: str) -> tuple[int | None, bool]:

@@ -6,12 +6,12 @@ from pathlib import Path
 
 import typer
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
-from ..demo import DemoOptions, describe_demo, run_demo
-from ..progress import Steps
-from .app import app
-from .common import fail
+from danpack.models_demo.demo import DemoOptions, describe_demo, run_demo
+from danpack.progress import Steps
+from danpack.cli.root import app
+from danpack.cli.common import fail
 
 
 @app.command("demo")
@@ -30,7 +30,7 @@ def demo_command(
         fail(f"--out {out} is a file; give a folder for the demo's data, bundle and reports")
     try:
         if glove:  # before minutes of data generation: the vectors must be installed
-            from models_demo.glove import glove_root
+            from danpack.models_demo.glove import glove_root
 
             glove_root()
         result = run_demo(out, DemoOptions(task=task, small=small, glove=glove, latency=not no_latency),

@@ -8,17 +8,17 @@ from typing import Optional
 
 import typer
 
-from runtime import read_bundle
-from runtime.errors import DanpackError
+from danpack.runtime import read_bundle
+from danpack.runtime.errors import DanpackError
 
-from ..bound import describe_bound
-from ..inspect import describe_bundle, export_onnx
-from ..files import check_outputs, write_atomic
-from ..model import model_files
-from ..pack import PackOptions, pack_model
-from ..progress import Steps
-from .app import app
-from .common import fail, human_bytes
+from danpack.check.bound import describe_bound
+from danpack.pack.inspect import describe_bundle, export_onnx
+from danpack.files import check_outputs, write_atomic
+from danpack.model import model_files
+from danpack.pack.build import PackOptions, pack_model
+from danpack.progress import Steps
+from danpack.cli.root import app
+from danpack.cli.common import fail, human_bytes
 
 
 def _read_keep_words(path: Optional[Path]) -> tuple[str, ...]:

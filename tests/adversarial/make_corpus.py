@@ -26,10 +26,10 @@ sys.path.insert(0, str(HERE.parents[1]))  # the repository root, when run as a s
 
 import onnx  # noqa: E402
 
-from packer.bundle import encode_bundle, encode_vocab  # noqa: E402
-from packer.model import FloatModel, save_model  # noqa: E402
-from packer.pack import PackOptions, pack_model  # noqa: E402
-from runtime.forward import Layer  # noqa: E402
+from danpack.pack.bundle import encode_bundle, encode_vocab  # noqa: E402
+from danpack.model import FloatModel, save_model  # noqa: E402
+from danpack.pack.build import PackOptions, pack_model  # noqa: E402
+from danpack.runtime.forward import Layer  # noqa: E402
 
 MAX_FILE = 4096  # each corpus file stays below this many bytes (commit-sized)
 SOURCE = "{source}"  # stands for the file name or path in the recorded messages
@@ -427,8 +427,8 @@ def is_sealed(data: bytes) -> bool:
 
 def expected_errors(data: bytes, path: Path) -> dict[str, str | None]:
     """The message each entry point gives for one file: decode_bundle, then runtime.load on each backend."""
-    import runtime
-    from runtime import BundleError, decode_bundle
+    from danpack import runtime
+    from danpack.runtime import BundleError, decode_bundle
 
     out: dict[str, str | None] = {}
     try:

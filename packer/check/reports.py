@@ -12,12 +12,12 @@ import os
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
-from . import __version__
-from .files import write_atomic
-from .check import CheckResult
-from .verdict import Outcome, Verdict, format_value
+from danpack import __version__
+from danpack.files import write_atomic
+from danpack.check.compare import CheckResult
+from danpack.check.verdict import Outcome, Verdict, format_value
 
 SCHEMA = "danpack-check-report"
 VERSION = 1

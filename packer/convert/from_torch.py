@@ -19,12 +19,12 @@ from pathlib import Path
 
 import numpy as np
 
-from runtime.errors import DanpackError
-from runtime.forward import ACTIVATIONS, Layer
-from runtime.tokenize import Tokenizer, TokenizerSpec
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.forward import ACTIVATIONS, Layer
+from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
-from .files import file_sha256
-from .model import FORMAT_NAME, FloatModel, OOV_POLICIES, load_model, save_model
+from danpack.files import file_sha256
+from danpack.model import FORMAT_NAME, FloatModel, OOV_POLICIES, load_model, save_model
 
 TORCH_PIN = "torch==2.13.0"
 BAG_MODES = ("mean", "sum", "max")

@@ -5,7 +5,7 @@ from __future__ import annotations
 import onnx
 from onnx import TensorProto, numpy_helper
 
-from runtime.bundle import Bundle
+from danpack.runtime.bundle import Bundle
 
 
 def size_breakdown(bundle: Bundle) -> dict[str, int]:
@@ -34,7 +34,7 @@ def describe_bundle(bundle: Bundle) -> dict:
         "manifest": manifest,
     }
     if bundle.manifest["table"]["dtype"] == "int8":
-        from .bound import worst_case_bound
+        from danpack.check.bound import worst_case_bound
 
         info["drift_bound"] = worst_case_bound(bundle)
     return info

@@ -14,14 +14,14 @@ import time
 from dataclasses import dataclass
 from pathlib import Path
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
-from .check import CheckOptions, run_check
-from .latency import LatencyOptions
-from .pack import PackOptions, PackResult, pack_model
-from .progress import Steps
-from .reports import build_report, write_junit, write_markdown, write_report
-from .verdict import Verdict, evaluate, resolve_limits
+from danpack.check.compare import CheckOptions, run_check
+from danpack.check.latency import LatencyOptions
+from danpack.pack.build import PackOptions, PackResult, pack_model
+from danpack.progress import Steps
+from danpack.check.reports import build_report, write_junit, write_markdown, write_report
+from danpack.check.verdict import Verdict, evaluate, resolve_limits
 
 STREAM_SAMPLE = 200  # comments piped through danpack-run
 
@@ -56,22 +56,22 @@ class DemoResult:
 
 def shipped_model(task: str) -> Path:
     """The float model directory shipped for a demo task."""
-    from models_demo.build import SHIPPED_DIR
+    from danpack.models_demo.build import SHIPPED_DIR
 
     return SHIPPED_DIR / task
 
 
 def train_glove_model(task: str, sizes, model_dir: Path) -> Path:
     """Train the fine-tuned GloVe regime (needs the `glove` extra) and save the float model."""
-    from models_demo.build import build_model, write_model
-    from models_demo.glove import load_glove
+    from danpack.models_demo.build import build_model, write_model
+    from danpack.models_demo.glove import load_glove
 
     return write_model(build_model(task, "finetune", sizes=sizes, pretrained=load_glove()), model_dir)
 
 
 def run_demo(out: str | Path, options: DemoOptions = DemoOptions(), steps: Steps | None = None) -> DemoResult:
     """Run the four steps into `out` and return what each measured."""
-    from models_demo.scenario import SMALL_SIZES, ScenarioSizes, write_scenario
+    from danpack.models_demo.scenario import SMALL_SIZES, ScenarioSizes, write_scenario
 
     out = Path(out)
     steps = steps or Steps(4 + options.glove, quiet=True)
@@ -92,7 +92,7 @@ def run_demo(out: str | Path, options: DemoOptions = DemoOptions(), steps: Steps
         with open(test_file, "rb") as f:
             sample = b"".join(line for _, line in zip(range(STREAM_SAMPLE), f))
         start = time.perf_counter()
-        done = subprocess.run([sys.executable, "-m", "runtime.stream", str(bundle), "-", "--jsonl"],
+        done = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), "-", "--jsonl"],
                               input=sample, capture_output=True, check=False)
         stream_seconds = time.perf_counter() - start
         stream_output.write_bytes(done.stdout)

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from runtime.tokenize import Tokenizer
+from danpack.runtime.tokenize import Tokenizer
 
 
 @dataclass(frozen=True)

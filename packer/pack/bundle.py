@@ -11,7 +11,7 @@ import zlib
 import msgpack
 import numpy as np
 
-from runtime.bundle import FORMAT_NAME, FORMAT_VERSION
+from danpack.runtime.bundle import FORMAT_NAME, FORMAT_VERSION
 
 
 def _sorted(obj):

@@ -11,7 +11,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
-from runtime.errors import DanpackError
+from danpack.runtime.errors import DanpackError
 
 
 class VerdictError(DanpackError):
@@ -26,7 +26,7 @@ class Threshold:
     key: str  # figure key in CheckResult.figures
     op: str  # "<=" (a maximum) or ">=" (a minimum)
     default: float | None  # limit used when the option is not given; None: not gated by default
-    unit: str  # how values print (see packer.check.FIGURES units)
+    unit: str  # how values print (see danpack.check.compare.FIGURES units)
     title: str  # the figure's name in messages
     needs: str = ""  # what the figure needs when it is missing ("labels", "latency")
 

@@ -14,15 +14,15 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from runtime.backends import NumpyBackend
-from runtime.bundle import Bundle, read_bundle
-from runtime.certify import (FOLD_MASS_STEPS, HALF_STEP, DriftBound, certify_margins, certify_packed, drift_bound,
+from danpack.runtime.backends import NumpyBackend
+from danpack.runtime.bundle import Bundle, read_bundle
+from danpack.runtime.certify import (FOLD_MASS_STEPS, HALF_STEP, DriftBound, certify_margins, certify_packed, drift_bound,
                              encode_kept, gamma, logit_bounds, read_steps)
-from runtime.encode import Encoder
-from runtime.errors import DanpackError
-from runtime.tokenize import Tokenizer
+from danpack.runtime.encode import Encoder
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.tokenize import Tokenizer
 
-from .model import FloatModel
+from danpack.model import FloatModel
 
 BATCH = 1024  # texts per forward pass: bounds the padded (B, T, W) temporaries
 CHUNK_ROWS = 65536  # table rows per block of the premise check

@@ -13,28 +13,21 @@ import os
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING
 
 import numpy as np
 
-import runtime
-from runtime.errors import DanpackError
-
-from .files import file_sha256
-from .model import FloatModel, load_model, model_bytes, model_digest
-from .progress import Steps
-from .quantize import dequantize_rows
-from .textfile import iter_records
-
-if TYPE_CHECKING:
-    from .latency import LatencyOptions
+from danpack import runtime
+from danpack.check.errors import CheckError
+from danpack.check.latency import LatencyOptions, measure_check_latency
+from danpack.files import file_sha256
+from danpack.model import FloatModel, load_model, model_bytes, model_digest
+from danpack.pack.quantize import dequantize_rows
+from danpack.progress import Steps
+from danpack.runtime.errors import DanpackError
+from danpack.textfile import iter_records
 
 KL_EPSILON = 1e-12  # added to both distributions before the log: keeps KL finite when a probability underflows
 DEFAULT_LABEL_FIELD = "label"  # the label field looked for when --label-field is not given
-
-
-class CheckError(DanpackError):
-    """Inputs of a check that do not fit together (unknown label, bundle of other labels, empty set, ...)."""
 
 
 @dataclass(frozen=True)
@@ -473,7 +466,7 @@ def certified_figures(model: FloatModel, bundle, texts: Sequence[str], warnings:
     and for a bundle not packed from this model (a warning says why)."""
     if bundle.manifest["table"]["dtype"] != "int8":
         return {k: None for k in CERTIFIED_KEYS}
-    from .bound import BoundError, certify_texts
+    from danpack.check.bound import BoundError, certify_texts
 
     try:
         summary = certify_texts(model, bundle, texts).to_dict()
@@ -544,8 +537,6 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
     figures.update({k: None for k in LATENCY_KEYS})
     latency_info = None
     if latency is not None:
-        from .latency import measure_check_latency
-
         with steps.step(f"measuring latency side by side ({latency.texts} single texts, batches of {latency.batch})"):
             timing = measure_check_latency(model_dir, clf, texts, latency, options.backend)
         figures.update(timing.figures())

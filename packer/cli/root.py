@@ -17,7 +17,7 @@ app = typer.Typer(
 
 def _show_version(value: bool) -> None:
     if value:
-        from packer import __version__
+        from danpack import __version__
 
         typer.echo(f"danpack {__version__}")
         raise typer.Exit()

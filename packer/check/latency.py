@@ -16,10 +16,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from runtime.bundle import decode_bundle
-from runtime.classifier import Classifier
+from danpack.runtime.bundle import decode_bundle
+from danpack.runtime.classifier import Classifier
 
-from .check import CheckError
+from danpack.check.errors import CheckError
 
 
 @dataclass(frozen=True)
@@ -66,7 +66,7 @@ class PairTiming:
     options: LatencyOptions
 
     def figures(self) -> dict:
-        """The latency figures of the check (keys of packer.check.FIGURES)."""
+        """The latency figures of the check (keys of danpack.check.compare.FIGURES)."""
         return {
             "latency_p50_ms_float": self.float.p(50),
             "latency_p95_ms_float": self.float.p(95),
@@ -128,7 +128,7 @@ def measure_pair(run_a: Callable[[list[str]], object], run_b: Callable[[list[str
 
 def open_float_onnx(model_dir: str | os.PathLike, backend: str = "onnxruntime") -> Classifier:
     """The float original exported unpruned to a float32 ONNX bundle (in memory), on the runtime path."""
-    from .pack import PackOptions, pack_model
+    from danpack.pack.build import PackOptions, pack_model
 
     result = pack_model(model_dir, None, PackOptions(quantize=False, fold="no"))
     return Classifier(decode_bundle(result.data, "float32 ONNX export of the float original"), backend)

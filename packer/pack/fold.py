@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from runtime.forward import Layer
+from danpack.runtime.forward import Layer
 
 CHUNK_ROWS = 65536  # rows per block, to bound temporary memory on 400k-row tables
 

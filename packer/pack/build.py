@@ -13,21 +13,21 @@ from pathlib import Path
 
 import numpy as np
 
-from runtime.bundle import decode_bundle
-from runtime.errors import DanpackError
-from runtime.forward import forward_logits, softmax
-from runtime.tokenize import Tokenizer
+from danpack.runtime.bundle import decode_bundle
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.forward import forward_logits, softmax
+from danpack.runtime.tokenize import Tokenizer
 
-from . import __version__
-from .bundle import encode_bundle, encode_payload, encode_vocab
-from .files import file_sha256, write_atomic
-from .fold import fold_first_layer, should_fold
-from .graph import GraphSpec, build_graph, check_graph
-from .model import FloatModel, load_model, model_bytes, model_digest
-from .progress import Steps
-from .quantize import quantize_rows
-from .textfile import iter_records
-from .vocab import VocabOptions, VocabPlan, plan_vocab
+from danpack import __version__
+from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+from danpack.files import file_sha256, write_atomic
+from danpack.pack.fold import fold_first_layer, should_fold
+from danpack.pack.graph import GraphSpec, build_graph, check_graph
+from danpack.model import FloatModel, load_model, model_bytes, model_digest
+from danpack.progress import Steps
+from danpack.pack.quantize import quantize_rows
+from danpack.textfile import iter_records
+from danpack.pack.vocab import VocabOptions, VocabPlan, plan_vocab
 
 PRUNED_POLICIES = ("skip", "unk", "rest")
 DEFAULT_PRUNED = "skip"  # measured on the demo models (README, "Choosing the pruned-token policy")
@@ -117,7 +117,7 @@ def _rest_row(model: FloatModel, plan: VocabPlan) -> np.ndarray:
 
 def _probe(table, scales, layers, rows: int, seed_ids: list[list[int]]) -> dict:
     """A few id sequences and their expected outputs, re-run by the runtime on load."""
-    from runtime.forward import encode_batch
+    from danpack.runtime.forward import encode_batch
 
     ids, counts = encode_batch(seed_ids)
     probs = softmax(forward_logits(table, layers, ids, counts, scales))  # (P, C)

@@ -1,0 +1,1 @@
+"""Conversion of models trained elsewhere (PyTorch state_dicts, safetensors) into danpack's float model folder."""
