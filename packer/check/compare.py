@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from danpack import runtime
+from danpack.check import BOOTSTRAP_SEED
 from danpack.check.errors import CheckError
 from danpack.check.latency import LatencyOptions, measure_check_latency
 from danpack.files import file_sha256
@@ -93,7 +94,7 @@ class CheckOptions:
     backend: str = "onnxruntime"  # runtime backend the bundle is run with
     batch_size: int = 256  # texts per forward call while evaluating (bounds memory)
     bootstrap: int = 2000  # paired bootstrap resamples for the accuracy-drop interval
-    seed: int = 20240617  # fixed: the same inputs always give the same bootstrap interval
+    seed: int = BOOTSTRAP_SEED  # fixed: the same inputs always give the same bootstrap interval
     confidence: float = 0.95  # level of both intervals of the accuracy drop
     show_disagreements: int = 5  # texts listed where the two predictions differ
     tokens_per_disagreement: int = 8  # tokens listed per such text, largest mean shift first

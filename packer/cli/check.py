@@ -7,18 +7,12 @@ from typing import Optional
 
 import typer
 
+from danpack.check import BOOTSTRAP_SEED
+from danpack.cli.common import fail
+from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
-from danpack.check.compare import CheckOptions, run_check
-from danpack.files import check_outputs
-from danpack.model import model_files
-from danpack.check.latency import LatencyOptions
-from danpack.progress import Steps
-from danpack.check.reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
-from danpack.check.verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit, parse_tolerances,
-                       resolve_limits)
-from danpack.cli.root import app
-from danpack.cli.common import fail
+# The library (numpy, onnxruntime) is imported inside the command: `danpack --help` stays fast.
 
 LIMIT_HELP = "Number, or 'off' to drop the default."
 
@@ -49,10 +43,19 @@ def check_command(
     no_latency: bool = typer.Option(False, "--no-latency", help="Skip the latency measurement."),
     backend: str = typer.Option("onnxruntime", help="Runtime backend: onnxruntime or numpy."),
     bootstrap: int = typer.Option(2000, help="Paired bootstrap resamples for the accuracy-drop interval."),
-    seed: int = typer.Option(CheckOptions.seed, min=0, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
+    seed: int = typer.Option(BOOTSTRAP_SEED, min=0, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Compare a bundle with its float original on labelled or unlabelled texts; exit 1 when a gate fails."""
+    from danpack.check.compare import CheckOptions, run_check
+    from danpack.check.latency import LatencyOptions
+    from danpack.check.reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
+    from danpack.check.verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit,
+                                       parse_tolerances, resolve_limits)
+    from danpack.files import check_outputs
+    from danpack.model import model_files
+    from danpack.progress import Steps
+
     try:
         check_outputs({"--report": report, "--markdown": markdown, "--junit": junit},
                       {"BUNDLE": bundle, "--eval": eval_file, "--baseline": baseline,

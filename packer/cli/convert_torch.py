@@ -7,12 +7,15 @@ from typing import Optional
 
 import typer
 
-from danpack.runtime.errors import DanpackError
-from danpack.runtime.tokenize import TokenizerSpec
+from typing import TYPE_CHECKING
 
-from danpack.convert.from_torch import ConversionReport, ConvertOptions, convert_checkpoint
-from danpack.cli.root import app
 from danpack.cli.common import fail, human_bytes
+from danpack.cli.root import app
+from danpack.runtime.errors import DanpackError
+
+if TYPE_CHECKING:
+    from danpack.convert.from_torch import ConversionReport
+# The library (numpy, torch) is imported inside the command: `danpack --help` stays fast.
 
 
 def _padding(value: str) -> tuple[int | None, bool]:
@@ -77,6 +80,9 @@ def convert_torch(
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing model directory."),
 ) -> None:
     """Convert a PyTorch-trained DAN (state_dict) into a float model directory."""
+    from danpack.convert.from_torch import ConvertOptions, convert_checkpoint
+    from danpack.runtime.tokenize import TokenizerSpec
+
     try:
         row, detect = _padding(padding_row)
         options = ConvertOptions(

@@ -6,12 +6,11 @@ from pathlib import Path
 
 import typer
 
+from danpack.cli.common import fail
+from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
-from danpack.models_demo.demo import DemoOptions, describe_demo, run_demo
-from danpack.progress import Steps
-from danpack.cli.root import app
-from danpack.cli.common import fail
+# The library (numpy, onnx) is imported inside the command: `danpack --help` stays fast.
 
 
 @app.command("demo")
@@ -24,6 +23,9 @@ def demo_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Run the whole job on the invented charging-station scenario: generate data, pack, stream, check."""
+    from danpack.models_demo.demo import DemoOptions, describe_demo, run_demo
+    from danpack.progress import Steps
+
     if task not in ("sentiment", "topic"):
         fail(f"--task {task!r} is not a shipped demo model; use sentiment or topic")
     if out.exists() and not out.is_dir():

@@ -8,17 +8,11 @@ from typing import Optional
 
 import typer
 
-from danpack.runtime import read_bundle
+from danpack.cli.common import fail, human_bytes
+from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
-from danpack.check.bound import describe_bound
-from danpack.pack.inspect import describe_bundle, export_onnx
-from danpack.files import check_outputs, write_atomic
-from danpack.model import model_files
-from danpack.pack.build import PackOptions, pack_model
-from danpack.progress import Steps
-from danpack.cli.root import app
-from danpack.cli.common import fail, human_bytes
+# The library (numpy, onnx) is imported inside each command: `danpack --help` stays fast.
 
 
 def _read_keep_words(path: Optional[Path]) -> tuple[str, ...]:
@@ -46,6 +40,11 @@ def pack_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Prune, quantise (int8, per-row scale), fold and export a float DAN into one bundle."""
+    from danpack.files import check_outputs
+    from danpack.model import model_files
+    from danpack.pack.build import PackOptions, pack_model
+    from danpack.progress import Steps
+
     chosen = [name for name, value in (("--coverage", coverage), ("--top", top), ("--max-bytes", max_bytes))
               if value is not None]
     if len(chosen) > 1:
@@ -97,6 +96,10 @@ def inspect_command(
     json_out: bool = typer.Option(False, "--json", help="Print everything as JSON."),
 ) -> None:
     """Show a bundle's manifest, checksum and where its bytes go."""
+    from danpack.check.bound import describe_bound
+    from danpack.pack.inspect import describe_bundle
+    from danpack.runtime.bundle import read_bundle
+
     try:
         info = describe_bundle(read_bundle(bundle))
     except DanpackError as e:
@@ -133,6 +136,10 @@ def export_onnx_command(
     Inputs: ids (batch, tokens) int64 padded with 0, counts (batch,) int64. Outputs: probs, logits.
     Tokenize and map tokens to rows as the manifest says (see `danpack inspect --json`).
     """
+    from danpack.files import check_outputs, write_atomic
+    from danpack.pack.inspect import export_onnx
+    from danpack.runtime.bundle import read_bundle
+
     try:
         check_outputs({"--output": output}, {"BUNDLE": bundle})
         write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
