@@ -90,7 +90,7 @@ def sizes(model_dir: Path, cs: dict[str, ct.Contender], packs: list[dict], repor
     """Bytes of every artifact against the float model directory."""
     source = model_bytes(model_dir)
     report.figures["float_dir_bytes"] = source
-    rows = [("float model directory (config.json, vocab.txt, weights)", fmt_bytes(source), "1.00x")]
+    rows = [("float model directory (dan.json, tokens.txt, weights)", fmt_bytes(source), "1.00x")]
     for key in (ct.FLOAT_ONNX, ct.TORCH_ONNX_BAG, ct.TORCH_ONNX_PADDED, ct.PACKED_ORT):
         c = cs.get(key)
         if c is None or c.artifact_bytes is None:

@@ -107,10 +107,10 @@ def long_comments(config: BenchConfig, spec: TokenizerSpec, length: int) -> list
 def demo_model_dir(config: BenchConfig, task: str) -> tuple[Path, str]:
     """The shipped demo model of a task, or (when not shipped yet) the same build in the work dir."""
     shipped = SHIPPED / task
-    if (shipped / "config.json").exists():
+    if (shipped / "dan.json").exists():
         return shipped, "models_demo/shipped"
     target = config.models_dir / "demo-random" / task
-    if not (target / "config.json").exists():
+    if not (target / "dan.json").exists():
         from danpack.models_demo.build import build_model, write_model
 
         say(f"models_demo/shipped/{task} is missing: training the same demo model into {target}")
@@ -122,7 +122,7 @@ def glove_model_dir(config: BenchConfig) -> Path:
     """The GloVe 6B 50d fine-tuned demo sentiment model (400,243 rows), built once by danpack.models_demo.build."""
     parent = config.models_dir / "glove-finetune"
     target = parent / "sentiment"
-    if not (target / "config.json").exists():
+    if not (target / "dan.json").exists():
         say(f"building the GloVe fine-tuned sentiment model into {target} (python -m danpack.models_demo.build)")
         started = time.perf_counter()
         subprocess.run([sys.executable, "-m", "danpack.models_demo.build", "--regime", "finetune", "--task", "sentiment",
@@ -137,7 +137,7 @@ def glove_words_model_dir(config: BenchConfig, rows: int) -> Path:
     from danpack.models_demo.glove import load_glove  # the glove extra: only this case needs it
 
     target = config.models_dir / f"synthetic-{rows}-glove-words"
-    if not (target / "config.json").exists():
+    if not (target / "dan.json").exists():
         say(f"writing the {rows:,}-row model with GloVe's most frequent words -> {target}")
         words = load_glove().tokens[:rows]  # the GloVe files list tokens most frequent first
         save_model(replace(load_model(synthetic_model_dir(config, rows)), vocab=tuple(words)), target,
@@ -166,7 +166,7 @@ def synthetic_model_dir(config: BenchConfig, rows: int | None = None) -> Path:
     rows = config.synthetic_rows if rows is None else rows
     dim, hidden = config.synthetic_dim, config.synthetic_hidden
     target = config.models_dir / f"synthetic-{rows}x{dim}-h{hidden}"
-    if (target / "config.json").exists():
+    if (target / "dan.json").exists():
         return target
     say(f"generating the synthetic {rows:,} x {dim} float32 model -> {target}")
     rng = np.random.default_rng(SYNTHETIC_SEED)

@@ -29,7 +29,7 @@ from .glove import Pretrained
 from .trainer import TrainConfig, TrainError, evaluate, train_model
 
 SHIPPED_DIR = Path(__file__).resolve().parent / "shipped"
-MODEL_FILES = ("config.json", "vocab.txt", "weights.safetensors")
+MODEL_FILES = ("dan.json", "tokens.txt", "weights.safetensors")
 
 # The demo models' training runs. Hidden layers narrower than the 50-wide table, so the
 # packer can fold the first layer into the table.

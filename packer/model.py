@@ -1,9 +1,9 @@
 """The float model directory ("the float original"): load with full validation, save atomically.
 
 Layout (format `danpack-float`, version 1):
-  config.json        format, version, labels, embedding_dim, hidden_sizes, activation,
+  dan.json        format, version, labels, embedding_dim, hidden_sizes, activation,
                      tokenizer spec, oov policy ({"policy": "skip"} or {"policy": "unk", "token": T})
-  vocab.txt          UTF-8, one token per line, line i is row i of the table
+  tokens.txt          UTF-8, one token per line, line i is row i of the table
   weights.npz | weights.safetensors
                      embedding [V, D], hidden.{i}.weight [out, in], hidden.{i}.bias [out],
                      output.weight [C, H], output.bias [C]; float32 or float16
@@ -33,7 +33,7 @@ from danpack.files import current_umask, feed_file
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1
 WEIGHT_FILES = ("weights.safetensors", "weights.npz")
-MODEL_FILES = ("config.json", "vocab.txt", *WEIGHT_FILES)  # every file a model directory may hold
+MODEL_FILES = ("dan.json", "tokens.txt", *WEIGHT_FILES)  # every file a model directory may hold
 
 
 def model_files(model_dir: str | os.PathLike) -> dict[str, Path]:
@@ -91,7 +91,7 @@ def _read_config(path: Path) -> dict:
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError as e:
-        raise _fail(path, "missing", "a model directory needs config.json, vocab.txt and weights.npz or weights.safetensors") from e
+        raise _fail(path, "missing", "a model directory needs dan.json, tokens.txt and weights.npz or weights.safetensors") from e
     except (OSError, UnicodeDecodeError) as e:
         raise _fail(path, f"cannot be read as UTF-8 text ({e})") from e
     try:
@@ -205,8 +205,8 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     root = Path(model_dir)
     if not root.is_dir():
         raise _fail(root, "is not a directory" if root.exists() else "no such directory",
-                    "pass the model directory holding config.json, vocab.txt and weights")
-    config_path = root / "config.json"
+                    "pass the model directory holding dan.json, tokens.txt and weights")
+    config_path = root / "dan.json"
     config = _read_config(config_path)
     labels = _config_field(config, config_path, "labels",
                            lambda v: isinstance(v, list) and len(v) >= 2 and all(isinstance(x, str) and x for x in v),
@@ -237,18 +237,18 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     if not isinstance(metadata, dict):
         raise _fail(config_path, f"field 'metadata' must be an object, found {type(metadata).__name__}")
 
-    vocab = _read_vocab(root / "vocab.txt")
+    vocab = _read_vocab(root / "tokens.txt")
     if oov["policy"] == "unk" and unk_token not in set(vocab):
-        raise _fail(config_path, f"field 'oov' names unknown-token {unk_token!r}, which is not in vocab.txt",
+        raise _fail(config_path, f"field 'oov' names unknown-token {unk_token!r}, which is not in tokens.txt",
                     "add the token to the vocabulary or use the 'skip' policy")
 
     weights_path, arrays = _read_weights(root)
     embedding = _take_tensor(weights_path, arrays, "embedding", 2)
     if embedding.shape[0] != len(vocab):
-        raise _fail(weights_path, f"tensor 'embedding' has {embedding.shape[0]} rows but vocab.txt has {len(vocab)} tokens",
+        raise _fail(weights_path, f"tensor 'embedding' has {embedding.shape[0]} rows but tokens.txt has {len(vocab)} tokens",
                     "the vocabulary and the table must describe the same rows")
     if embedding.shape[1] != dim:
-        raise _fail(weights_path, f"tensor 'embedding' has width {embedding.shape[1]}, config.json says embedding_dim {dim}")
+        raise _fail(weights_path, f"tensor 'embedding' has width {embedding.shape[1]}, dan.json says embedding_dim {dim}")
 
     layers: list[Layer] = []
     names = [f"hidden.{i}" for i in range(len(hidden_sizes))] + ["output"]
@@ -268,12 +268,12 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     extra = set(arrays) - {"embedding"} - {f"{n}.{p}" for n in names for p in ("weight", "bias")}
     if extra:
         raise _fail(weights_path, f"unexpected tensors {sorted(extra)}",
-                    "hidden_sizes in config.json may not match the layers saved")
+                    "hidden_sizes in dan.json may not match the layers saved")
     return FloatModel(tuple(vocab), embedding, tuple(layers), tuple(labels), spec, oov["policy"], unk_token, metadata)
 
 
 def model_config(model: FloatModel) -> dict:
-    """The config.json content of a model."""
+    """The dan.json content of a model."""
     oov = {"policy": model.oov_policy} if model.oov_policy == "skip" else {"policy": "unk", "token": model.unk_token}
     return {
         "format": FORMAT_NAME,
@@ -312,8 +312,8 @@ def save_model(model: FloatModel, model_dir: str | os.PathLike, weights_format: 
     os.chmod(tmp, 0o777 & ~current_umask())  # mkdtemp makes 0700 directories; a model gets the usual permissions
     backup = None
     try:
-        (tmp / "config.json").write_text(json.dumps(model_config(model), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
-        (tmp / "vocab.txt").write_text("".join(t + "\n" for t in model.vocab), encoding="utf-8")
+        (tmp / "dan.json").write_text(json.dumps(model_config(model), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        (tmp / "tokens.txt").write_text("".join(t + "\n" for t in model.vocab), encoding="utf-8")
         tensors = model_tensors(model)
         if weights_format == "npz":
             with open(tmp / "weights.npz", "wb") as f:

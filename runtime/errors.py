@@ -10,7 +10,7 @@ class DanpackError(ValueError):
 
 
 class ModelError(DanpackError):
-    """A float model directory (config.json, vocab.txt, weights) is malformed."""
+    """A float model directory (dan.json, tokens.txt, weights) is malformed."""
 
 
 class BundleError(DanpackError):

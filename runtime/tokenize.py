@@ -1,6 +1,6 @@
 """The one tokenizer: training, the float reference, the packer and the device share it.
 
-It is driven entirely by a `TokenizerSpec`, stored in the model's config.json and
+It is driven entirely by a `TokenizerSpec`, stored in the model's dan.json and
 later in the bundle's manifest, so every stage splits a text the same way.
 """
 

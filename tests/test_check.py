@@ -505,7 +505,7 @@ def test_cli_unreadable_inputs_exit_2(case, tmp_path):
     res = invoke(case.good, "--reference", case.model_dir, "--eval", bad, *NO_LATENCY)
     assert res.exit_code == 2 and "'furious' is not one of the model's labels" in res.stderr
     res = invoke(case.good, "--reference", tmp_path, "--eval", case.eval_path, *NO_LATENCY)
-    assert res.exit_code == 2 and "config.json" in res.stderr
+    assert res.exit_code == 2 and "dan.json" in res.stderr
     res = invoke(case.good, "--reference", case.model_dir, "--eval", case.unlabelled, *NO_LATENCY,
                  "--max-accuracy-drop", "0.5")
     assert res.exit_code == 2 and "no labels" in res.stderr
@@ -536,7 +536,7 @@ def test_cli_outputs_are_checked_before_the_run(case, tmp_path):
         (["--report", eval_copy], "would overwrite the input --eval"),  # the evaluation set survives
         (["--report", tmp_path / "r.json", "--junit", tmp_path / "r.json"], "both write"),
         (["--report", tmp_path], "is a folder"),
-        (["--markdown", case.model_dir / "config.json"], "would overwrite the input --reference file config.json"),
+        (["--markdown", case.model_dir / "dan.json"], "would overwrite the input --reference file dan.json"),
     ):
         res = invoke(case.good, "--reference", case.model_dir, "--eval", eval_copy, *NO_LATENCY, *map(str, extra))
         assert res.exit_code == 2 and needle in res.stderr, res.output

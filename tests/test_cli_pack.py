@@ -183,7 +183,7 @@ def test_model_dir_without_weights(inputs, tmp_path):
     _, model_dir, _ = inputs
     broken = tmp_path / "broken"
     broken.mkdir()
-    for name in ("config.json", "vocab.txt"):
+    for name in ("dan.json", "tokens.txt"):
         (broken / name).write_bytes((model_dir / name).read_bytes())
     _assert_usage_error(invoke("pack", broken, "-o", tmp_path / "x.danpack"), str(broken), "no weights file")
 
@@ -283,16 +283,16 @@ def test_pack_refuses_outputs_that_would_destroy_inputs(inputs, tmp_path):
     import os
 
     _, model_dir, corpus = inputs
-    config = (model_dir / "config.json").read_bytes()
+    config = (model_dir / "dan.json").read_bytes()
     fifo = tmp_path / "pipe"
     os.mkfifo(fifo)
-    for output, needle in ((model_dir / "config.json", "would overwrite the input model file config.json"),
+    for output, needle in ((model_dir / "dan.json", "would overwrite the input model file dan.json"),
                            (corpus, "would overwrite the input --corpus"),
                            (tmp_path, "is a folder"),
                            (fifo, "is not a regular file")):
         res = RUNNER.invoke(app, ["pack", str(model_dir), "-o", str(output), "-c", str(corpus), "-q"])
         assert res.exit_code == 2 and needle in res.stderr, res.output
-    assert (model_dir / "config.json").read_bytes() == config and fifo.exists() and not fifo.is_file()
+    assert (model_dir / "dan.json").read_bytes() == config and fifo.exists() and not fifo.is_file()
 
 
 def test_export_onnx_refuses_to_overwrite_its_bundle(inputs, tmp_path):
@@ -339,7 +339,7 @@ def test_byte_order_marks_are_dropped_from_vocabulary_and_corpus(inputs, tmp_pat
     _, model_dir, corpus = inputs
     bom_model = tmp_path / "bom-model"
     shutil.copytree(model_dir, bom_model)
-    (bom_model / "vocab.txt").write_bytes(b"\xef\xbb\xbf" + (model_dir / "vocab.txt").read_bytes())
+    (bom_model / "tokens.txt").write_bytes(b"\xef\xbb\xbf" + (model_dir / "tokens.txt").read_bytes())
     bom_corpus = tmp_path / "corpus.jsonl"
     bom_corpus.write_bytes(b"\xef\xbb\xbf" + corpus.read_bytes())
     plain = json.loads(invoke("pack", model_dir, "-o", tmp_path / "a", "-c", corpus, "--json").stdout)

@@ -118,7 +118,7 @@ def test_embedding_bag_dan_matches_pytorch(tmp_path, act, name, hidden):
     words = make_words(60)
     module = BagDAN(len(words), 16, hidden, len(LABELS), act).eval()
     ckpt = save_state(module, tmp_path / "dan.pt")
-    report = convert_checkpoint(ckpt, write_lines(tmp_path / "vocab.txt", words), list(LABELS), tmp_path / "m",
+    report = convert_checkpoint(ckpt, write_lines(tmp_path / "tokens.txt", words), list(LABELS), tmp_path / "m",
                                 ConvertOptions(activation=name))
     # three equal 24x24 layers can only be ordered by the numbers in mlp.2 / mlp.4
     assert [s.weight_key for s in report.layout.layers] == [f"mlp.{2 * i}.weight" for i in range(len(hidden) + 1)]
@@ -543,7 +543,7 @@ def test_cli_converts_and_prints_summary(tmp_path):
     assert "table 32, vocabulary 31, dropped 1" in out and "dropped row 0 ('<pad>')" in out
     assert "labels      3: broken, slow, fine" in out
     assert "note: 1 vocabulary token(s) can never come out of the tokenizer" in result.stderr and "Upper" not in out
-    config = json.loads((tmp_path / "m" / "config.json").read_text())
+    config = json.loads((tmp_path / "m" / "dan.json").read_text())
     assert config["tokenizer"]["case"] == "casefold" and config["tokenizer"]["max_tokens"] == 64
     assert config["metadata"]["converted_from"]["tensors"]["output.weight"] == "out.weight"
 

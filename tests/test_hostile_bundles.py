@@ -364,6 +364,7 @@ MEMORY_SCRIPT = textwrap.dedent("""
             return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
 
     path = sys.argv[1]
+    load = runtime.load  # runtime's names load on first use: import numpy and the backends before measuring
     open(path, "rb").read()  # warm the page cache and the allocator once
     try:  # Linux: reset the peak mark to the current RSS, so the growth below is the file's alone
         with open("/proc/self/clear_refs", "w") as f:
@@ -375,7 +376,7 @@ MEMORY_SCRIPT = textwrap.dedent("""
         if path.endswith("control"):  # positive control: the instrument sees a 32 MiB allocation
             block = b"x" * (32 << 20)
             raise BundleError("control")
-        runtime.load(path, "numpy")
+        load(path, "numpy")
         result = "loaded"
     except BundleError as e:
         result = "BundleError: " + str(e)

@@ -68,7 +68,7 @@ def model_dir(tmp_path: Path) -> Path:
 # --- helpers that damage a directory (independent writers) ------------------------------------
 
 def edit_config(model_dir: Path, change) -> None:
-    path = model_dir / "config.json"
+    path = model_dir / "dan.json"
     config = json.loads(path.read_text(encoding="utf-8"))
     change(config)
     path.write_text(json.dumps(config), encoding="utf-8")
@@ -101,7 +101,7 @@ def load_error(model_dir: Path) -> str:
 def test_save_load_round_trip(tmp_path, fmt, hidden, activation):
     model = make_model(hidden=hidden, activation=activation)
     path = save_model(model, tmp_path / "m", weights_format=fmt)
-    assert sorted(p.name for p in path.iterdir()) == sorted(["config.json", "vocab.txt", f"weights.{fmt}"])
+    assert sorted(p.name for p in path.iterdir()) == sorted(["dan.json", "tokens.txt", f"weights.{fmt}"])
     loaded = load_model(path)
     assert_same_model(model, loaded)
     assert loaded.hidden_sizes == hidden
@@ -128,12 +128,12 @@ def test_round_trip_unicode_vocab_and_labels(tmp_path):
 
 
 def test_saved_config_is_plain_json_with_documented_fields(model_dir):
-    config = json.loads((model_dir / "config.json").read_text(encoding="utf-8"))
+    config = json.loads((model_dir / "dan.json").read_text(encoding="utf-8"))
     assert config == model_config(make_model())
     assert config["format"] == "danpack-float" and config["version"] == 1
     assert config["hidden_sizes"] == [5, 3] and config["embedding_dim"] == 4
     assert config["oov"] == {"policy": "unk", "token": "<unk>"}
-    assert (model_dir / "vocab.txt").read_text(encoding="utf-8") == "".join(t + "\n" for t in VOCAB)
+    assert (model_dir / "tokens.txt").read_text(encoding="utf-8") == "".join(t + "\n" for t in VOCAB)
 
 
 @pytest.mark.parametrize("fmt", ["npz", "safetensors"])
@@ -163,10 +163,10 @@ def test_weights_written_by_hand_with_numpy_load(tmp_path):
     # A directory written without save_model: stdlib json + np.savez.
     d = tmp_path / "hand"
     d.mkdir()
-    (d / "config.json").write_text(json.dumps({
+    (d / "dan.json").write_text(json.dumps({
         "format": "danpack-float", "version": 1, "labels": ["no", "yes"], "embedding_dim": 2,
         "hidden_sizes": [], "activation": "tanh"}), encoding="utf-8")
-    (d / "vocab.txt").write_text("ok\nbad", encoding="utf-8")  # no final newline
+    (d / "tokens.txt").write_text("ok\nbad", encoding="utf-8")  # no final newline
     np.savez(d / "weights.npz", embedding=np.eye(2, dtype=np.float32),
              **{"output.weight": np.array([[1, 0], [0, 1]], np.float32), "output.bias": np.zeros(2, np.float32)})
     model = load_model(d)
@@ -184,7 +184,7 @@ def test_not_a_directory(tmp_path):
     assert "nowhere" in msg and "no such directory" in msg
 
 
-@pytest.mark.parametrize("name", ["config.json", "vocab.txt"])
+@pytest.mark.parametrize("name", ["dan.json", "tokens.txt"])
 def test_missing_file(model_dir, name):
     (model_dir / name).unlink()
     msg = load_error(model_dir)
@@ -203,7 +203,7 @@ def test_both_weight_files(model_dir):
     assert "weights.npz" in msg and "weights.safetensors" in msg and "exactly one" in msg
 
 
-# --- config.json --------------------------------------------------------------------------------------------
+# --- dan.json --------------------------------------------------------------------------------------------
 
 @pytest.mark.parametrize("text, fragment", [
     ("{", "not valid JSON"),
@@ -213,74 +213,74 @@ def test_both_weight_files(model_dir):
     ('"danpack-float"', "JSON object, found str"),
 ])
 def test_config_not_a_json_object(model_dir, text, fragment):
-    (model_dir / "config.json").write_text(text, encoding="utf-8")
+    (model_dir / "dan.json").write_text(text, encoding="utf-8")
     msg = load_error(model_dir)
-    assert "config.json" in msg and fragment in msg
+    assert "dan.json" in msg and fragment in msg
 
 
 def test_config_invalid_json_names_line_and_column(model_dir):
-    (model_dir / "config.json").write_text('{\n  "format": "danpack-float"\n  "version": 1\n}', encoding="utf-8")
+    (model_dir / "dan.json").write_text('{\n  "format": "danpack-float"\n  "version": 1\n}', encoding="utf-8")
     msg = load_error(model_dir)
-    assert "config.json" in msg and "line 3" in msg and "column" in msg
+    assert "dan.json" in msg and "line 3" in msg and "column" in msg
 
 
 def test_config_not_utf8(model_dir):
-    (model_dir / "config.json").write_bytes(b'{"format": "danpack-float\xff"}')
+    (model_dir / "dan.json").write_bytes(b'{"format": "danpack-float\xff"}')
     msg = load_error(model_dir)
-    assert "config.json" in msg and "UTF-8" in msg
+    assert "dan.json" in msg and "UTF-8" in msg
 
 
 @pytest.mark.parametrize("value", ["danpack-bundle", "", None, 1])
 def test_wrong_format_name(model_dir, value):
     edit_config(model_dir, lambda c: c.update(format=value))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'format'" in msg and repr(value) in msg and "'danpack-float'" in msg
+    assert "dan.json" in msg and "'format'" in msg and repr(value) in msg and "'danpack-float'" in msg
 
 
 def test_missing_format(model_dir):
     edit_config(model_dir, lambda c: c.pop("format"))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'format'" in msg
+    assert "dan.json" in msg and "'format'" in msg
 
 
 @pytest.mark.parametrize("value", [0, 2, 99, "1", None])
 def test_unknown_version(model_dir, value):
     edit_config(model_dir, lambda c: c.update(version=value))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'version'" in msg and repr(value) in msg
+    assert "dan.json" in msg and "'version'" in msg and repr(value) in msg
 
 
 def test_unknown_config_field(model_dir):
     edit_config(model_dir, lambda c: c.update(dropout=0.1, hidden=[3]))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "['dropout', 'hidden']" in msg and "allowed fields" in msg
+    assert "dan.json" in msg and "['dropout', 'hidden']" in msg and "allowed fields" in msg
 
 
 @pytest.mark.parametrize("field", ["labels", "embedding_dim", "hidden_sizes", "activation"])
 def test_required_config_field_missing(model_dir, field):
     edit_config(model_dir, lambda c: c.pop(field))
     msg = load_error(model_dir)
-    assert "config.json" in msg and f"'{field}' is missing" in msg
+    assert "dan.json" in msg and f"'{field}' is missing" in msg
 
 
 @pytest.mark.parametrize("labels", [[], ["only"], "negative,positive", ["a", ""], ["a", 2], None])
 def test_labels_invalid_or_too_few(model_dir, labels):
     edit_config(model_dir, lambda c: c.update(labels=labels))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'labels'" in msg and "at least 2" in msg
+    assert "dan.json" in msg and "'labels'" in msg and "at least 2" in msg
 
 
 def test_labels_duplicated(model_dir):
     edit_config(model_dir, lambda c: c.update(labels=["negative", "positive", "negative"]))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'labels'" in msg and "repeats" in msg
+    assert "dan.json" in msg and "'labels'" in msg and "repeats" in msg
 
 
 @pytest.mark.parametrize("value", [0, -4, "4", 4.0, True, None])
 def test_embedding_dim_invalid(model_dir, value):
     edit_config(model_dir, lambda c: c.update(embedding_dim=value))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'embedding_dim'" in msg and "positive integer" in msg
+    assert "dan.json" in msg and "'embedding_dim'" in msg and "positive integer" in msg
 
 
 def test_embedding_dim_mismatch(model_dir):
@@ -293,7 +293,7 @@ def test_embedding_dim_mismatch(model_dir):
 def test_hidden_sizes_invalid(model_dir, value):
     edit_config(model_dir, lambda c: c.update(hidden_sizes=value))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'hidden_sizes'" in msg
+    assert "dan.json" in msg and "'hidden_sizes'" in msg
 
 
 def test_hidden_sizes_longer_than_the_layers_saved(model_dir):
@@ -327,7 +327,7 @@ def test_fewer_hidden_sizes_than_saved_layers(model_dir):
 def test_activation_invalid(model_dir, value):
     edit_config(model_dir, lambda c: c.update(activation=value))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'activation'" in msg and "relu" in msg
+    assert "dan.json" in msg and "'activation'" in msg and "relu" in msg
 
 
 def test_output_rows_differ_from_label_count(model_dir):
@@ -360,14 +360,14 @@ def test_bias_shape_wrong(model_dir, name, shape):
 def test_bad_tokenizer_spec_in_config(model_dir, tokenizer, fragment):
     edit_config(model_dir, lambda c: c.update(tokenizer=tokenizer))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "field 'tokenizer'" in msg and fragment in msg
+    assert "dan.json" in msg and "field 'tokenizer'" in msg and fragment in msg
 
 
 @pytest.mark.parametrize("oov", [{"policy": "drop"}, {}, "skip", None, {"policy": None}])
 def test_oov_policy_invalid(model_dir, oov):
     edit_config(model_dir, lambda c: c.update(oov=oov))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'oov'" in msg
+    assert "dan.json" in msg and "'oov'" in msg
 
 
 @pytest.mark.parametrize("token", ["<UNK>", "[unk]", None])
@@ -375,27 +375,27 @@ def test_unk_policy_token_not_in_vocab(model_dir, token):
     oov = {"policy": "unk"} if token is None else {"policy": "unk", "token": token}
     edit_config(model_dir, lambda c: c.update(oov=oov))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'oov'" in msg and repr(token) in msg
+    assert "dan.json" in msg and "'oov'" in msg and repr(token) in msg
     if token is not None:  # a missing token is refused before the vocabulary is read
-        assert "vocab.txt" in msg
+        assert "tokens.txt" in msg
 
 
 def test_metadata_not_an_object(model_dir):
     edit_config(model_dir, lambda c: c.update(metadata=["seed", 1]))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'metadata'" in msg
+    assert "dan.json" in msg and "'metadata'" in msg
 
 
-# --- vocab.txt --------------------------------------------------------------------------------------------------
+# --- tokens.txt --------------------------------------------------------------------------------------------------
 
 def write_vocab(model_dir: Path, data: bytes) -> None:
-    (model_dir / "vocab.txt").write_bytes(data)
+    (model_dir / "tokens.txt").write_bytes(data)
 
 
 def test_duplicate_token(model_dir):
     write_vocab(model_dir, b"fast\nslow\nfast\ngreat\ncharger\n<unk>\n")
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and "line 3" in msg and "'fast'" in msg and "line 1" in msg
+    assert "tokens.txt" in msg and "line 3" in msg and "'fast'" in msg and "line 1" in msg
 
 
 @pytest.mark.parametrize("data, line", [
@@ -408,14 +408,14 @@ def test_duplicate_token(model_dir):
 def test_empty_token(model_dir, data, line):
     write_vocab(model_dir, data)
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and f"line {line}" in msg and "empty or blank" in msg
+    assert "tokens.txt" in msg and f"line {line}" in msg and "empty or blank" in msg
 
 
 @pytest.mark.parametrize("data", [b"", b"\n"])
 def test_vocab_without_tokens(model_dir, data):
     write_vocab(model_dir, data)
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and ("no tokens" in msg or "empty" in msg)
+    assert "tokens.txt" in msg and ("no tokens" in msg or "empty" in msg)
 
 
 @pytest.mark.parametrize("data, rows", [
@@ -436,13 +436,13 @@ def test_vocab_without_final_newline_is_accepted(model_dir):
 def test_vocab_not_utf8(model_dir):
     write_vocab(model_dir, b"fast\nsl\xffow\nbroken\ngreat\ncharger\n<unk>\n")
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and "line 2" in msg and "UTF-8" in msg
+    assert "tokens.txt" in msg and "line 2" in msg and "UTF-8" in msg
 
 
 def test_vocab_latin1_encoded(model_dir):
     write_vocab(model_dir, "fast\nslow\nbroken\ngreat\ncharger\ncafé\n".encode("latin-1"))
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and "line 6" in msg and "UTF-8" in msg
+    assert "tokens.txt" in msg and "line 6" in msg and "UTF-8" in msg
 
 
 # --- weights --------------------------------------------------------------------------------------------------------
@@ -589,7 +589,7 @@ def test_save_replaces_an_existing_model_dir(tmp_path):
     (target / "notes.txt").write_text("stale")  # not part of the new model
     save_model(make_model(seed=2), target, weights_format="npz")
     assert siblings(tmp_path) == ["m"]  # no temp or backup dir left
-    assert siblings(target) == ["config.json", "vocab.txt", "weights.npz"]
+    assert siblings(target) == ["dan.json", "tokens.txt", "weights.npz"]
     assert_same_model(load_model(target), make_model(seed=2))
 
 
@@ -650,7 +650,7 @@ def test_bug_unhashable_unk_token_raises_type_error(model_dir, token):
     # `unk_token not in set(vocab)` raises TypeError for a list/dict token.
     edit_config(model_dir, lambda c: c.update(oov={"policy": "unk", "token": token}))
     msg = load_error(model_dir)
-    assert "config.json" in msg and "'oov'" in msg
+    assert "dan.json" in msg and "'oov'" in msg
 
 
 def test_bug_npz_member_that_is_not_an_array(model_dir):
@@ -669,11 +669,11 @@ def test_bug_npz_member_that_is_not_an_array(model_dir):
 
 
 def test_bug_vocab_with_crlf_line_ends_is_accepted(model_dir):
-    # A vocab.txt saved with Windows line ends loads silently with "\r" at the end of every
+    # A tokens.txt saved with Windows line ends loads silently with "\r" at the end of every
     # token; no tokenizer output can match such a token, so every text is all-OOV.
     write_vocab(model_dir, "".join(t + "\r\n" for t in VOCAB).encode())
     msg = load_error(model_dir)
-    assert "vocab.txt" in msg and "line 1" in msg
+    assert "tokens.txt" in msg and "line 1" in msg
 
 
 def test_bug_failed_final_rename_loses_the_model_at_its_path(tmp_path, monkeypatch):

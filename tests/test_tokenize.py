@@ -347,7 +347,7 @@ def test_spec_round_trip_through_dict_and_json(spec):
     data = spec.to_dict()
     assert set(data) == {"normalization", "case", "pattern", "max_tokens"}
     assert TokenizerSpec.from_dict(data) == spec
-    # The dict is stored in config.json / the manifest: it must survive JSON (stdlib json).
+    # The dict is stored in dan.json / the manifest: it must survive JSON (stdlib json).
     assert TokenizerSpec.from_dict(json.loads(json.dumps(data))) == spec
 
 

@@ -355,12 +355,12 @@ def test_compare_models_accepts_only_tiny_weight_changes(tmp_path, nudge, expect
 
 def test_build_check_reports_a_changed_file(tmp_path):
     shutil.copytree(build.SHIPPED_DIR / "topic", tmp_path / "topic")
-    config = json.loads((tmp_path / "topic" / "config.json").read_text())
+    config = json.loads((tmp_path / "topic" / "dan.json").read_text())
     config["metadata"]["test_accuracy"] = 0.5
-    (tmp_path / "topic" / "config.json").write_text(json.dumps(config, indent=2) + "\n")
+    (tmp_path / "topic" / "dan.json").write_text(json.dumps(config, indent=2) + "\n")
     result = CliRunner().invoke(build.cli, ["--check", "--task", "topic", "--out", str(tmp_path)])
     assert result.exit_code == 1
-    assert "DIFFERS: config.json" in result.stdout
+    assert "DIFFERS: dan.json" in result.stdout
 
 
 def test_build_refuses_to_ship_a_glove_model():

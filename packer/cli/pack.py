@@ -26,7 +26,7 @@ def _read_keep_words(path: Optional[Path]) -> tuple[str, ...]:
 
 @app.command("pack")
 def pack_command(
-    model_dir: Path = typer.Argument(..., help="Float model directory (config.json, vocab.txt, weights.npz or weights.safetensors)."),
+    model_dir: Path = typer.Argument(..., help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
     output: Path = typer.Option(..., "--output", "-o", help="Bundle file to write (replaced atomically)."),
     corpus: list[Path] = typer.Option([], "--corpus", "-c", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every reachable row is kept."),
     text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),

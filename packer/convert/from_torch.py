@@ -52,7 +52,7 @@ class ConvertOptions:
     state_key: str | None = None  # entry holding the state_dict inside a training checkpoint dict
     padding_row: int | None = None  # table row to drop as padding (negative counts from the end)
     detect_padding: bool = True  # drop an all-zero row whose token is a pad token like "<pad>"
-    tokenizer: TokenizerSpec = field(default_factory=TokenizerSpec)  # written into config.json
+    tokenizer: TokenizerSpec = field(default_factory=TokenizerSpec)  # written into dan.json
     oov_policy: str = "skip"  # "skip" or "unk"
     unk_token: str = "<unk>"  # the row unknown tokens use under oov_policy "unk"
     weights_format: str = "npz"  # "npz" or "safetensors"
@@ -675,7 +675,7 @@ def _check_output_dir(out: Path, overwrite: bool) -> None:
     if not entries:
         return
     try:
-        is_model = json.loads((out / "config.json").read_text(encoding="utf-8")).get("format") == FORMAT_NAME
+        is_model = json.loads((out / "dan.json").read_text(encoding="utf-8")).get("format") == FORMAT_NAME
     except (OSError, ValueError, AttributeError):
         is_model = False
     if not is_model:

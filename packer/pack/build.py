@@ -93,7 +93,7 @@ def resolve_policy(model: FloatModel, requested: str) -> str:
         return "unk" if model.oov_policy == "unk" else DEFAULT_PRUNED
     if requested == "unk" and model.oov_policy != "unk":
         raise PackError("pruned-token policy 'unk' needs a model with an unknown-token row "
-                        "(config.json oov policy 'unk'); use 'skip' or 'rest'")
+                        "(dan.json oov policy 'unk'); use 'skip' or 'rest'")
     return requested
 
 
