@@ -8,7 +8,7 @@ from pathlib import Path
 BENCH_DIR = Path(__file__).resolve().parent
 DEFAULT_WORK = BENCH_DIR / "out"  # generated data, models and bundles (gitignored, never committed)
 DEFAULT_RESULTS = BENCH_DIR / "RESULTS.md"
-CASES = ("demo", "glove", "synthetic", "long")  # cases 1..4 of bench/README.md
+CASES = ("demo", "glove", "synthetic", "long", "install")  # cases 1..5 of bench/README.md
 
 
 @dataclass(frozen=True)
@@ -39,6 +39,7 @@ class BenchConfig:
     synthetic_hidden: int = 64  # case 3 hidden layer
     overhead_rows: int = 20_000  # case 3: bytes beyond the int8 table and scales, measured at this many rows
     profile_calls: int = 2000  # session calls under onnxruntime's profiler
+    startup_rounds: int = 15  # interleaved rounds of `danpack --help` etc. against `python -c pass` (case 5)
 
     @property
     def data_dir(self) -> Path:
@@ -58,5 +59,5 @@ def quick_config(base: BenchConfig) -> BenchConfig:
     return replace(
         base, quick=True, test_texts=300, stream_texts=5000, run_lines=10_000, latency_calls=200, latency_warmup=20,
         block_texts=256, throughput_reps=3, cold_reps=2, stream_reps=1, pack_reps=1, synthetic_reps=1, long_texts=8, long_calls=40,
-        synthetic_rows=20_000, profile_calls=200,
+        synthetic_rows=20_000, profile_calls=200, startup_rounds=3,
     )

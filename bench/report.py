@@ -112,6 +112,8 @@ def judge(reports: dict[str, CaseReport]) -> list[Target]:
         lambda v: v >= 25_000, fmt_rate, _where(reports, demo, 32) + "; danpack-run adds line parsing and JSON output")
     add("demo sentiment: cold start", "< 30 ms", _get(reports, demo, f"cold.{ct.PACKED_ORT}"),
         lambda v: v < 0.030, fmt_seconds, "bundle read + checksum + session creation + probe; see the cold start table")
+    add("`danpack --help` start-up", "≤ 4x `python -c pass`", _get(reports, "install", "startup.danpack --help"),
+        lambda v: v <= 4, fmt_ratio, "see the start-up table of case 5: typer and its imports")
     return out
 
 

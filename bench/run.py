@@ -8,6 +8,8 @@ import sys
 import time
 from pathlib import Path
 
+from danpack.pack.build import PackOptions, pack_model
+
 from . import cases, workdata
 from .config import CASES, DEFAULT_RESULTS, DEFAULT_WORK, BenchConfig, quick_config
 from .machine import machine_info
@@ -82,7 +84,14 @@ def main(argv: list[str] | None = None) -> int:
         model_dir = workdata.synthetic_model_dir(config)
         reports["synthetic"] = cases.synthetic_case(config, model_dir)
 
-    order = ["demo-sentiment", "demo-topic", "long", "glove", "synthetic"]
+    if "install" in chosen:
+        from .install import install_case
+
+        bundle = config.bundles_dir / "install-demo.dpk"
+        pack_model(workdata.demo_model_dir(config, "sentiment")[0], bundle, PackOptions(corpora=(str(corpus),)))
+        reports["install"] = install_case(config, bundle)
+
+    order = ["demo-sentiment", "demo-topic", "long", "glove", "synthetic", "install"]
     ordered = [reports[k] for k in order if k in reports]
     targets = judge(reports)
     seconds = time.perf_counter() - started
