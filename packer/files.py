@@ -45,6 +45,9 @@ def check_outputs(outputs: dict[str, str | os.PathLike | None],
                               "give a file path")
         if path.parent.exists() and not path.parent.is_dir():
             raise OutputError(f"{name} {path}: {path.parent} is a file, not a folder")
+        if not path.parent.exists():  # as cp and tee do: a typo must not create a tree of folders
+            raise OutputError(f"{name} {path}: the folder {path.parent} does not exist; create it first "
+                              f"(mkdir -p {path.parent}) or correct the path")
         real = os.path.realpath(path)
         if real in sources:
             raise OutputError(f"{name} {path} would overwrite the input {sources[real]}; write the output elsewhere")
@@ -58,7 +61,6 @@ def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
     path = Path(path)
     check_outputs({"output": path})
     try:
-        path.parent.mkdir(parents=True, exist_ok=True)
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
     except OSError as e:
         raise OutputError(f"{path}: cannot write here ({e.strerror or e}); choose another output path") from e

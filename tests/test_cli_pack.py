@@ -149,7 +149,10 @@ def test_inspect_json_breakdown_sums_to_the_file_size(packed):
 
 def test_export_onnx_runs_in_onnxruntime_and_matches_the_bundle(packed, tmp_path):
     out, _ = packed
-    target = tmp_path / "sub" / "model.onnx"
+    missing = invoke("export-onnx", out, "-o", tmp_path / "sub" / "model.onnx")  # a missing folder is not made
+    assert missing.exit_code == 2 and "does not exist; create it first (mkdir -p" in missing.stderr
+    assert not (tmp_path / "sub").exists()
+    target = tmp_path / "model.onnx"
     result = invoke("export-onnx", out, "-o", target)
     assert result.exit_code == 0, result.stderr
     assert result.stdout.startswith(f"wrote {target} (")

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 import zipfile
@@ -21,9 +22,13 @@ SHIPPED = REPO / "models_demo" / "shipped" / "sentiment"
 
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory) -> Path:
+    """The wheel built from a copy of the source (a stale build/ folder in the checkout would leak into it)."""
+    source = tmp_path_factory.mktemp("source") / "danpack"
+    shutil.copytree(REPO, source, ignore=shutil.ignore_patterns(
+        ".git", ".venv", "build", "*.egg-info", "out", "__pycache__", ".hypothesis", ".pytest_cache"))
     out = tmp_path_factory.mktemp("wheel")
     subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation", "-q", "-w", str(out),
-                    str(REPO)], check=True, capture_output=True)
+                    str(source)], check=True, capture_output=True)
     return next(out.glob("danpack-*.whl"))
 
 
