@@ -13,20 +13,22 @@ from collections.abc import Iterator
 from pathlib import Path
 
 from danpack.runtime.errors import DanpackError
+from danpack.runtime.formats import choose_format
 
 
 class TextFileError(DanpackError):
     """A corpus or evaluation file cannot be read as the expected records."""
 
 
-def detect_format(path: Path) -> str:
-    """"jsonl", "csv", "tsv" or "lines", from the suffix (a .txt file is plain lines)."""
-    suffix = path.suffix.lower()
-    if suffix in (".jsonl", ".ndjson", ".json"):
-        return "jsonl"
-    if suffix in (".csv", ".tsv"):
-        return suffix[1:]
-    return "lines"
+def detect_format(path: str | os.PathLike) -> str:
+    """"jsonl", "csv", "tsv" or "lines": the suffix, else the first line (`danpack.runtime.formats`, the rule
+    danpack-run follows too)."""
+    return choose_format(path)[0]
+
+
+def format_warning(path: str | os.PathLike) -> str | None:
+    """A warning when the file's name and content disagree (a .txt file of JSON objects), else None."""
+    return choose_format(path)[1]
 
 
 def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | None = None) -> Iterator[dict]:

@@ -376,7 +376,7 @@ def test_thresholds_compare_at_the_boundary():
     figures = {"accuracy_drop_points": 1.0, "agreement": 0.99, "bundle_bytes": 1001, "size_ratio": 0.5,
                "latency_ratio": 3.0}
     out = {o.name: o for o in evaluate(figures, limits, explicit)}
-    assert out["max-accuracy-drop"].status == "pass"  # equal to the limit holds
+    assert out["max-points-lost"].status == "pass"  # equal to the limit holds
     assert out["min-agreement"].status == "pass"
     assert out["max-bytes"].status == "fail" and "1,001 B" in out["max-bytes"].message
     assert out["min-size-ratio"].status == "fail"
@@ -388,7 +388,7 @@ def test_limits_off_and_percent_and_errors():
     limits, _ = resolve_limits({"min-size-ratio": parse_limit("off", "min-size-ratio"),
                                 "min-agreement": parse_limit("98.5%", "min-agreement")})
     assert limits["min-size-ratio"] is None and limits["min-agreement"] == pytest.approx(0.985)
-    assert limits["max-accuracy-drop"] == 1.0  # the default stays
+    assert limits["max-points-lost"] == 1.0  # the default stays
     with pytest.raises(VerdictError, match="not a number"):
         parse_limit("lots", "max-bytes")
     with pytest.raises(VerdictError, match="between 0 and 1"):
@@ -398,11 +398,11 @@ def test_limits_off_and_percent_and_errors():
 
 
 def test_explicit_limit_on_a_missing_figure_is_an_error():
-    limits, explicit = resolve_limits({"max-accuracy-drop": 0.5})
+    limits, explicit = resolve_limits({"max-points-lost": 0.5})
     with pytest.raises(VerdictError, match="no labels"):
         evaluate({"agreement": 1.0, "size_ratio": 2.0}, limits, explicit)
     out = {o.name: o for o in evaluate({"agreement": 1.0, "size_ratio": 2.0}, *resolve_limits({}))}
-    assert out["max-accuracy-drop"].status == "skip" and "no labels" in out["max-accuracy-drop"].message
+    assert out["max-points-lost"].status == "skip" and "no labels" in out["max-points-lost"].message
 
 
 def test_threshold_table_names_figures_that_exist():
@@ -440,7 +440,7 @@ def test_cli_heavily_pruned_bundle_fails_with_reasons(case):
     assert res.exit_code == 1, res.output
     fails = [line for line in res.stdout.splitlines() if line.strip().startswith("FAIL ")]
     assert any("min-agreement" in line and "below the limit >= 99.00%" in line for line in fails)
-    assert any("max-accuracy-drop" in line and "above the limit" in line for line in fails)
+    assert any("max-points-lost" in line and "above the limit" in line for line in fails)
 
 
 def test_cli_zeroed_rows_fail(case, tmp_path):
@@ -453,7 +453,7 @@ def test_cli_zeroed_rows_fail(case, tmp_path):
     assert res.exit_code == 1, res.output
     report = json.loads((tmp_path / "z.json").read_text())
     failed = {c["name"] for c in report["verdict"]["checks"] if c["status"] == "fail"}
-    assert {"min-agreement", "max-accuracy-drop"} <= failed
+    assert {"min-agreement", "max-points-lost"} <= failed
     assert report["figures"]["agreement"] < 0.9
     # the zeroed rows show up as large mean shifts of kept tokens in the listed disagreements
     shifts = [t for d in report["disagreements"] for t in d["tokens"] if t["status"] == "kept"]
@@ -473,11 +473,11 @@ def test_cli_swapped_labels_fail(case, tmp_path):
 def test_cli_thresholds_can_be_loosened_and_tightened(case):
     base = [case.pruned, "--reference", case.model_dir, "--eval", case.eval_path, *NO_LATENCY]
     assert invoke(*base).exit_code == 0
-    assert invoke(*base, "--max-accuracy-drop", "0.1").exit_code == 1
+    assert invoke(*base, "--max-points-lost", "0.1").exit_code == 1
     assert invoke(*base, "--max-bytes", "1000").exit_code == 1
     assert invoke(*base, "--min-size-ratio", "100").exit_code == 1
     loose = invoke(case.heavy, "--reference", case.model_dir, "--eval", case.eval_path, *NO_LATENCY,
-                   "--min-agreement", "off", "--max-accuracy-drop", "off")
+                   "--min-agreement", "off", "--max-points-lost", "off")
     assert loose.exit_code == 0, loose.output
 
 
@@ -507,7 +507,7 @@ def test_cli_unreadable_inputs_exit_2(case, tmp_path):
     res = invoke(case.good, "--reference", tmp_path, "--eval", case.eval_path, *NO_LATENCY)
     assert res.exit_code == 2 and "dan.json" in res.stderr
     res = invoke(case.good, "--reference", case.model_dir, "--eval", case.unlabelled, *NO_LATENCY,
-                 "--max-accuracy-drop", "0.5")
+                 "--max-points-lost", "0.5")
     assert res.exit_code == 2 and "no labels" in res.stderr
     assert "Traceback" not in res.output
 

@@ -91,15 +91,66 @@ def test_pack_json_summary(inputs, tmp_path):
     assert result.stderr == ""  # --json implies no progress
 
 
-def test_pack_without_corpus_and_with_keep_words(inputs, tmp_path):
+def test_pack_without_corpus_keeps_every_row(inputs, tmp_path):
     _, model_dir, _ = inputs
-    words = tmp_path / "keep.txt"
-    words.write_text("w3\nnot-in-model\n\n", encoding="utf-8")
-    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "--keep-words", words, "-q")
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "-q")
     assert result.exit_code == 0, result.stderr
     assert "no corpus given: kept every reachable row (150 of 151)" in result.stdout
-    assert "keep-words the float model does not know (not added): not-in-model" in result.stdout
     assert result.stderr == ""  # -q
+
+
+def test_keep_words_outside_the_model_are_named(inputs, tmp_path):
+    _, model_dir, corpus = inputs
+    words = tmp_path / "keep.txt"
+    words.write_text("w3\nnot-in-model\n\n", encoding="utf-8")
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "-c", corpus, "--keep-words", words, "-q")
+    assert result.exit_code == 0, result.stderr
+    assert "keep-words the float model does not know (not added): not-in-model" in result.stdout
+
+
+@pytest.mark.parametrize("option", [("--top", "3"), ("--coverage", "0.9"), ("--max-bytes", "9000"),
+                                    ("--keep-words", "KEEP")])
+def test_row_options_without_a_corpus_are_refused(inputs, tmp_path, option):
+    """Each would silently do nothing without a corpus (every reachable row is kept): exit 2, naming --corpus."""
+    _, model_dir, _ = inputs
+    (tmp_path / "keep.txt").write_text("w3\n", encoding="utf-8")
+    value = str(tmp_path / "keep.txt") if option[1] == "KEEP" else option[1]
+    out = tmp_path / "n.danpack"
+    result = invoke("pack", model_dir, "-o", out, option[0], value)
+    assert result.exit_code == 2
+    assert f"{option[0]} chooses rows by their use in a corpus; add --corpus FILE" in result.stderr
+    assert not out.exists()
+
+
+def test_text_field_on_plain_lines_is_refused(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    corpus = tmp_path / "corpus.txt"
+    corpus.write_text("w1 w2\nw3\n", encoding="utf-8")
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "-c", corpus, "--text-field", "body")
+    assert result.exit_code == 2 and "--text-field 'body' names a JSONL field" in result.stderr
+
+
+@pytest.mark.parametrize("value, ok", [("0.9", True), ("90%", True), ("90", False), ("1.5", False), ("x", False)])
+def test_coverage_is_a_share_like_every_share(inputs, tmp_path, value, ok):
+    """One rule for shares everywhere (as check --min-agreement): 0..1 or a percent with its sign."""
+    _, model_dir, corpus = inputs
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "-c", corpus, "--coverage", value, "-q")
+    assert (result.exit_code == 0) == ok, result.stderr
+    if value == "90":
+        assert "did you mean 90%?" in result.stderr
+
+
+def test_a_txt_corpus_of_json_objects_gets_a_warning(inputs, tmp_path):
+    _, model_dir, _ = inputs
+    corpus = tmp_path / "corpus.txt"
+    corpus.write_text('{"text": "w1 w2"}\n{"text": "w3"}\n', encoding="utf-8")
+    result = invoke("pack", model_dir, "-o", tmp_path / "n.danpack", "-c", corpus, "-q")
+    assert "its first line is a JSON object but a .txt file is read as plain lines" in result.stderr
+    renamed = tmp_path / "corpus"  # no suffix: the first line decides (JSONL)
+    renamed.write_bytes(corpus.read_bytes())
+    result = invoke("pack", model_dir, "-o", tmp_path / "m.danpack", "-c", renamed, "--json")
+    assert result.exit_code == 0, result.stderr
+    assert json.loads(result.stdout)["corpus_tokens"] == 3
 
 
 # --- inspect -----------------------------------------------------------------------------------
@@ -191,11 +242,12 @@ def test_model_dir_without_weights(inputs, tmp_path):
     _assert_usage_error(invoke("pack", broken, "-o", tmp_path / "x.danpack"), str(broken), "no weights file")
 
 
-@pytest.mark.parametrize("value", ["1.5", "0", "-0.2"])
-def test_bad_coverage(inputs, tmp_path, value):
+@pytest.mark.parametrize("value, needle", [("1.5", "--coverage '1.5' is a share"), ("-0.2", "--coverage '-0.2' is a share"),
+                                          ("0", "coverage 0.0 must be in (0, 1]")])
+def test_bad_coverage(inputs, tmp_path, value, needle):
     _, model_dir, corpus = inputs
     _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--coverage", value),
-                        f"coverage {float(value)} must be in (0, 1]")
+                        needle)
 
 
 def test_bad_pruned_policy(inputs, tmp_path):
@@ -221,9 +273,9 @@ def test_corpus_without_the_text_field(inputs, tmp_path):
 
 
 def test_missing_keep_words_file(inputs, tmp_path):
-    _, model_dir, _ = inputs
+    _, model_dir, corpus = inputs
     missing = tmp_path / "negations.txt"
-    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "--keep-words", missing),
+    _assert_usage_error(invoke("pack", model_dir, "-o", tmp_path / "x.danpack", "-c", corpus, "--keep-words", missing),
                         str(missing), "keep-words")
 
 

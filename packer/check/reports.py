@@ -13,6 +13,7 @@ import xml.etree.ElementTree as ET
 from pathlib import Path
 
 from danpack.runtime.errors import DanpackError
+from danpack.units import format_bytes
 
 from danpack import __version__
 from danpack.files import write_atomic
@@ -120,13 +121,7 @@ def outcomes_of(report: dict) -> list[Outcome]:
 # ---- shared pieces ------------------------------------------------------------------------------
 
 def _size(n: float | None) -> str:
-    if n is None:
-        return "n/a"
-    for unit in ("B", "kB", "MB", "GB"):
-        if abs(n) < 1000 or unit == "GB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1000
-    return f"{n:.1f} GB"
+    return "n/a" if n is None else format_bytes(n)
 
 
 def _short(text: str, width: int = TEXT_WIDTH) -> str:

@@ -12,6 +12,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from danpack.runtime.errors import DanpackError
+from danpack.units import UnitError, parse_share
 
 
 class VerdictError(DanpackError):
@@ -33,7 +34,7 @@ class Threshold:
 
 THRESHOLDS: tuple[Threshold, ...] = (
     # 1 point: well above what packing costs the demo models (0.00 / 0.10 points), below what a user notices
-    Threshold("max-accuracy-drop", "accuracy_drop_points", "<=", 1.0, "points", "accuracy drop", "labels"),
+    Threshold("max-points-lost", "accuracy_drop_points", "<=", 1.0, "points", "accuracy drop", "labels"),
     # 99%: the demo bundles agree on 99.8-100% of texts; a lower share means pruning costs decisions
     Threshold("min-agreement", "agreement", ">=", 0.99, "share", "prediction agreement"),
     # no default: the byte budget is the device's, not ours
@@ -145,20 +146,19 @@ def parse_limit(text: str | None, name: str) -> float | None:
     if raw.lower() in ("off", "none"):
         return math.nan  # marker: explicitly disabled
     threshold = {t.name: t for t in THRESHOLDS}.get(name)
-    percent = raw.endswith("%")
+    if threshold is not None and threshold.unit == "share":  # the one rule for shares (danpack.units)
+        try:
+            return parse_share(raw, f"--{name}")
+        except UnitError as e:
+            raise VerdictError(str(e)) from None
+    if raw.endswith("%"):
+        raise VerdictError(f"--{name} {text!r}: a percent sign fits only share limits such as --min-agreement 99%")
     try:
-        value = float(raw[:-1] if percent else raw)
+        value = float(raw)
     except ValueError:
         raise VerdictError(f"--{name} {text!r} is not a number; give a number or 'off'") from None
     if not math.isfinite(value):
         raise VerdictError(f"--{name} {text!r} must be a finite number")
-    is_share = threshold is not None and threshold.unit == "share"
-    if percent and not is_share:
-        raise VerdictError(f"--{name} {text!r}: a percent sign fits only share limits such as --min-agreement 99%")
-    if percent:
-        value /= 100
-    if is_share and not 0.0 <= value <= 1.0:
-        raise VerdictError(f"--{name} {text!r} is a share: give a value between 0 and 1 (e.g. 0.99) or a percent (99%)")
     unit = threshold.unit if threshold is not None else ""
     if unit in ("bytes", "count", "ratio") and value < 0:
         raise VerdictError(f"--{name} {text!r} cannot be negative")

@@ -24,7 +24,7 @@ def check_command(
     eval_file: Path = typer.Option(..., "--eval", "-e", help="Evaluation texts: JSONL, CSV or TSV with a header; labels optional."),
     text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
     label_field: Optional[str] = typer.Option(None, help="Field holding the label [default: 'label' when present; else unlabelled]."),
-    max_accuracy_drop: Optional[str] = typer.Option(None, help=f"Largest accuracy drop in points [default: 1.0]. {LIMIT_HELP}"),
+    max_points_lost: Optional[str] = typer.Option(None, help=f"Largest accuracy loss of the bundle against the float original, in percentage points [default: 1.0]. {LIMIT_HELP}"),
     min_agreement: Optional[str] = typer.Option(None, help=f"Smallest prediction agreement, 0..1 or a percent [default: 0.99]. {LIMIT_HELP}"),
     max_bytes: Optional[str] = typer.Option(None, help="Largest bundle size in bytes [default: not gated]."),
     min_size_ratio: Optional[str] = typer.Option(None, help=f"Smallest float bytes / bundle bytes [default: 1.0]. {LIMIT_HELP}"),
@@ -60,7 +60,7 @@ def check_command(
         check_outputs({"--report": report, "--markdown": markdown, "--junit": junit},
                       {"BUNDLE": bundle, "--eval": eval_file, "--baseline": baseline,
                        **{f"--reference file {n}": p for n, p in model_files(reference).items()}})
-        given = {"max-accuracy-drop": parse_limit(max_accuracy_drop, "max-accuracy-drop"),
+        given = {"max-points-lost": parse_limit(max_points_lost, "max-points-lost"),
                  "min-agreement": parse_limit(min_agreement, "min-agreement"),
                  "max-bytes": parse_limit(max_bytes, "max-bytes"),
                  "min-size-ratio": parse_limit(min_size_ratio, "min-size-ratio"),

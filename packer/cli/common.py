@@ -6,6 +6,9 @@ from typing import NoReturn
 
 import typer
 
+from danpack.units import UnitError
+from danpack.units import parse_share as _parse_share
+
 
 def fail(message: str, code: int = 2) -> NoReturn:
     """Print an error to stderr and exit (2: bad usage or unreadable input)."""
@@ -13,9 +16,9 @@ def fail(message: str, code: int = 2) -> NoReturn:
     raise typer.Exit(code=code)
 
 
-def human_bytes(n: float) -> str:
-    for unit in ("B", "KB", "MB", "GB"):
-        if abs(n) < 1000 or unit == "GB":
-            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
-        n /= 1000
-    return f"{n:.1f} GB"
+def parse_share(text: str, option: str) -> float:
+    """A share option (0..1 or a percent); a bad value ends the command with exit 2."""
+    try:
+        return _parse_share(text, option)
+    except UnitError as e:
+        fail(str(e))

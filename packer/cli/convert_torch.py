@@ -9,7 +9,8 @@ import typer
 
 from typing import TYPE_CHECKING
 
-from danpack.cli.common import fail, human_bytes
+from danpack.cli.common import fail
+from danpack.units import format_bytes
 from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
@@ -53,7 +54,7 @@ def _describe(report: ConversionReport) -> list[str]:
         token = "no token" if d.token is None else repr(d.token)
         lines.append(f"  dropped row {d.row} ({token}): {d.reason}")
     lines.append(f"labels      {len(report.labels)}: {', '.join(report.labels)}")
-    lines.append(f"wrote       {report.output_dir} (weights.{report.weights_format}, {human_bytes(report.bytes_written)}), "
+    lines.append(f"wrote       {report.output_dir} (weights.{report.weights_format}, {format_bytes(report.bytes_written)}), "
                  "re-loaded and validated")
     return lines
 

@@ -8,7 +8,8 @@ from typing import Optional
 
 import typer
 
-from danpack.cli.common import fail, human_bytes
+from danpack.cli.common import fail, parse_share
+from danpack.units import format_bytes
 from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
@@ -29,11 +30,11 @@ def pack_command(
     model_dir: Path = typer.Argument(..., help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
     output: Path = typer.Option(..., "--output", "-o", help="Bundle file to write (replaced atomically)."),
     corpus: list[Path] = typer.Option([], "--corpus", "-c", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every reachable row is kept."),
-    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
-    coverage: Optional[float] = typer.Option(None, help="Keep the most frequent rows until this share of the corpus's known tokens is covered [default: 0.995]."),
-    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target."),
-    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top)."),
-    keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, e.g. negations."),
+    text_field: Optional[str] = typer.Option(None, help="Field (JSONL) or column (CSV/TSV) holding the text [default: text]; needs such a corpus."),
+    coverage: Optional[str] = typer.Option(None, help="Keep the most frequent rows until this share of the corpus's known tokens is covered: 0..1 or a percent such as 99.5% [default: 0.995]; only with a corpus."),
+    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target; only with a corpus."),
+    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top); only with a corpus."),
+    keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, e.g. negations; only with a corpus (without one every row is kept)."),
     pruned: str = typer.Option("auto", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
     fold: str = typer.Option("auto", help="Fold the first hidden layer into the table: auto (when narrower than the embedding), yes, no."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
@@ -45,15 +46,28 @@ def pack_command(
     from danpack.pack.build import PackOptions, pack_model
     from danpack.progress import Steps
 
+    from danpack.textfile import detect_format, format_warning
+
     chosen = [name for name, value in (("--coverage", coverage), ("--top", top), ("--max-bytes", max_bytes))
               if value is not None]
     if len(chosen) > 1:
         fail(f"{' and '.join(chosen)} each choose how many rows to keep; give one of them")
+    idle = chosen + (["--keep-words"] if keep_words is not None else [])
+    if idle and not corpus:  # without a corpus every reachable row is kept: these would do nothing
+        fail(f"{' and '.join(idle)} {'chooses' if len(idle) == 1 else 'choose'} rows by their use in a corpus; "
+             "add --corpus FILE (deployment-domain texts), or drop the option to keep every row")
+    if text_field is not None and corpus and all(detect_format(p) == "lines" for p in corpus if p.is_file()):
+        fail(f"--text-field {text_field!r} names a JSONL field or CSV/TSV column, but every --corpus is plain lines; "
+             "drop --text-field, or give a .jsonl / .csv / .tsv corpus")
+    for path in corpus:
+        if path.is_file() and (warning := format_warning(path)):
+            typer.echo(f"danpack: warning: {warning}", err=True)
     try:
         check_outputs({"--output": output}, {**{f"model file {n}": p for n, p in model_files(model_dir).items()},
                                              **{f"--corpus {p}": p for p in corpus}, "--keep-words": keep_words})
-        options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field,
-                              coverage=PackOptions.coverage if coverage is None else coverage, top=top,
+        options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field or "text",
+                              coverage=PackOptions.coverage if coverage is None else parse_share(coverage, "--coverage"),
+                              top=top,
                               max_bytes=max_bytes, keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
         steps = Steps(5 + (max_bytes is not None), quiet=quiet or json_out)
         result = pack_model(model_dir, output, options, steps)
@@ -72,8 +86,8 @@ def pack_command(
     if json_out:
         typer.echo(json.dumps(summary, indent=2, ensure_ascii=False))
         return
-    typer.echo(f"wrote {result.path}: {human_bytes(result.bytes)} "
-               f"(float model {human_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
+    typer.echo(f"wrote {result.path}: {format_bytes(result.bytes)} "
+               f"(float model {format_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
     if plan.has_corpus:
         typer.echo(f"kept {plan.keep:,} of {result.source_rows:,} rows, covering {plan.coverage:.2%} of the "
                    f"{plan.known_tokens:,} known tokens in {plan.corpus_texts:,} corpus texts")
@@ -87,7 +101,7 @@ def pack_command(
         typer.echo(f"keep-words the float model does not know (not added): {', '.join(plan.unknown_keep_words[:10])}")
     typer.echo(f"table {result.rows:,} x {result.width} int8{' (first hidden layer folded in)' if result.folded else ''}; "
                f"pruned tokens at run time: {result.policy}")
-    typer.echo("bytes: " + ", ".join(f"{k} {human_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
+    typer.echo("bytes: " + ", ".join(f"{k} {format_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
 
 
 @app.command("inspect")
@@ -110,7 +124,7 @@ def inspect_command(
     m = info["manifest"]
     typer.echo(f"bundle   {bundle}")
     typer.echo(f"sha256   {info['sha256']}")
-    typer.echo(f"size     {human_bytes(info['bytes'])} ({info['bytes']:,} bytes)")
+    typer.echo(f"size     {format_bytes(info['bytes'])} ({info['bytes']:,} bytes)")
     typer.echo(f"labels   {', '.join(info['labels'])}")
     t = m["table"]
     typer.echo(f"table    {t['rows']:,} x {t['width']} {t['dtype']}, {info['tokens']:,} tokens"
@@ -118,9 +132,9 @@ def inspect_command(
     typer.echo(f"layers   " + " -> ".join(f"{'folded' if not l['weight'] else 'gemm'}+{l['activation'] or 'softmax'}" for l in m["layers"]))
     typer.echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
     typer.echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
-               f"{human_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
+               f"{format_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
     typer.echo(f"packer   {m['packer']}")
-    typer.echo("bytes    " + ", ".join(f"{k} {human_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
+    typer.echo("bytes    " + ", ".join(f"{k} {format_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
     if "drift_bound" in info:
         for line in describe_bound(info["drift_bound"]):
             typer.echo(f"bound    {line}")
@@ -145,4 +159,4 @@ def export_onnx_command(
         write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
     except DanpackError as e:
         fail(str(e))
-    typer.echo(f"wrote {output} ({human_bytes(output.stat().st_size)})")
+    typer.echo(f"wrote {output} ({format_bytes(output.stat().st_size)})")
