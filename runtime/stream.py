@@ -22,6 +22,7 @@ from typing import BinaryIO
 from .backends import BACKENDS
 from .classifier import Classifier, load
 from .errors import DanpackError
+from .formats import choose_format
 from .stream_lines import read_batches
 from .stream_records import JsonlFormatter, TsvFormatter, make_parser
 
@@ -248,12 +249,19 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("bundle", metavar="BUNDLE", help="bundle file written by `danpack pack`")
     p.add_argument("input", metavar="INPUT", nargs="?", default="-",
                    help="file of texts, one per line; '-' or nothing reads standard input")
-    p.add_argument("--jsonl", action="store_true",
-                   help="each input line is a JSON object whose text field is classified; other fields pass through")
+    kind = p.add_mutually_exclusive_group()
+    kind.add_argument("--jsonl", action="store_true",
+                      help="each input line is a JSON object whose text field is classified; other fields pass "
+                           "through (the default for an INPUT named .jsonl, .ndjson or .json, or whose first line is "
+                           "a JSON object and whose name is not .txt/.csv/.tsv; standard input is plain lines "
+                           "unless this is given)")
+    kind.add_argument("--lines", action="store_true",
+                      help="each input line is one text, even in a file the rule above would read as JSONL")
     p.add_argument("--text-field", metavar="NAME", default=None,
-                   help="JSONL field holding the text (default: text; needs --jsonl)")
+                   help="JSONL field holding the text (default: text; only with JSONL input)")
     p.add_argument("--id-field", metavar="NAME", default=None,
-                   help="JSONL field shown as the second TSV column (default: id; needs --jsonl and --format tsv)")
+                   help="JSONL field shown as the second TSV column (default: id; only with JSONL input and "
+                        "--format tsv)")
     p.add_argument("--format", choices=FORMATS, default="jsonl",
                    help="output: one JSON object per line (default) or tab-separated columns")
     p.add_argument("--header", action="store_true", help="TSV: write a header line naming the columns")
@@ -279,9 +287,22 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
+def _input_is_jsonl(args: argparse.Namespace) -> bool:
+    """--jsonl / --lines, else the one format rule of `formats` for a named file (standard input: plain lines)."""
+    if args.jsonl or args.lines or args.input == "-":
+        return args.jsonl
+    fmt, warning = choose_format(args.input)
+    if fmt in ("csv", "tsv"):
+        return False  # read as plain lines, as before; a CSV row is classified whole
+    if warning is not None:
+        _say(f"warning: {warning} (pass --jsonl or --lines to choose)")
+    return fmt == "jsonl"
+
+
 def _config_from_args(parser: argparse.ArgumentParser, args: argparse.Namespace) -> StreamConfig:
+    args.jsonl = _input_is_jsonl(args)
     if args.text_field is not None and not args.jsonl:
-        parser.error("--text-field names a JSONL field: add --jsonl")
+        parser.error("--text-field names a JSONL field: add --jsonl (or give a .jsonl input)")
     id_field = args.id_field
     if id_field is None and args.jsonl and args.format == "tsv":
         id_field = "id"  # JSONL input shown as TSV keeps an id column

@@ -122,6 +122,23 @@ def test_row_options_without_a_corpus_are_refused(inputs, tmp_path, option):
     assert not out.exists()
 
 
+def test_ctrl_c_during_a_pack_says_nothing_was_written(inputs, tmp_path, monkeypatch):
+    import danpack.pack.build
+
+    _, model_dir, corpus = inputs
+    out = tmp_path / "n.danpack"
+    out.write_bytes(b"the previous bundle")
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(danpack.pack.build, "pack_model", interrupted)
+    result = invoke("pack", model_dir, "-o", out, "-c", corpus)
+    assert result.exit_code == 130
+    assert f"danpack: interrupted; nothing was written ({out} is as it was)" in result.stderr
+    assert out.read_bytes() == b"the previous bundle"
+
+
 def test_text_field_on_plain_lines_is_refused(inputs, tmp_path):
     _, model_dir, _ = inputs
     corpus = tmp_path / "corpus.txt"

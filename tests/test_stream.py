@@ -527,6 +527,31 @@ def test_exit_codes(monkeypatch, capsys, bundle, tmp_path, clf):
     assert code == 0 and between == out
 
 
+def test_input_format_follows_the_one_rule(monkeypatch, capsys, bundle, tmp_path, clf):
+    """A .jsonl file is JSONL without --jsonl (it was classified as raw JSON text); a nameless file whose first
+    line is an object too; a .txt of objects stays plain lines with a warning; --lines and --jsonl override."""
+    records = b'{"text": "w1 w2", "id": "a"}\n{"text": "w3", "id": "b"}\n'
+    expected = clf.predict(["w1 w2", "w3"])
+    for name in ("c.jsonl", "c.ndjson", "c"):
+        path = tmp_path / name
+        path.write_bytes(records)
+        code, out, err = cli(monkeypatch, capsys, [str(bundle), str(path)])
+        got = [json.loads(line) for line in out.splitlines()]
+        assert code == 0 and err == "" and [r["label"] for r in got] == expected and got[0]["id"] == "a", name
+    txt = tmp_path / "c.txt"
+    txt.write_bytes(records)
+    code, out, err = cli(monkeypatch, capsys, [str(bundle), str(txt)])
+    assert code == 0 and "first line is a JSON object but a .txt file is read as plain lines" in err
+    assert "id" not in json.loads(out.splitlines()[0])  # the JSON text itself was classified, as asked
+    code, out, err = cli(monkeypatch, capsys, [str(bundle), str(txt), "--jsonl"])
+    assert code == 0 and err == "" and [json.loads(line)["label"] for line in out.splitlines()] == expected
+    code, out, err = cli(monkeypatch, capsys, [str(bundle), str(tmp_path / "c.jsonl"), "--lines"])
+    assert code == 0 and err == "" and "id" not in json.loads(out.splitlines()[0])
+    with pytest.raises(SystemExit) as e:
+        main([str(bundle), str(txt), "--jsonl", "--lines"])
+    assert e.value.code == 2
+
+
 def test_unreadable_bundle_and_input_exit_2(monkeypatch, capsys, bundle, tmp_path):
     damaged = tmp_path / "damaged.dpk"
     damaged.write_bytes(bundle.read_bytes()[:-10])

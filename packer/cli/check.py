@@ -8,7 +8,7 @@ from typing import Optional
 import typer
 
 from danpack.check import BOOTSTRAP_SEED
-from danpack.cli.common import fail
+from danpack.cli.common import fail, interruptible
 from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
 
@@ -77,7 +77,8 @@ def check_command(
         latency = None if no_latency else LatencyOptions(texts=latency_texts, batch=latency_batch,
                                                          batches=latency_batches)
         steps = Steps(6 + (latency is not None), quiet=quiet)
-        result = run_check(bundle, reference, eval_file, options, latency, steps)
+        with interruptible("no report was written"):
+            result = run_check(bundle, reference, eval_file, options, latency, steps)
         outcomes = evaluate(result.figures, limits, explicit)
         extra_warnings: list[str] = []
         baseline_info = None

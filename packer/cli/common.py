@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import NoReturn
 
 import typer
@@ -22,3 +24,16 @@ def parse_share(text: str, option: str) -> float:
         return _parse_share(text, option)
     except UnitError as e:
         fail(str(e))
+
+
+EXIT_INTERRUPTED = 130  # what a shell reports after Ctrl-C
+
+
+@contextmanager
+def interruptible(outcome: str) -> Iterator[None]:
+    """Ctrl-C inside the block ends the command with exit 130 and says what became of its outputs."""
+    try:
+        yield
+    except KeyboardInterrupt:
+        typer.echo(f"\ndanpack: interrupted; {outcome}", err=True)
+        raise typer.Exit(code=EXIT_INTERRUPTED) from None

@@ -3,16 +3,14 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Optional
+from typing import TYPE_CHECKING, Optional
 
 import typer
 
-from typing import TYPE_CHECKING
-
-from danpack.cli.common import fail
-from danpack.units import format_bytes
+from danpack.cli.common import fail, interruptible
 from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
+from danpack.units import format_bytes
 
 if TYPE_CHECKING:
     from danpack.convert.from_torch import ConversionReport
@@ -100,7 +98,8 @@ def convert_torch(
             unk_token=unk_token,
             weights_format=weights_format,
         )
-        report = convert_checkpoint(checkpoint, vocab, labels, output, options, overwrite=overwrite)
+        with interruptible(f"nothing was written ({output} is as it was)"):
+            report = convert_checkpoint(checkpoint, vocab, labels, output, options, overwrite=overwrite)
     except DanpackError as e:
         fail(str(e))
     for note in report.warnings:

@@ -8,10 +8,10 @@ from typing import Optional
 
 import typer
 
-from danpack.cli.common import fail, parse_share
-from danpack.units import format_bytes
+from danpack.cli.common import fail, interruptible, parse_share
 from danpack.cli.root import app
 from danpack.runtime.errors import DanpackError
+from danpack.units import format_bytes
 
 # The library (numpy, onnx) is imported inside each command: `danpack --help` stays fast.
 
@@ -70,7 +70,8 @@ def pack_command(
                               top=top,
                               max_bytes=max_bytes, keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
         steps = Steps(5 + (max_bytes is not None), quiet=quiet or json_out)
-        result = pack_model(model_dir, output, options, steps)
+        with interruptible(f"nothing was written ({output} is as it was)"):
+            result = pack_model(model_dir, output, options, steps)
     except DanpackError as e:
         fail(str(e))
     plan = result.plan
@@ -156,7 +157,8 @@ def export_onnx_command(
 
     try:
         check_outputs({"--output": output}, {"BUNDLE": bundle})
-        write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
+        with interruptible(f"nothing was written ({output} is as it was)"):
+            write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
     except DanpackError as e:
         fail(str(e))
     typer.echo(f"wrote {output} ({format_bytes(output.stat().st_size)})")
