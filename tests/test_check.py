@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import copy
 import json
+import xml.etree.ElementTree as ET
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -324,13 +325,23 @@ def test_bundle_with_other_labels_is_refused(case, tmp_path):
         run_check(bundle, case.model_dir, case.eval_path)
 
 
-def test_bundle_of_another_float_model_is_warned(case, tmp_path):
+def test_bundle_of_another_float_model_is_refused_unless_allowed(case, tmp_path):
     other = make_model(tmp_path, vocab_size=600, dim=16, hidden=(8,), seed=8)
     bundle = tmp_path / "other.dpk"
     pack_model(other, bundle, PackOptions())
-    r = run_check(bundle, case.model_dir, case.eval_path)
+    with pytest.raises(CheckError, match="not from --reference .*pass --allow-other-reference"):
+        run_check(bundle, case.model_dir, case.eval_path)
+    r = run_check(bundle, case.model_dir, case.eval_path, CheckOptions(allow_other_reference=True))
     assert any("not from --reference" in w for w in r.warnings)
     assert r.figures["agreement"] < 0.9  # a different model disagrees a lot
+    junit = tmp_path / "junit.xml"
+    cli = invoke(bundle, "-r", case.model_dir, "-e", case.eval_path, "--no-latency", "--junit", junit)
+    assert cli.exit_code == 2 and "--allow-other-reference" in cli.stderr and not junit.exists()
+    cli = invoke(bundle, "-r", case.model_dir, "-e", case.eval_path, "--no-latency", "--junit", junit,
+                 "--allow-other-reference")
+    assert cli.exit_code in (0, 1), cli.stderr
+    suite = ET.parse(junit).getroot().find("testsuite")
+    assert "warning: the bundle was packed from a float model" in suite.find("system-err").text
 
 
 # ---- latency ------------------------------------------------------------------------------------

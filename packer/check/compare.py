@@ -98,6 +98,7 @@ class CheckOptions:
     confidence: float = 0.95  # level of both intervals of the accuracy drop
     show_disagreements: int = 5  # texts listed where the two predictions differ
     tokens_per_disagreement: int = 8  # tokens listed per such text, largest mean shift first
+    allow_other_reference: bool = False  # compare with a float model the bundle was not packed from (a warning)
 
     def __post_init__(self) -> None:
         if self.batch_size < 1:
@@ -500,8 +501,12 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
                         f"{list(labels)}; outputs are compared by label name")
     source_sha = (bundle.manifest.get("source") or {}).get("sha256")
     if source_sha != float_sha:
-        warnings.append(f"the bundle was packed from a float model with sha256 {str(source_sha)[:16]}…, "
-                        f"not from --reference (sha256 {float_sha[:16]}…)")
+        other = (f"the bundle was packed from a float model with sha256 {str(source_sha)[:16]}…, not from --reference "
+                 f"{model_dir} (sha256 {float_sha[:16]}…)")
+        if not options.allow_other_reference:  # a wrong folder would make every figure meaningless
+            raise CheckError(f"{other}; give the float model folder the bundle was packed from, or pass "
+                             "--allow-other-reference to compare with this one anyway")
+        warnings.append(other)
     if bundle.tokenizer != model.tokenizer:
         warnings.append("the bundle's tokenizer spec differs from the float original's")
     with steps.step(f"reading evaluation set {eval_path}"):

@@ -271,6 +271,8 @@ def render_junit(report: dict) -> str:
                         ("reference", i["reference"]["path"]), ("eval", i["eval"]["path"]),
                         ("texts", str(i["eval"]["texts"])), ("report_schema", f"{SCHEMA}/{VERSION}")):
         ET.SubElement(props, "property", name=name, value=str(value))
+    if report.get("warnings"):  # what a CI page shows: the warnings travel with the gates
+        ET.SubElement(suite, "system-err").text = "\n".join(f"warning: {w}" for w in report["warnings"])
     for o in outcomes:
         group = "baseline" if o.name.startswith("baseline-") else "thresholds"
         case = ET.SubElement(suite, "testcase", classname=f"danpack.check.{group}", name=o.name, time="0")

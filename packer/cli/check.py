@@ -31,6 +31,7 @@ def check_command(
     max_latency_ratio: Optional[str] = typer.Option(None, help="Largest single-text p50 ratio bundle / float [default: not gated]."),
     min_certified: Optional[str] = typer.Option(None, help="Smallest share of texts the drift bound certifies as unchanged by quantisation, 0..1 or a percent [default: not gated]."),
     max_certified_changes: Optional[str] = typer.Option(None, help=f"Largest number of certified texts whose prediction changed [default: 0: any means the bound is broken]. {LIMIT_HELP}"),
+    allow_other_reference: bool = typer.Option(False, "--allow-other-reference", help="Compare even when --reference is not the float model the bundle was packed from (its recorded sha256 differs); the reports then carry a warning. Without it such a check is refused."),
     baseline: Optional[Path] = typer.Option(None, help="An earlier --report of the same lineage: fail on regressions."),
     baseline_tolerance: list[str] = typer.Option([], help="NAME=VALUE, repeatable: accuracy=0.5 drop=0.5 agreement=0.5 (points), bytes=5 latency=off (percent)."),
     report: Optional[Path] = typer.Option(None, help="Write the JSON report (schema danpack-check-report, version 1)."),
@@ -73,7 +74,8 @@ def check_command(
         tolerances = parse_tolerances(baseline_tolerance)
         previous = read_report(baseline) if baseline is not None else None
         options = CheckOptions(text_field=text_field, label_field=label_field, backend=backend, bootstrap=bootstrap,
-                               seed=seed, show_disagreements=show_disagreements)
+                               seed=seed, show_disagreements=show_disagreements,
+                               allow_other_reference=allow_other_reference)
         latency = None if no_latency else LatencyOptions(texts=latency_texts, batch=latency_batch,
                                                          batches=latency_batches)
         steps = Steps(6 + (latency is not None), quiet=quiet)
