@@ -39,7 +39,7 @@ def check_outputs(outputs: dict[str, str | os.PathLike | None],
             continue
         path = Path(out)
         if str(out) == "" or path.is_dir():
-            raise OutputError(f"{name} {str(out)!r} is a folder; give a file path such as model.danpack")
+            raise OutputError(f"{name} {str(out)!r} is a folder; give a file path (the file to write, inside that folder or elsewhere)")
         if path.exists() and not path.is_file():
             raise OutputError(f"{name} {path} is not a regular file (a device or pipe would be replaced); "
                               "give a file path")

@@ -262,12 +262,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--id-field", metavar="NAME", default=None,
                    help="JSONL field shown as the second TSV column (default: id; only with JSONL input and "
                         "--format tsv)")
-    p.add_argument("--format", choices=FORMATS, default="jsonl",
+    p.add_argument("--format", choices=FORMATS, default="jsonl", metavar="|".join(FORMATS),
                    help="output: one JSON object per line (default) or tab-separated columns")
     p.add_argument("--header", action="store_true", help="TSV: write a header line naming the columns")
     p.add_argument("--top-k", metavar="K", type=_positive_int, default=None,
                    help="only the K most probable labels (JSONL: in probs; TSV: K label/probability column pairs)")
-    p.add_argument("--backend", choices=BACKENDS, default="onnxruntime",
+    p.add_argument("--backend", choices=BACKENDS, default="onnxruntime", metavar="|".join(BACKENDS),
                    help="onnxruntime (default) or the pure numpy forward pass")
     p.add_argument("--threads", metavar="N", type=_positive_int, default=1,
                    help="onnxruntime intra-op threads (default: 1, right for a small board)")

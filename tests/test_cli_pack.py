@@ -188,7 +188,7 @@ def test_inspect_human(packed):
     assert fields["sha256"] == _payload_sha(out)
     assert f"({out.stat().st_size:,} bytes)" in fields["size"]
     assert fields["labels"] == ", ".join(LABELS)
-    assert fields["layers"] == "folded+relu -> gemm+softmax"
+    assert fields["layers"] == "folded into the table + relu -> dense + softmax"
     assert fields["pruned"].startswith("skip; coverage ")
 
 
@@ -337,10 +337,32 @@ def test_every_command_has_help_for_every_option(command):
     assert result.exit_code == 0
     options = re.findall(r"^\s+(?:-\w, )?(--[a-z][a-z-]*)", result.output, flags=re.M)
     assert options and "--help" in options
+    # plain words: no Python type names or braces (`<list[Path]>`, `<int range>`, `{model_dir}`)
+    assert not re.search(r"<(?:str|int|float|bool|path|file|list\[[^>]*\]|[a-z]+ range)>|\{\w+\}", result.output), \
+        result.output
     # each option line carries a description (help texts are plain text, never markup)
     for line in result.output.splitlines():
         if re.match(r"^\s+(?:-\w, )?--[a-z]", line) and "--help" not in line:
             assert len(line.split(None, 2)) >= 2, line
+
+
+def test_the_command_list_gives_whole_sentences():
+    result = invoke("--help")
+    listed = result.output.split("Commands:", 1)[1]
+    assert "..." not in listed and "…" not in listed
+    for command in ("pack", "inspect", "export-onnx", "check", "convert-torch", "demo"):
+        assert re.search(rf"^  {command} ", listed, flags=re.M)
+
+
+def test_both_command_lines_name_choices_the_same_way(capsys):
+    from danpack.runtime.stream import main as run_main
+
+    with pytest.raises(SystemExit):
+        run_main(["--help"])
+    run_help = capsys.readouterr().out
+    assert "--format jsonl|tsv" in run_help and "--backend onnxruntime|numpy" in run_help
+    assert "{" not in run_help.split("output records")[0]
+    assert "--backend onnxruntime|numpy" in invoke("check", "--help").output
 
 
 def test_help_texts_print_brackets_as_written():

@@ -155,8 +155,10 @@ def describe_bound(worst: dict) -> list[str]:
     """Human-readable lines of `worst_case_bound` for `danpack inspect`."""
     bounds = ", ".join(f"{k} {v:.3g}" for k, v in worst["logit_bound"].items())
     return [
+        "drift bound: how far int8 rounding can move the model's scores; a label whose lead is larger is provably "
+        "the float model's",
         f"quantisation drift: each mean moves by at most {worst['delta_max']:.3g} per coordinate "
-        f"(half-step up to {worst['half_step_max']:.3g})",
+        f"(rounding error of one stored value, half an int8 step: up to {worst['half_step_max']:.3g})",
         f"logit bound per class: {bounds}",
         f"any prediction whose logit margin exceeds {worst['safe_margin']:.3g} cannot be changed by quantisation "
         "(texts whose tokens are all kept)",

@@ -142,12 +142,14 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
                      f"({s['bootstrap_resamples']:,} resamples, seed {s['seed']})"))
         rows.append(("  McNemar exact p", "", "",
                      f"{f['mcnemar_p']:.3g} ({f['only_float_correct']} only float right, "
-                     f"{f['only_packed_correct']} only bundle right)"))
+                     f"{f['only_packed_correct']} only bundle right; p: how likely a split this uneven is "
+                     "if both were equally accurate)"))
     rows.append(("agreement", "", format_value(f["agreement"], "share"),
                  f"{f['disagreements']:,} of {f['texts']:,} texts differ"))
     rows.append(("probability change, mean / max", "", f"{f['mean_abs_prob_diff']:.4f}",
                  f"max {f['max_abs_prob_diff']:.4f}"))
-    rows.append(("KL(float || bundle), mean / max", "", f"{f['mean_kl']:.2e}", f"max {f['max_kl']:.2e} nats"))
+    rows.append(("KL(float || bundle), mean / max", "", f"{f['mean_kl']:.2e}",
+                 f"max {f['max_kl']:.2e} nats (KL divergence: how far the probabilities moved, 0 = not at all)"))
     rows.append(("pruned share of known tokens", "", format_value(f["pruned_token_share"], "share"),
                  f"{f['pruned_tokens']:,} of {f['float_known_tokens']:,}; in "
                  f"{100 * f['texts_with_pruned_share']:.1f}% of texts"))
@@ -204,8 +206,10 @@ def render_table(report: dict) -> str:
             out.append(f"      {_short(d['text'])!r}")
             out.append(f"      pruned: {', '.join(d['pruned']) or 'none'}; mean shift by token: {_token_note(d)}")
     out += ["", "verdict"]
-    for o in outcomes_of(report):
-        out.append(f"  {o.status.upper():<4}  {o.name:<20} {o.message}")
+    outcomes = outcomes_of(report)
+    width = max((len(o.name) for o in outcomes), default=0)  # the longest gate name sets the column
+    for o in outcomes:
+        out.append(f"  {o.status.upper():<4}  {o.name:<{width}}  {o.message}")
     v = report["verdict"]
     gated = sum(1 for c in v["checks"] if c["status"] != "skip")
     out.append(f"\n{'PASS' if v['passed'] else 'FAIL'}: {gated - v['failures']} of {gated} gates hold")

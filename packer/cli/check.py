@@ -9,7 +9,7 @@ import typer
 
 from danpack.check import BOOTSTRAP_SEED
 from danpack.cli.common import fail, interruptible
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
 # The library (numpy, onnxruntime) is imported inside the command: `danpack --help` stays fast.
@@ -17,34 +17,35 @@ from danpack.runtime.errors import DanpackError
 LIMIT_HELP = "Number, or 'off' to drop the default."
 
 
-@app.command("check")
+@app.command("check", cls=PlainCommand,
+             short_help="Compare a bundle with its float original; exit 1 when a gate fails.")
 def check_command(
-    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
-    reference: Path = typer.Option(..., "--reference", "-r", help="The float model directory the bundle was packed from."),
-    eval_file: Path = typer.Option(..., "--eval", "-e", help="Evaluation texts: JSONL, CSV or TSV with a header; labels optional."),
-    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
-    label_field: Optional[str] = typer.Option(None, help="Field holding the label [default: 'label' when present; else unlabelled]."),
-    max_points_lost: Optional[str] = typer.Option(None, help=f"Largest accuracy loss of the bundle against the float original, in percentage points [default: 1.0]. {LIMIT_HELP}"),
-    min_agreement: Optional[str] = typer.Option(None, help=f"Smallest prediction agreement, 0..1 or a percent [default: 0.99]. {LIMIT_HELP}"),
-    max_bytes: Optional[str] = typer.Option(None, help="Largest bundle size in bytes [default: not gated]."),
-    min_size_ratio: Optional[str] = typer.Option(None, help=f"Smallest float bytes / bundle bytes [default: 1.0]. {LIMIT_HELP}"),
-    max_latency_ratio: Optional[str] = typer.Option(None, help="Largest single-text p50 ratio bundle / float [default: not gated]."),
-    min_certified: Optional[str] = typer.Option(None, help="Smallest share of texts the drift bound certifies as unchanged by quantisation, 0..1 or a percent [default: not gated]."),
-    max_certified_changes: Optional[str] = typer.Option(None, help=f"Largest number of certified texts whose prediction changed [default: 0: any means the bound is broken]. {LIMIT_HELP}"),
+    bundle: Path = typer.Argument(..., metavar="BUNDLE", help="Bundle file written by `danpack pack`."),
+    reference: Path = typer.Option(..., "--reference", "-r", metavar="MODEL_DIR", help="The float model directory the bundle was packed from."),
+    eval_file: Path = typer.Option(..., "--eval", "-e", metavar="FILE", help="Evaluation texts: JSONL, CSV or TSV with a header; labels optional."),
+    text_field: str = typer.Option("text", metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text."),
+    label_field: Optional[str] = typer.Option(None, metavar="NAME", help="Field holding the label [default: 'label' when present; else unlabelled]."),
+    max_points_lost: Optional[str] = typer.Option(None, metavar="POINTS|off", help=f"Largest accuracy loss of the bundle against the float original, in percentage points [default: 1.0]. {LIMIT_HELP}"),
+    min_agreement: Optional[str] = typer.Option(None, metavar="SHARE|off", help=f"Smallest prediction agreement, 0..1 or a percent [default: 0.99]. {LIMIT_HELP}"),
+    max_bytes: Optional[str] = typer.Option(None, metavar="BYTES|off", help="Largest bundle size in bytes [default: not gated]."),
+    min_size_ratio: Optional[str] = typer.Option(None, metavar="RATIO|off", help=f"Smallest float bytes / bundle bytes [default: 1.0]. {LIMIT_HELP}"),
+    max_latency_ratio: Optional[str] = typer.Option(None, metavar="RATIO|off", help="Largest single-text p50 ratio bundle / float [default: not gated]."),
+    min_certified: Optional[str] = typer.Option(None, metavar="SHARE|off", help="Smallest share of texts the drift bound certifies as unchanged by quantisation, 0..1 or a percent [default: not gated]."),
+    max_certified_changes: Optional[str] = typer.Option(None, metavar="N|off", help=f"Largest number of certified texts whose prediction changed [default: 0: any means the bound is broken]. {LIMIT_HELP}"),
     allow_other_reference: bool = typer.Option(False, "--allow-other-reference", help="Compare even when --reference is not the float model the bundle was packed from (its recorded sha256 differs); the reports then carry a warning. Without it such a check is refused."),
-    baseline: Optional[Path] = typer.Option(None, help="An earlier --report of the same lineage: fail on regressions."),
-    baseline_tolerance: list[str] = typer.Option([], help="NAME=VALUE, repeatable: accuracy=0.5 drop=0.5 agreement=0.5 (points), bytes=5 latency=off (percent)."),
-    report: Optional[Path] = typer.Option(None, help="Write the JSON report (schema danpack-check-report, version 1)."),
-    markdown: Optional[Path] = typer.Option(None, help="Write a Markdown summary for a CI comment."),
-    junit: Optional[Path] = typer.Option(None, help="Write JUnit XML: one test case per gate."),
-    show_disagreements: int = typer.Option(5, help="Texts listed where the two predictions differ."),
-    latency_texts: int = typer.Option(200, help="Single-text calls timed per side."),
-    latency_batch: int = typer.Option(64, help="Texts per batched call when timing throughput."),
-    latency_batches: int = typer.Option(30, help="Batched calls timed per side."),
+    baseline: Optional[Path] = typer.Option(None, metavar="REPORT", help="An earlier --report of the same lineage: fail on regressions."),
+    baseline_tolerance: list[str] = typer.Option([], metavar="NAME=VALUE", help="NAME=VALUE, repeatable: accuracy=0.5 drop=0.5 agreement=0.5 (points), bytes=5 latency=off (percent)."),
+    report: Optional[Path] = typer.Option(None, metavar="FILE", help="Write the JSON report (schema danpack-check-report, version 1)."),
+    markdown: Optional[Path] = typer.Option(None, metavar="FILE", help="Write a Markdown summary for a CI comment."),
+    junit: Optional[Path] = typer.Option(None, metavar="FILE", help="Write JUnit XML: one test case per gate."),
+    show_disagreements: int = typer.Option(5, metavar="N", help="Texts listed where the two predictions differ."),
+    latency_texts: int = typer.Option(200, metavar="N", help="Single-text calls timed per side."),
+    latency_batch: int = typer.Option(64, metavar="N", help="Texts per batched call when timing throughput."),
+    latency_batches: int = typer.Option(30, metavar="N", help="Batched calls timed per side."),
     no_latency: bool = typer.Option(False, "--no-latency", help="Skip the latency measurement."),
-    backend: str = typer.Option("onnxruntime", help="Runtime backend: onnxruntime or numpy."),
-    bootstrap: int = typer.Option(2000, help="Paired bootstrap resamples for the accuracy-drop interval."),
-    seed: int = typer.Option(BOOTSTRAP_SEED, min=0, help="Seed of the bootstrap (fixed: same inputs, same interval)."),
+    backend: str = typer.Option("onnxruntime", metavar="onnxruntime|numpy", help="Runtime backend: onnxruntime or numpy."),
+    bootstrap: int = typer.Option(2000, metavar="N", help="Paired bootstrap resamples for the accuracy-drop interval."),
+    seed: int = typer.Option(BOOTSTRAP_SEED, min=0, metavar="N", help="Seed of the bootstrap (fixed: same inputs, same interval)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Compare a bundle with its float original on labelled or unlabelled texts; exit 1 when a gate fails."""

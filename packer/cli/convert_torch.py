@@ -8,7 +8,7 @@ from typing import TYPE_CHECKING, Optional
 import typer
 
 from danpack.cli.common import fail, interruptible
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 from danpack.units import format_bytes
 
@@ -57,25 +57,26 @@ def _describe(report: ConversionReport) -> list[str]:
     return lines
 
 
-@app.command("convert-torch")
+@app.command("convert-torch", cls=PlainCommand,
+             short_help="Turn a PyTorch DAN state_dict into a float model folder.")
 def convert_torch(
-    checkpoint: Path = typer.Argument(..., help="state_dict saved with torch.save, or a .safetensors file of it."),
-    vocab: Path = typer.Option(..., "--vocab", help="One token per line (line i = row i), or JSON list / token->row map."),
-    labels: str = typer.Option(..., "--labels", help="File with one label per line, or a comma-separated list."),
-    output: Path = typer.Option(..., "-o", "--output", help="Model directory to write."),
-    activation: Optional[str] = typer.Option(None, "--activation", help="relu or tanh (needed when there are hidden layers)."),
-    bag_mode: str = typer.Option("mean", "--bag-mode", help="nn.EmbeddingBag mode the model used: mean|sum|max."),
-    embedding_key: Optional[str] = typer.Option(None, "--embedding-key", help="The embedding table's key (when ambiguous)."),
-    layer_keys: Optional[str] = typer.Option(None, "--layer-keys", help="Linear layers in forward order, comma-separated."),
-    ignore_key: list[str] = typer.Option([], "--ignore-key", help="A tensor or module prefix the model does not use."),
-    state_key: Optional[str] = typer.Option(None, "--state-key", help="Entry holding the state_dict in a training checkpoint."),
-    padding_row: str = typer.Option("auto", "--padding-row", help="Row to drop as padding: N, 'auto' or 'none'."),
-    normalization: str = typer.Option("NFKC", "--normalization", help="Tokenizer Unicode form: NFC|NFKC|NFD|NFKD|none."),
-    case: str = typer.Option("lower", "--case", help="Tokenizer case: lower|casefold|keep."),
-    max_tokens: int = typer.Option(512, "--max-tokens", help="Tokens kept per text."),
-    oov: str = typer.Option("skip", "--oov", help="Unknown tokens: skip (leave the mean) or unk (use --unk-token)."),
-    unk_token: str = typer.Option("<unk>", "--unk-token", help="Vocabulary token for unknown words with --oov unk."),
-    weights_format: str = typer.Option("npz", "--weights-format", help="npz or safetensors."),
+    checkpoint: Path = typer.Argument(..., metavar="CHECKPOINT", help="state_dict saved with torch.save, or a .safetensors file of it."),
+    vocab: Path = typer.Option(..., "--vocab", metavar="FILE", help="One token per line (line i = row i), or JSON list / token->row map."),
+    labels: str = typer.Option(..., "--labels", metavar="FILE|A,B,...", help="File with one label per line, or a comma-separated list."),
+    output: Path = typer.Option(..., "-o", "--output", metavar="MODEL_DIR", help="Model directory to write."),
+    activation: Optional[str] = typer.Option(None, "--activation", metavar="relu|tanh", help="relu or tanh (needed when there are hidden layers)."),
+    bag_mode: str = typer.Option("mean", "--bag-mode", metavar="mean|sum|max", help="nn.EmbeddingBag mode the model used: mean|sum|max."),
+    embedding_key: Optional[str] = typer.Option(None, "--embedding-key", metavar="KEY", help="The embedding table's key (when ambiguous)."),
+    layer_keys: Optional[str] = typer.Option(None, "--layer-keys", metavar="KEY,KEY,...", help="Linear layers in forward order, comma-separated."),
+    ignore_key: list[str] = typer.Option([], "--ignore-key", metavar="KEY", help="A tensor or module prefix the model does not use."),
+    state_key: Optional[str] = typer.Option(None, "--state-key", metavar="KEY", help="Entry holding the state_dict in a training checkpoint."),
+    padding_row: str = typer.Option("auto", "--padding-row", metavar="N|auto|none", help="Row to drop as padding: N, 'auto' or 'none'."),
+    normalization: str = typer.Option("NFKC", "--normalization", metavar="NFKC|NFC|NFKD|NFD|none", help="Tokenizer Unicode form: NFC|NFKC|NFD|NFKD|none."),
+    case: str = typer.Option("lower", "--case", metavar="lower|casefold|keep", help="Tokenizer case: lower|casefold|keep."),
+    max_tokens: int = typer.Option(512, "--max-tokens", metavar="N", help="Tokens kept per text."),
+    oov: str = typer.Option("skip", "--oov", metavar="skip|unk", help="Unknown tokens: skip (leave the mean) or unk (use --unk-token)."),
+    unk_token: str = typer.Option("<unk>", "--unk-token", metavar="TOKEN", help="Vocabulary token for unknown words with --oov unk."),
+    weights_format: str = typer.Option("npz", "--weights-format", metavar="npz|safetensors", help="npz or safetensors."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing model directory."),
 ) -> None:
     """Convert a PyTorch-trained DAN (state_dict) into a float model directory."""

@@ -7,16 +7,17 @@ from pathlib import Path
 import typer
 
 from danpack.cli.common import fail
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
 # The library (numpy, onnx) is imported inside the command: `danpack --help` stays fast.
 
 
-@app.command("demo")
+@app.command("demo", cls=PlainCommand,
+             short_help="Run the whole job on the invented charger-comments scenario.")
 def demo_command(
-    out: Path = typer.Option(Path("danpack-demo"), "--out", "-o", help="Directory for everything the demo writes."),
-    task: str = typer.Option("sentiment", help="Shipped demo model to pack: sentiment or topic."),
+    out: Path = typer.Option(Path("danpack-demo"), "--out", "-o", metavar="DIR", help="Directory for everything the demo writes."),
+    task: str = typer.Option("sentiment", metavar="sentiment|topic", help="Shipped demo model to pack: sentiment or topic."),
     small: bool = typer.Option(False, "--small", help="Small scenario sizes, for a quick look."),
     glove: bool = typer.Option(False, "--glove", help="Train the GloVe 6B 50d fine-tuned model (400,000-row table, needs `pip install 'danpack[glove]'`) and pack that: the realistic case."),
     no_latency: bool = typer.Option(False, "--no-latency", help="Skip the side-by-side latency measurement."),

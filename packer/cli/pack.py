@@ -9,7 +9,7 @@ from typing import Optional
 import typer
 
 from danpack.cli.common import fail, interruptible, parse_share
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 from danpack.units import format_bytes
 
@@ -25,18 +25,19 @@ def _read_keep_words(path: Optional[Path]) -> tuple[str, ...]:
         fail(f"{path}: cannot read keep-words ({e}); give a UTF-8 file with one token per line")
 
 
-@app.command("pack")
+@app.command("pack", cls=PlainCommand,
+             short_help="Pack a float model folder into one small int8 bundle.")
 def pack_command(
-    model_dir: Path = typer.Argument(..., help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
-    output: Path = typer.Option(..., "--output", "-o", help="Bundle file to write (replaced atomically)."),
-    corpus: list[Path] = typer.Option([], "--corpus", "-c", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every reachable row is kept."),
-    text_field: Optional[str] = typer.Option(None, help="Field (JSONL) or column (CSV/TSV) holding the text [default: text]; needs such a corpus."),
-    coverage: Optional[str] = typer.Option(None, help="Keep the most frequent rows until this share of the corpus's known tokens is covered: 0..1 or a percent such as 99.5% [default: 0.995]; only with a corpus."),
-    top: Optional[int] = typer.Option(None, help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target; only with a corpus."),
-    max_bytes: Optional[int] = typer.Option(None, help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top); only with a corpus."),
-    keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, e.g. negations; only with a corpus (without one every row is kept)."),
-    pruned: str = typer.Option("auto", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
-    fold: str = typer.Option("auto", help="Fold the first hidden layer into the table: auto (when narrower than the embedding), yes, no."),
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR", help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
+    output: Path = typer.Option(..., "--output", "-o", metavar="FILE", help="Bundle file to write (replaced atomically)."),
+    corpus: list[Path] = typer.Option([], "--corpus", "-c", metavar="FILE", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every row the tokenizer can produce is kept."),
+    text_field: Optional[str] = typer.Option(None, metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text [default: text]; needs such a corpus."),
+    coverage: Optional[str] = typer.Option(None, metavar="SHARE", help="Keep the most frequent rows until this share of the corpus's known tokens is covered: 0..1 or a percent such as 99.5% [default: 0.995]; only with a corpus."),
+    top: Optional[int] = typer.Option(None, metavar="N", help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target; only with a corpus."),
+    max_bytes: Optional[int] = typer.Option(None, metavar="BYTES", help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top); only with a corpus."),
+    keep_words: Optional[Path] = typer.Option(None, metavar="FILE", help="File of tokens (one per line) always kept, e.g. negations; only with a corpus (without one every row is kept)."),
+    pruned: str = typer.Option("auto", metavar="auto|skip|unk|rest", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
+    fold: str = typer.Option("auto", metavar="auto|yes|no", help="Fold the first hidden layer into the table (store each row already multiplied by that layer's weights, so the device skips one matrix product and the table gets narrower): auto (when the layer is narrower than the embedding), yes, no."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
@@ -105,9 +106,10 @@ def pack_command(
     typer.echo("bytes: " + ", ".join(f"{k} {format_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
 
 
-@app.command("inspect")
+@app.command("inspect", cls=PlainCommand,
+             short_help="Show a bundle's manifest, checksum and where its bytes go.")
 def inspect_command(
-    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
+    bundle: Path = typer.Argument(..., metavar="BUNDLE", help="Bundle file written by `danpack pack`."),
     json_out: bool = typer.Option(False, "--json", help="Print everything as JSON."),
 ) -> None:
     """Show a bundle's manifest, checksum and where its bytes go."""
@@ -130,7 +132,8 @@ def inspect_command(
     t = m["table"]
     typer.echo(f"table    {t['rows']:,} x {t['width']} {t['dtype']}, {info['tokens']:,} tokens"
                f"{', first hidden layer folded in' if t['folded'] else ''}")
-    typer.echo(f"layers   " + " -> ".join(f"{'folded' if not l['weight'] else 'gemm'}+{l['activation'] or 'softmax'}" for l in m["layers"]))
+    typer.echo("layers   " + " -> ".join(  # a folded layer lives in the table: the device skips its matrix product
+        f"{'folded into the table' if not l['weight'] else 'dense'} + {l['activation'] or 'softmax'}" for l in m["layers"]))
     typer.echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
     typer.echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
                f"{format_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
@@ -141,10 +144,11 @@ def inspect_command(
             typer.echo(f"bound    {line}")
 
 
-@app.command("export-onnx")
+@app.command("export-onnx", cls=PlainCommand,
+             short_help="Write a self-contained ONNX file for hosts in other languages.")
 def export_onnx_command(
-    bundle: Path = typer.Argument(..., help="Bundle file written by `danpack pack`."),
-    output: Path = typer.Option(..., "--output", "-o", help="Self-contained .onnx file to write."),
+    bundle: Path = typer.Argument(..., metavar="BUNDLE", help="Bundle file written by `danpack pack`."),
+    output: Path = typer.Option(..., "--output", "-o", metavar="FILE", help="Self-contained .onnx file to write."),
 ) -> None:
     """Write the bundle's graph with its tensors embedded, for hosts in other languages.
 
