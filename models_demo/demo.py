@@ -122,14 +122,14 @@ def describe_demo(result: DemoResult) -> list[str]:
         f"table {p.rows:,} x {p.width} int8{', first layer folded' if p.folded else ''}",
         f"stream      {result.stream_output}  {result.stream_records} records in {result.stream_seconds:.2f} s "
         f"(process start included); first: {first.get('label')} for line {first.get('line')}",
-        f"accuracy    float {f['accuracy_float']:.2%}, bundle {f['accuracy_packed']:.2%} "
+        f"accuracy    float {f['accuracy_float']:.2%}, bundle {f['accuracy_bundle']:.2%} "
         f"(drop {f['accuracy_drop_points']:+.2f} points); agreement {f['agreement']:.2%}",
     ]
     if f.get("certified_share") is not None:
         lines.append(f"certified   {f['certified_share']:.2%} of test comments provably unchanged by int8 quantisation")
     if f.get("latency_ratio") is not None:
-        lines.append(f"latency     one comment p50 {f['latency_p50_ms_packed'] * 1000:.0f} µs (float ONNX "
-                     f"{f['latency_p50_ms_float'] * 1000:.0f} µs); batched {f['throughput_packed']:,.0f} comments/s")
+        lines.append(f"latency     one comment p50 {f['latency_p50_ms_bundle'] * 1000:.0f} µs (float ONNX "
+                     f"{f['latency_p50_ms_float'] * 1000:.0f} µs); batched {f['throughput_bundle']:,.0f} comments/s")
     lines += [
         f"check       {'PASS' if result.exit_code == 0 else 'FAIL'}: {result.out / 'check-report.json'}, "
         f"{result.out / 'check-summary.md'}, {result.out / 'check-junit.xml'}",

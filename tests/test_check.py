@@ -242,12 +242,12 @@ def test_figures_of_the_quantised_bundle(case):
     pp = np.array(load(case.good).predict(list(case.texts)))
     assert f["texts"] == len(case.texts) == 1500
     assert f["accuracy_float"] == pytest.approx(np.mean(pf == gold))
-    assert f["accuracy_packed"] == pytest.approx(np.mean(pp == gold))
-    assert f["accuracy_drop_points"] == pytest.approx(100 * (f["accuracy_float"] - f["accuracy_packed"]))
+    assert f["accuracy_bundle"] == pytest.approx(np.mean(pp == gold))
+    assert f["accuracy_drop_points"] == pytest.approx(100 * (f["accuracy_float"] - f["accuracy_bundle"]))
     assert f["agreement"] == pytest.approx(np.mean(pf == pp))
     assert f["only_float_correct"] == np.sum((pf == gold) & (pp != gold))
     assert f["mcnemar_p"] == pytest.approx(
-        scipy.stats.binomtest(f["only_float_correct"], f["only_float_correct"] + f["only_packed_correct"]).pvalue)
+        scipy.stats.binomtest(f["only_float_correct"], f["only_float_correct"] + f["only_bundle_correct"]).pvalue)
     assert f["accuracy_drop_ci_low"] <= f["accuracy_drop_points"] <= f["accuracy_drop_ci_high"]
     assert f["pruned_tokens"] == 0 and f["pruned_token_share"] == 0.0  # nothing pruned without a corpus
     assert 0 <= f["mean_abs_prob_diff"] <= f["max_abs_prob_diff"] < 0.05  # int8 rounding only
@@ -284,7 +284,7 @@ def test_disagreements_listed_largest_change_first(case):
     r = run_check(case.heavy, case.model_dir, case.eval_path, CheckOptions(show_disagreements=7))
     d = r.disagreements
     assert len(d) == 7 and r.figures["disagreements"] > 7
-    assert all(x["float"]["label"] != x["packed"]["label"] for x in d)
+    assert all(x["float"]["label"] != x["bundle"]["label"] for x in d)
     changes = [x["max_abs_prob_diff"] for x in d]
     assert changes == sorted(changes, reverse=True)
     pf = load_model(case.model_dir).predict_proba(list(case.texts))  # (N, C), same label order as the bundle
@@ -374,9 +374,9 @@ def test_pick_texts_spreads_and_cycles():
 def test_check_with_a_small_latency_run(case):
     r = run_check(case.good, case.model_dir, case.eval_path, latency=LatencyOptions(texts=8, batch=4, batches=2, warmup=1))
     f = r.figures
-    for key in ("latency_p50_ms_float", "latency_p50_ms_packed", "throughput_float", "throughput_packed"):
+    for key in ("latency_p50_ms_float", "latency_p50_ms_bundle", "throughput_float", "throughput_bundle"):
         assert f[key] > 0 and np.isfinite(f[key])
-    assert f["latency_ratio"] == pytest.approx(f["latency_p50_ms_packed"] / f["latency_p50_ms_float"])
+    assert f["latency_ratio"] == pytest.approx(f["latency_p50_ms_bundle"] / f["latency_p50_ms_float"])
     assert r.settings["latency"]["single_texts"] == 8
 
 

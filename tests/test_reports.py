@@ -164,13 +164,13 @@ def test_baseline_regression_fails(case, good_baseline, tmp_path):
 
 
 def test_baseline_bytes_regression():
-    figures = {"bundle_bytes": 1060, "accuracy_packed": 0.9, "agreement": 0.99, "accuracy_drop_points": 0.2}
-    before = {"bundle_bytes": 1000, "accuracy_packed": 0.9, "agreement": 0.99, "accuracy_drop_points": 0.2}
+    figures = {"bundle_bytes": 1060, "accuracy_bundle": 0.9, "agreement": 0.99, "accuracy_drop_points": 0.2}
+    before = {"bundle_bytes": 1000, "accuracy_bundle": 0.9, "agreement": 0.99, "accuracy_drop_points": 0.2}
     out = {o.name: o for o in compare_baseline(figures, before, parse_tolerances([]))}
     assert out["baseline-bytes"].status == "fail" and "up 6.00 %" in out["baseline-bytes"].message
     out = {o.name: o for o in compare_baseline(figures, before, parse_tolerances(["bytes=6"]))}
     assert out["baseline-bytes"].status == "pass"  # exactly at the tolerance holds
-    smaller = {**figures, "bundle_bytes": 500, "accuracy_packed": 0.95}
+    smaller = {**figures, "bundle_bytes": 500, "accuracy_bundle": 0.95}
     assert all(o.status in ("pass", "skip") for o in compare_baseline(smaller, before, parse_tolerances([])))
 
 

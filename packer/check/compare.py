@@ -43,14 +43,14 @@ class FigureInfo:
 FIGURES: dict[str, FigureInfo] = {
     "texts": FigureInfo("texts evaluated", "count"),
     "accuracy_float": FigureInfo("accuracy of the float original", "share"),
-    "accuracy_packed": FigureInfo("accuracy of the bundle", "share"),
+    "accuracy_bundle": FigureInfo("accuracy of the bundle", "share"),
     "accuracy_drop_points": FigureInfo("accuracy drop (float - packed)", "points"),
     "accuracy_drop_ci_low": FigureInfo("drop, paired bootstrap interval low", "points"),
     "accuracy_drop_ci_high": FigureInfo("drop, paired bootstrap interval high", "points"),
     "accuracy_drop_exact_low": FigureInfo("drop, exact conditional interval low", "points"),
     "accuracy_drop_exact_high": FigureInfo("drop, exact conditional interval high", "points"),
     "only_float_correct": FigureInfo("texts only the float original gets right", "count"),
-    "only_packed_correct": FigureInfo("texts only the bundle gets right", "count"),
+    "only_bundle_correct": FigureInfo("texts only the bundle gets right", "count"),
     "mcnemar_p": FigureInfo("exact McNemar p-value", "p"),
     "agreement": FigureInfo("prediction agreement", "share"),
     "disagreements": FigureInfo("texts predicted differently", "count"),
@@ -73,12 +73,12 @@ FIGURES: dict[str, FigureInfo] = {
     "size_ratio": FigureInfo("size ratio (float / bundle)", "ratio"),
     "latency_p50_ms_float": FigureInfo("single-text p50, float ONNX", "ms"),
     "latency_p95_ms_float": FigureInfo("single-text p95, float ONNX", "ms"),
-    "latency_p50_ms_packed": FigureInfo("single-text p50, bundle", "ms"),
-    "latency_p95_ms_packed": FigureInfo("single-text p95, bundle", "ms"),
+    "latency_p50_ms_bundle": FigureInfo("single-text p50, bundle", "ms"),
+    "latency_p95_ms_bundle": FigureInfo("single-text p95, bundle", "ms"),
     "latency_ratio": FigureInfo("single-text p50 ratio (bundle / float)", "ratio"),
     "latency_p95_ratio": FigureInfo("single-text p95 ratio (bundle / float)", "ratio"),
     "throughput_float": FigureInfo("batched throughput, float ONNX", "rate"),
-    "throughput_packed": FigureInfo("batched throughput, bundle", "rate"),
+    "throughput_bundle": FigureInfo("batched throughput, bundle", "rate"),
     "throughput_ratio": FigureInfo("throughput ratio (bundle / float)", "ratio"),
 }
 LATENCY_KEYS = tuple(k for k in FIGURES if k.startswith(("latency_", "throughput_")))
@@ -308,14 +308,14 @@ def accuracy_figures(gold: np.ndarray, pred_float: np.ndarray, pred_packed: np.n
     exact = exact_drop_interval(only_f, only_p, n, options.confidence)
     return {
         "accuracy_float": acc_f,
-        "accuracy_packed": acc_p,
+        "accuracy_bundle": acc_p,
         "accuracy_drop_points": 100.0 * (only_f - only_p) / n,  # = 100 (acc_f - acc_p), exactly
         "accuracy_drop_ci_low": boot[0],
         "accuracy_drop_ci_high": boot[1],
         "accuracy_drop_exact_low": exact[0],
         "accuracy_drop_exact_high": exact[1],
         "only_float_correct": only_f,
-        "only_packed_correct": only_p,
+        "only_bundle_correct": only_p,
         "mcnemar_p": mcnemar_exact_p(only_f, only_p),
     }
 
@@ -346,7 +346,7 @@ def per_class_recall(gold: np.ndarray, pred_float: np.ndarray, pred_packed: np.n
             "label": label,
             "support": support,
             "recall_float": float((pred_float[mask] == c).mean()) if support else None,
-            "recall_packed": float((pred_packed[mask] == c).mean()) if support else None,
+            "recall_bundle": float((pred_packed[mask] == c).mean()) if support else None,
         })
     return rows
 
@@ -451,7 +451,7 @@ def list_disagreements(texts, gold, labels, probs_float, probs_packed, view: Tok
             "text": texts[i],
             "label": None if gold is None else labels[gold[i]],
             "float": {"label": labels[pf[i]], "prob": float(probs_float[i, pf[i]])},
-            "packed": {"label": labels[pp[i]], "prob": float(probs_packed[i, pp[i]])},
+            "bundle": {"label": labels[pp[i]], "prob": float(probs_packed[i, pp[i]])},
             "max_abs_prob_diff": float(moved[i]),
             "pruned": sorted(view.pruned[i]),
             "tokens": tokens[: options.tokens_per_disagreement],

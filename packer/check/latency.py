@@ -70,12 +70,12 @@ class PairTiming:
         return {
             "latency_p50_ms_float": self.float.p(50),
             "latency_p95_ms_float": self.float.p(95),
-            "latency_p50_ms_packed": self.packed.p(50),
-            "latency_p95_ms_packed": self.packed.p(95),
+            "latency_p50_ms_bundle": self.packed.p(50),
+            "latency_p95_ms_bundle": self.packed.p(95),
             "latency_ratio": self.packed.p(50) / self.float.p(50),
             "latency_p95_ratio": self.packed.p(95) / self.float.p(95),
             "throughput_float": self.float.throughput,
-            "throughput_packed": self.packed.throughput,
+            "throughput_bundle": self.packed.throughput,
             "throughput_ratio": self.packed.throughput / self.float.throughput,
         }
 

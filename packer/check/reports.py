@@ -135,14 +135,14 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
     level = f"{100 * s['confidence']:g}%"
     rows = []
     if f.get("accuracy_float") is not None:
-        rows.append(("accuracy", format_value(f["accuracy_float"], "share"), format_value(f["accuracy_packed"], "share"),
+        rows.append(("accuracy", format_value(f["accuracy_float"], "share"), format_value(f["accuracy_bundle"], "share"),
                      f"drop {f['accuracy_drop_points']:+.2f} pt"))
         rows.append((f"  drop, {level} paired bootstrap", "", "",
                      f"{f['accuracy_drop_ci_low']:+.2f} .. {f['accuracy_drop_ci_high']:+.2f} pt "
                      f"({s['bootstrap_resamples']:,} resamples, seed {s['seed']})"))
         rows.append(("  McNemar exact p", "", "",
                      f"{f['mcnemar_p']:.3g} ({f['only_float_correct']} only float right, "
-                     f"{f['only_packed_correct']} only bundle right; p: how likely a split this uneven is "
+                     f"{f['only_bundle_correct']} only bundle right; p: how likely a split this uneven is "
                      "if both were equally accurate)"))
     rows.append(("agreement", "", format_value(f["agreement"], "share"),
                  f"{f['disagreements']:,} of {f['texts']:,} texts differ"))
@@ -162,11 +162,11 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
     if f.get("latency_ratio") is not None:
         lat = s.get("latency") or {}
         rows.append(("latency p50, one text", format_value(f["latency_p50_ms_float"], "ms"),
-                     format_value(f["latency_p50_ms_packed"], "ms"), f"{f['latency_ratio']:.2f}x"))
+                     format_value(f["latency_p50_ms_bundle"], "ms"), f"{f['latency_ratio']:.2f}x"))
         rows.append(("latency p95, one text", format_value(f["latency_p95_ms_float"], "ms"),
-                     format_value(f["latency_p95_ms_packed"], "ms"), f"{f['latency_p95_ratio']:.2f}x"))
+                     format_value(f["latency_p95_ms_bundle"], "ms"), f"{f['latency_p95_ratio']:.2f}x"))
         rows.append((f"throughput, batch {lat.get('batch', '?')}", format_value(f["throughput_float"], "rate"),
-                     format_value(f["throughput_packed"], "rate"), f"{f['throughput_ratio']:.2f}x"))
+                     format_value(f["throughput_bundle"], "rate"), f"{f['throughput_ratio']:.2f}x"))
     return rows
 
 
@@ -194,7 +194,7 @@ def render_table(report: dict) -> str:
         wl = max(len(r["label"]) for r in report["per_class"])
         for r in report["per_class"]:
             out.append(f"  {r['label']:<{wl}}  float {format_value(r['recall_float'], 'share'):>7}  "
-                       f"bundle {format_value(r['recall_packed'], 'share'):>7}  ({r['support']:,} texts)")
+                       f"bundle {format_value(r['recall_bundle'], 'share'):>7}  ({r['support']:,} texts)")
     dis = report["disagreements"]
     if dis:
         total = report["figures"]["disagreements"]
@@ -202,7 +202,7 @@ def render_table(report: dict) -> str:
         for d in dis:
             label = f"label {d['label']} | " if d["label"] is not None else ""
             out.append(f"  #{d['index']}  {label}float {d['float']['label']} {d['float']['prob']:.2f} | "
-                       f"bundle {d['packed']['label']} {d['packed']['prob']:.2f}")
+                       f"bundle {d['bundle']['label']} {d['bundle']['prob']:.2f}")
             out.append(f"      {_short(d['text'])!r}")
             out.append(f"      pruned: {', '.join(d['pruned']) or 'none'}; mean shift by token: {_token_note(d)}")
     out += ["", "verdict"]
@@ -240,14 +240,14 @@ def render_markdown(report: dict) -> str:
     if report["per_class"]:
         out += ["", "| label | recall float | recall bundle | texts |", "|---|---:|---:|---:|"]
         out += [f"| {_md(r['label'])} | {format_value(r['recall_float'], 'share')} | "
-                f"{format_value(r['recall_packed'], 'share')} | {r['support']:,} |" for r in report["per_class"]]
+                f"{format_value(r['recall_bundle'], 'share')} | {r['support']:,} |" for r in report["per_class"]]
     if report["disagreements"]:
         out += ["", f"<details><summary>Texts where they disagree (top {len(report['disagreements'])} of "
                     f"{report['figures']['disagreements']:,})</summary>", ""]
         for d in report["disagreements"]:
             label = f"label {_md(d['label'])}; " if d["label"] is not None else ""
             out.append(f"- #{d['index']} {label}float **{_md(d['float']['label'])}** {d['float']['prob']:.2f}, "
-                       f"bundle **{_md(d['packed']['label'])}** {d['packed']['prob']:.2f}: \"{_md(_short(d['text']))}\""
+                       f"bundle **{_md(d['bundle']['label'])}** {d['bundle']['prob']:.2f}: \"{_md(_short(d['text']))}\""
                        f" (pruned: {_md(', '.join(d['pruned'])) or 'none'}; shift: {_md(_token_note(d))})")
         out += ["", "</details>"]
     if report["warnings"]:

@@ -67,7 +67,7 @@ class Regression:
 
 REGRESSIONS: tuple[Regression, ...] = (
     # 0.5 point of accuracy or agreement: a handful of texts on a 1,000-text set
-    Regression("accuracy", "accuracy_packed", "lower", "points", 0.5, "share", "bundle accuracy"),
+    Regression("accuracy", "accuracy_bundle", "lower", "points", 0.5, "share", "bundle accuracy"),
     Regression("drop", "accuracy_drop_points", "higher", "value", 0.5, "points", "accuracy drop"),
     Regression("agreement", "agreement", "lower", "points", 0.5, "share", "prediction agreement"),
     # 5%: a repack with a few more rows is fine, a doubled table is not
