@@ -227,6 +227,7 @@ def certify_margins(logits: np.ndarray, bounds: np.ndarray) -> np.ndarray:
 
 def certify_packed(bound: DriftBound, logits: np.ndarray, ids: np.ndarray, counts: np.ndarray,
                    kept: np.ndarray) -> np.ndarray:
-    """(B,) bool from the packed logits: True where the float model provably predicts the same class."""
+    """(B,) bool from the packed logits: True where the float model provably predicts the same class. A text with
+    no token (count 0) is never certified: the same answer on both sides says nothing about the text."""
     in_rows = np.where(np.arange(ids.shape[1])[None, :] < counts[:, None], bound.certifiable[ids], True).all(axis=1)
-    return kept & in_rows & certify_margins(logits, logit_bounds(bound, ids, counts))
+    return kept & (counts > 0) & in_rows & certify_margins(logits, logit_bounds(bound, ids, counts))

@@ -90,6 +90,18 @@ class Classifier:
         probs = self.predict_proba(texts)
         return [self.labels[i] for i in probs.argmax(axis=1)]
 
+    def predict_known(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
+        """(B,) texts -> (B labels, (B, C) probabilities, (B,) int64 known-token counts). A text with 0 known
+        tokens got the model's answer to an empty text: route it to a fallback rather than trust its label."""
+        texts = as_texts(texts)
+        probs_parts, known_parts = [], []
+        for i in range(0, max(len(texts), 1), CALL_TEXTS):
+            ids, counts, known = self.encoder.encode_known(texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            probs_parts.append(self.backend.run(ids, counts)[0])  # (b, C)
+            known_parts.append(known)
+        probs, known = np.concatenate(probs_parts), np.concatenate(known_parts)  # (B, C), (B,)
+        return [self.labels[i] for i in probs.argmax(axis=1)], probs, known
+
     @cached_property
     def drift_bound(self):
         """The bundle's quantisation drift bound, computed on first use: callers who never certify pay nothing."""
@@ -99,7 +111,8 @@ class Classifier:
 
     def predict_certified(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
         """(B,) texts -> (B labels, (B, C) probabilities, (B,) bool): True where int8 quantisation provably
-        cannot have changed the label (the float model predicts the same; see runtime/certify.py)."""
+        cannot have changed the label (the float model predicts the same; see runtime/certify.py). A text with no
+        token the bundle knows is never certified: its answer says nothing about the text."""
         from .certify import certify_packed, encode_kept
 
         bound, texts = self.drift_bound, as_texts(texts)

@@ -36,3 +36,16 @@ class Encoder:
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts."""
         return encode_batch([self.token_ids(text) for text in texts])
+
+    def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(B,) texts -> (B, T) ids and (B,) counts as `encode`, and (B,) int64 known: how many of each text's
+        tokens have a row of their own (not the unknown-word row, not left out). 0 means the model knew
+        nothing of the text: its answer is the model's answer to an empty text."""
+        index, tokenize, map_tokens = self.index, self.tokenizer.tokenize, self.map_tokens
+        id_lists, known = [], np.zeros(len(texts), dtype=np.int64)
+        for i, text in enumerate(texts):
+            tokens = tokenize(text)
+            known[i] = sum(token in index for token in tokens)
+            id_lists.append(map_tokens(tokens))
+        ids, counts = encode_batch(id_lists)
+        return ids, counts, known

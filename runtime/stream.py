@@ -24,7 +24,7 @@ from .classifier import Classifier, load
 from .errors import DanpackError
 from .formats import choose_format
 from .stream_lines import read_batches
-from .stream_records import JsonlFormatter, TsvFormatter, make_parser
+from .stream_records import JsonlFormatter, Skipped, TsvFormatter, make_parser
 
 PROG = "danpack-run"
 FORMATS = ("jsonl", "tsv")
@@ -53,6 +53,7 @@ class StreamConfig:
     max_wait_ms: float = 5.0  # answer a partial batch once its oldest line waited this long for company
     max_line_bytes: int = 1 << 20  # longer lines become error records; their bytes are skipped, not held
     classify_empty: bool = False  # plain text: classify an empty line as "" instead of an error record
+    skip_empty: bool = False  # an empty line gets a "skipped" record instead of an error record
 
     def __post_init__(self) -> None:
         def positive(name: str, value) -> None:
@@ -73,6 +74,8 @@ class StreamConfig:
             raise StreamError(f"the id field and the text field are both {self.id_field!r}; name two different fields")
         if self.header and self.output != "tsv":
             raise StreamError("a header line exists only for TSV output (--format tsv)")
+        if self.classify_empty and self.skip_empty:
+            raise StreamError("an empty line is either classified or skipped: choose --classify-empty or --skip-empty")
 
 
 @dataclass(frozen=True)
@@ -146,7 +149,8 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
     if config.top_k is not None and config.top_k > len(classifier.labels):
         raise StreamError(f"top-k {config.top_k} is more than the bundle's {len(classifier.labels)} labels "
                           f"({', '.join(classifier.labels)})")
-    parse = make_parser(config.jsonl, config.text_field, config.max_line_bytes, config.classify_empty)
+    parse = make_parser(config.jsonl, config.text_field, config.max_line_bytes, config.classify_empty,
+                        config.skip_empty)
     if config.output == "tsv":
         formatter = TsvFormatter(classifier.labels, config.top_k, config.id_field, config.header)
     else:
@@ -164,13 +168,14 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
         for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes, wake_fd):
             parsed = [parse(raw, records + i) for i, raw in enumerate(lines, start=1)]
             texts = [p[1] for p in parsed if p[3] is None]
-            probs = classifier.predict_proba(texts) if texts else None  # (N, C)
-            data = formatter.format(parsed, probs)
+            _, probs, known = classifier.predict_known(texts) if texts else (None, None, None)  # (N, C), (N,)
+            data = formatter.format(parsed, probs, known)
+            skipped = sum(isinstance(p[3], Skipped) for p in parsed)
             with _stop_signals_held():  # one write and one flush per batch
                 sink.write(data)
                 sink.flush()
                 records += len(parsed)
-                errors += len(parsed) - len(texts)
+                errors += len(parsed) - len(texts) - skipped
                 batches += 1
     except KeyboardInterrupt as e:
         raise StreamInterrupted(stats(), signal.SIGTERM if isinstance(e, Terminated) else signal.SIGINT) from None
@@ -183,17 +188,20 @@ DESCRIPTION = "Classify texts with a danpack bundle: one answer per input line, 
 
 EPILOG = """\
 output records (JSONL, the default):
-  {"line":3,"id":"c-17","label":"positive","probs":{"negative":0.07,"positive":0.93}}
+  {"line":3,"id":"c-17","label":"positive","probs":{"negative":0.07,"positive":0.93},
+   "known_tokens":5,"no_known_token":false}
   "line" is the 1-based input line; other JSONL input fields pass through after it (an input field
   named line, label, probs or error comes out as input_<name>); "probs" lists every label in label
   order, or with --top-k the k most probable, most probable first. Probabilities are float32 written
-  in the shortest form that reads back as the same float32.
+  in the shortest form that reads back as the same float32. "known_tokens" counts the text's tokens
+  that have a row of their own in the bundle; "no_known_token":true means the model knew none of them
+  and answered as for an empty text: route such a text to a fallback rather than trust its label.
   A record that cannot be classified gets, in its place: {"line":4,"error":"reason"}
   (plus its passthrough fields when it was a JSON object).
 
 output records (--format tsv):
   columns line, [id: with --jsonl, the --id-field value], label, probability,
-  [label_2, probability_2 ... with --top-k], error;
+  [label_2, probability_2 ... with --top-k], known_tokens, error;
   an error row leaves label and probability empty; tab, newline, CR and backslash inside a value
   are written as \\t \\n \\r \\\\.
 
@@ -278,8 +286,11 @@ def build_parser() -> argparse.ArgumentParser:
                         f"(default: {StreamConfig.max_wait_ms:g}; 0 answers whatever has arrived)")
     p.add_argument("--max-line-bytes", metavar="N", type=_positive_int, default=StreamConfig.max_line_bytes,
                    help=f"longer lines get an error record and are skipped (default: {StreamConfig.max_line_bytes})")
-    p.add_argument("--classify-empty", action="store_true",
-                   help="classify an empty line as the empty text instead of giving it an error record")
+    empty = p.add_mutually_exclusive_group()
+    empty.add_argument("--classify-empty", action="store_true",
+                       help="classify an empty line as the empty text instead of giving it an error record")
+    empty.add_argument("--skip-empty", action="store_true",
+                       help='answer an empty line with {"line":N,"skipped":"empty line"} (not an error: exit 0)')
     p.add_argument("--lenient", action="store_true", help="exit 0 even when some records got error records")
     p.add_argument("--verbose", action="store_true",
                    help="print a summary to stderr at the end: records, errors, lines per second")
@@ -310,7 +321,7 @@ def _config_from_args(parser: argparse.ArgumentParser, args: argparse.Namespace)
         return StreamConfig(jsonl=args.jsonl, text_field="text" if args.text_field is None else args.text_field,
                             id_field=id_field, output=args.format, top_k=args.top_k, header=args.header,
                             batch=args.batch, max_wait_ms=args.max_wait_ms, max_line_bytes=args.max_line_bytes,
-                            classify_empty=args.classify_empty)
+                            classify_empty=args.classify_empty, skip_empty=args.skip_empty)
     except StreamError as e:
         parser.error(str(e))
 

@@ -16,8 +16,10 @@ import numpy as np
 
 from .stream_lines import OVERLONG
 
+EMPTY = "empty line"
 BOM = b"\xef\xbb\xbf"  # UTF-8 byte order mark some editors put at the start of a file
-RESERVED = frozenset(("line", "label", "probs", "error"))  # output keys; input fields so named come out as "input_<name>"
+# output keys; input fields so named come out as "input_<name>"
+RESERVED = frozenset(("line", "label", "probs", "known_tokens", "no_known_token", "error", "skipped"))
 JSON_TYPES = {dict: "an object", list: "an array", str: "a string", int: "a number", float: "a number",
               bool: "a boolean", type(None): "null"}
 MAX_INT_DIGITS = 4000  # longer JSON integers are refused (Python's own int() stops at 4300 digits)
@@ -25,6 +27,11 @@ TSV_ESCAPES = str.maketrans({"\\": "\\\\", "\t": "\\t", "\n": "\\n", "\r": "\\r"
 
 _MISSING = object()  # a JSON object without the text field
 Parsed = tuple  # (line: int, text: str | None, extra: dict | None, error: str | None)
+
+
+class Skipped(str):
+    """The `error` slot of a record passed over on request (an empty line with --skip-empty): answered with a
+    "skipped" record, not counted as an error."""
 
 
 def _reject_constant(name: str) -> None:
@@ -58,7 +65,7 @@ def _check_bytes(raw, line: int, limit: int, allow_empty: bool) -> tuple[str | N
     if line == 1 and raw[:3] == BOM:
         raw = raw[3:]
     if not raw and not allow_empty:
-        return None, "empty line"
+        return None, EMPTY
     if len(raw) > limit:
         return None, f"line longer than {limit} bytes (skipped)"
     if b"\0" in raw:  # binary data or a damaged file, never a driver's comment
@@ -69,15 +76,20 @@ def _check_bytes(raw, line: int, limit: int, allow_empty: bool) -> tuple[str | N
         return None, f"not valid UTF-8 (byte {e.start + 1})"
 
 
-def make_parser(jsonl: bool, text_field: str, limit: int, classify_empty: bool) -> Callable[[object, int], Parsed]:
+def make_parser(jsonl: bool, text_field: str, limit: int, classify_empty: bool,
+                skip_empty: bool = False) -> Callable[[object, int], Parsed]:
     """A function (raw line, line number) -> parsed record, for plain-text or JSONL input."""
 
     def parse_plain(raw, line: int) -> Parsed:
         text, error = _check_bytes(raw, line, limit, classify_empty)
+        if skip_empty and error == EMPTY:
+            return line, None, None, Skipped(EMPTY)
         return line, text, None, error
 
     def parse_jsonl(raw, line: int) -> Parsed:
         doc, error = _check_bytes(raw, line, limit, False)
+        if skip_empty and error == EMPTY:
+            return line, None, None, Skipped(EMPTY)
         if error is not None:
             return line, None, None, error
         try:
@@ -141,26 +153,31 @@ class JsonlFormatter:
         self.keys = [name + ":" for name in self.names]
         self.top_k = top_k
 
-    def format(self, parsed: Sequence[Parsed], probs: np.ndarray | None) -> bytes:
-        """Output bytes of a batch; `probs` (N, C) holds the rows of the N records without error, in order."""
+    def format(self, parsed: Sequence[Parsed], probs: np.ndarray | None, known: np.ndarray | None = None) -> bytes:
+        """Output bytes of a batch; `probs` (N, C) and `known` (N,) hold the rows of the N records without error,
+        in order."""
         out = []
         if probs is not None:
             strs = probs.astype(str).tolist()  # (N, C) shortest strings that read back as the same float32
             order = _rank(probs, self.top_k) if self.top_k else None
             best = probs.argmax(axis=1).tolist() if order is None else [o[0] for o in order]  # (N,)
+            counts = [0] * len(strs) if known is None else known.tolist()  # (N,)
         keys, names, add = self.keys, self.names, operator.add
         j = 0
         for line, _text, extra, error in parsed:
             head = f'{{"line":{line}{_extra_json(extra) if extra else ""}'
             if error is not None:
-                out.append(f'{head},"error":{json.dumps(error, ensure_ascii=False)}}}\n')
+                kind = "skipped" if isinstance(error, Skipped) else "error"
+                out.append(f'{head},"{kind}":{json.dumps(error, ensure_ascii=False)}}}\n')
                 continue
             row = strs[j]
             if order is None:
                 body = ",".join(map(add, keys, row))
             else:
                 body = ",".join([keys[c] + row[c] for c in order[j]])
-            out.append(f'{head},"label":{names[best[j]]},"probs":{{{body}}}}}\n')
+            n = counts[j]
+            out.append(f'{head},"label":{names[best[j]]},"probs":{{{body}}},"known_tokens":{n},'
+                       f'"no_known_token":{"false" if n else "true"}}}\n')
             j += 1
         # a lone surrogate (from a \\ud800 escape in the input) goes out as the same JSON escape
         return "".join(out).encode("utf-8", "backslashreplace")
@@ -177,25 +194,28 @@ class TsvFormatter:
         columns += ["label", "probability"]
         for i in range(2, self.k + 1):
             columns += [f"label_{i}", f"probability_{i}"]
-        columns.append("error")
+        columns += ["known_tokens", "error"]
         self.header = ("\t".join(columns) + "\n").encode("utf-8", "backslashreplace") if header else b""
-        self.blank = "\t" * (2 * self.k)  # empty label/probability cells of an error row
+        self.blank = "\t" * (2 * self.k + 1)  # empty label/probability/known cells of an error row
 
-    def format(self, parsed: Sequence[Parsed], probs: np.ndarray | None) -> bytes:
-        """Output bytes of a batch; `probs` (N, C) holds the rows of the N records without error, in order."""
+    def format(self, parsed: Sequence[Parsed], probs: np.ndarray | None, known: np.ndarray | None = None) -> bytes:
+        """Output bytes of a batch; `probs` (N, C) and `known` (N,) hold the rows of the N records without error,
+        in order. A skipped record's error cell reads "skipped: <reason>"."""
         out = []
         if probs is not None:
             strs = probs.astype(str).tolist()  # (N, C)
             order = _rank(probs, self.k) if self.k > 1 else [[i] for i in probs.argmax(axis=1).tolist()]  # (N, k)
+            counts = [0] * len(strs) if known is None else known.tolist()  # (N,)
         names, id_field = self.names, self.id_field
         j = 0
         for line, _text, extra, error in parsed:
             head = str(line) if id_field is None else f"{line}\t{_tsv_value(extra.get(id_field)) if extra else ''}"
             if error is not None:
-                out.append(f"{head}{self.blank}\t{error.translate(TSV_ESCAPES)}\n")
+                reason = f"skipped: {error}" if isinstance(error, Skipped) else error
+                out.append(f"{head}{self.blank}\t{reason.translate(TSV_ESCAPES)}\n")
                 continue
             row = strs[j]
             cells = "\t".join([f"{names[c]}\t{row[c]}" for c in order[j]])
-            out.append(f"{head}\t{cells}\t\n")
+            out.append(f"{head}\t{cells}\t{counts[j]}\t\n")
             j += 1
         return "".join(out).encode("utf-8", "backslashreplace")

@@ -134,7 +134,10 @@ def test_clean_stream_equals_predict_proba(clf, texts):
     got = np.stack([probs_of(r) for r in records])  # (N, C)
     np.testing.assert_allclose(got, expected, rtol=0, atol=BATCH_TOLERANCE)
     assert [r["label"] for r in records] == clf.predict(texts)
-    assert all(set(r) == {"line", "label", "probs"} for r in records)
+    assert all(set(r) == {"line", "label", "probs", "known_tokens", "no_known_token"} for r in records)
+    known = clf.predict_known(texts)[2]  # (N,) the API's own count
+    assert [r["known_tokens"] for r in records] == known.tolist()
+    assert [r["no_known_token"] for r in records] == (known == 0).tolist()
 
 
 def test_batch_of_one_gives_exactly_predict_proba(clf, texts):
@@ -371,7 +374,8 @@ def test_passthrough_fields(clf):
     record = {"id": "c-17", "ts": 1_901_234_567.25, "meta": {"station": "S-07", "bay": [1, 2]},
               "note": "schnell ⚡", "label": "positive", "line": 99, "text": "w1 w2"}
     out = run_stream(clf, json.dumps(record).encode() + b"\n", jsonl=True)[0][0]
-    assert list(out) == ["line", "id", "ts", "meta", "note", "input_label", "input_line", "label", "probs"]
+    assert list(out) == ["line", "id", "ts", "meta", "note", "input_label", "input_line", "label", "probs",
+                         "known_tokens", "no_known_token"]
     assert out["line"] == 1 and out["input_line"] == 99 and out["input_label"] == "positive"
     assert {k: out[k] for k in ("id", "ts", "meta", "note")} == {k: record[k] for k in ("id", "ts", "meta", "note")}
     # a lone surrogate escape comes back as the same escape (valid JSON, valid UTF-8 bytes)
@@ -399,16 +403,40 @@ def test_tsv_output(clf):
     data = lines_bytes([b'{"id": "a\\tb", "text": "w1 w2"}', b"[1]", b'{"text": "w3"}', b'{"id": 5}'])
     raw = run_stream_tsv(clf, data, jsonl=True, id_field="id", header=True, top_k=2)
     rows = [line.split("\t") for line in raw.decode().split("\n")[:-1]]
-    assert rows[0] == ["line", "id", "label", "probability", "label_2", "probability_2", "error"]
-    assert all(len(row) == 7 for row in rows)
+    assert rows[0] == ["line", "id", "label", "probability", "label_2", "probability_2", "known_tokens", "error"]
+    assert all(len(row) == 8 for row in rows)
     full = run_stream(clf, data, jsonl=True)[0]
     first = sorted(full[0]["probs"].items(), key=lambda kv: -kv[1])[:2]
-    assert rows[1] == ["1", "a\\tb", first[0][0], repr(first[0][1]), first[1][0], repr(first[1][1]), ""]
-    assert rows[2] == ["2", "", "", "", "", "", "JSON value is an array, expected an object"]
-    assert rows[3][:3] == ["3", "", full[2]["label"]] and rows[3][-1] == ""
-    assert rows[4] == ["4", "5", "", "", "", "", "field 'text' is missing"]
+    assert rows[1] == ["1", "a\\tb", first[0][0], repr(first[0][1]), first[1][0], repr(first[1][1]), "2", ""]
+    assert rows[2] == ["2", "", "", "", "", "", "", "JSON value is an array, expected an object"]
+    assert rows[3][:3] == ["3", "", full[2]["label"]] and rows[3][-2:] == ["1", ""]
+    assert rows[4] == ["4", "5", "", "", "", "", "", "field 'text' is missing"]
     plain = run_stream_tsv(clf, b"w1 w2\n\n").decode().split("\n")[:-1]
-    assert plain == [f"1\t{full[0]['label']}\t{full[0]['probs'][full[0]['label']]!r}\t", "2\t\t\tempty line"]
+    assert plain == [f"1\t{full[0]['label']}\t{full[0]['probs'][full[0]['label']]!r}\t2\t", "2\t\t\t\tempty line"]
+
+
+def test_texts_the_bundle_knows_nothing_of_are_flagged(clf):
+    """An empty text, spaces, or only unknown words: the model answers as for an empty text, so every answer says
+    how many tokens the bundle knew, and such a text is never certified (API and stream)."""
+    texts = ["w1 w2 zzqx", "zzqx blorf", "   ", ""]
+    labels, probs, known = clf.predict_known(texts)
+    assert known.tolist() == [2, 0, 0, 0]
+    assert labels == clf.predict(texts) and np.array_equal(probs, clf.predict_proba(texts))
+    assert not clf.predict_certified(texts)[2][1:].any()
+    records = run_stream(clf, b"w1 w2 zzqx\nzzqx blorf\n   \n", batch=2)[0]
+    assert [(r["known_tokens"], r["no_known_token"]) for r in records] == [(2, False), (0, True), (0, True)]
+
+
+def test_skip_empty_passes_blank_lines_through(clf):
+    records, stats, _ = run_stream(clf, b"w1\n\nw2\n", skip_empty=True)
+    assert [r["line"] for r in records] == [1, 2, 3] and records[1] == {"line": 2, "skipped": "empty line"}
+    assert stats.records == 3 and stats.errors == 0
+    jsonl = run_stream(clf, b'{"text": "w1", "id": 1}\n\n', jsonl=True, skip_empty=True)[0]
+    assert jsonl[1] == {"line": 2, "skipped": "empty line"}
+    assert run_stream(clf, b"w1\n\n")[0][1] == {"line": 2, "error": "empty line"}  # the default stays an error
+    assert run_stream_tsv(clf, b"\n", skip_empty=True).decode() == "1\t\t\t\tskipped: empty line\n"
+    with pytest.raises(StreamError):
+        StreamConfig(classify_empty=True, skip_empty=True)
 
 
 def run_stream_tsv(clf, data: bytes, **options) -> bytes:

@@ -266,7 +266,7 @@ def certify_texts(model: FloatModel, bundle: Bundle | str | os.PathLike, texts: 
         bounds = logit_bounds(float_bound, ids, counts)  # (b, C)
         top2 = np.sort(float_logits.astype(np.float64), axis=1)[:, -2:]  # (b, 2)
         parts.append((
-            covered & certify_margins(float_logits, bounds),
+            covered & (counts > 0) & certify_margins(float_logits, bounds),  # as certify_packed: no token, no claim
             certify_packed(runtime_bound, packed_logits, ids, counts, covered),
             covered, float_logits.argmax(axis=1), packed_logits.argmax(axis=1), top2[:, 1] - top2[:, 0], bounds,
         ))

@@ -128,7 +128,7 @@ class CheckResult:
     """Everything the reports show: flat figures, per-class recall, disagreements, inputs, warnings."""
 
     figures: dict  # key -> float | int | None, keys of FIGURES
-    per_class: list  # [{label, support, recall_float, recall_packed}] (empty when unlabelled)
+    per_class: list  # [{label, support, recall_float, recall_bundle}] (empty when unlabelled)
     disagreements: list  # top texts where the two predictions differ (see docs/check.md)
     inputs: dict  # bundle / reference / eval descriptions (paths, sha256, labels, sizes)
     settings: dict  # options that shaped the figures (seed, resamples, epsilon, latency settings)
