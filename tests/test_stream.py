@@ -580,6 +580,18 @@ def test_input_format_follows_the_one_rule(monkeypatch, capsys, bundle, tmp_path
     assert e.value.code == 2
 
 
+def test_command_line_flags_unknown_texts_and_skips_blank_lines(monkeypatch, capsys, bundle, tmp_path):
+    path = tmp_path / "in.txt"
+    path.write_bytes(b"w1 w2\n\nzzqx\n")
+    code, out, err = cli(monkeypatch, capsys, [str(bundle), str(path), "--skip-empty"])
+    got = [json.loads(line) for line in out.splitlines()]
+    assert code == 0 and err == ""
+    assert [(r.get("known_tokens"), r.get("no_known_token"), r.get("skipped")) for r in got] == [
+        (2, False, None), (None, None, "empty line"), (0, True, None)]
+    code, out, _ = cli(monkeypatch, capsys, [str(bundle), str(path)])
+    assert code == 1 and json.loads(out.splitlines()[1]) == {"line": 2, "error": "empty line"}
+
+
 def test_unreadable_bundle_and_input_exit_2(monkeypatch, capsys, bundle, tmp_path):
     damaged = tmp_path / "damaged.dpk"
     damaged.write_bytes(bundle.read_bytes()[:-10])

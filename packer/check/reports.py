@@ -157,7 +157,8 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
         covered = f["certified_share_of_covered"]
         rows.append(("certified unchanged by int8", "", format_value(f["certified_share"], "share"),
                      ("" if covered is None else f"{format_value(covered, 'share')} of texts with all tokens kept; ")
-                     + f"device certifies {format_value(f['runtime_certified_share'], 'share')}"))
+                     + f"the device alone (from the bundle's own scores) certifies "
+                     f"{format_value(f['runtime_certified_share'], 'share')}"))
     rows.append(("size", _size(f["float_bytes"]), _size(f["bundle_bytes"]), f"{f['size_ratio']:.2f}x smaller"))
     if f.get("latency_ratio") is not None:
         lat = s.get("latency") or {}
