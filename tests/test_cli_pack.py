@@ -361,7 +361,7 @@ def test_both_command_lines_name_choices_the_same_way(capsys):
         run_main(["--help"])
     run_help = capsys.readouterr().out
     assert "--format jsonl|tsv" in run_help and "--backend onnxruntime|numpy" in run_help
-    assert "{" not in run_help.split("output records")[0]
+    assert not re.search(r"\{[a-z,]+\}", run_help)  # argparse's own {a,b} choice notation
     assert "--backend onnxruntime|numpy" in invoke("check", "--help").output
 
 

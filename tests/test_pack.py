@@ -246,6 +246,7 @@ class _FailingFile:
 def test_failed_write_keeps_the_old_bundle_and_leaves_no_temp_file(packed_inputs, tmp_path, monkeypatch, failure):
     _, model_dir, corpus = packed_inputs
     out = tmp_path / "out" / "model.danpack"
+    out.parent.mkdir()
     old = pack_model(model_dir, out, PackOptions()).data
     before = sorted(os.listdir(out.parent))
     if failure == "write":
