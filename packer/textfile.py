@@ -33,6 +33,13 @@ def format_warning(path: str | os.PathLike) -> str | None:
 
 def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | None = None) -> Iterator[dict]:
     """Yield one dict per record, each with a str under `text_field`; raise TextFileError on bad input."""
+    for _, record in iter_numbered_records(path, text_field, fmt):
+        yield record
+
+
+def iter_numbered_records(path: str | os.PathLike, text_field: str = "text",
+                          fmt: str | None = None) -> Iterator[tuple[int, dict]]:
+    """(line where the record starts, record) pairs, so later checks can name the line of a bad value."""
     path = Path(path)
     fmt = fmt or detect_format(path)
     if fmt not in ("lines", "jsonl", "csv", "tsv"):
@@ -46,8 +53,8 @@ def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | N
     with handle:
         lines = _decode_lines(path, handle)
         if fmt == "lines":
-            for line in lines:
-                yield {text_field: line.rstrip("\r\n")}
+            for number, line in enumerate(lines, start=1):
+                yield number, {text_field: line.rstrip("\r\n")}
         elif fmt == "jsonl":
             yield from _iter_jsonl(path, lines, text_field)
         else:
@@ -67,7 +74,7 @@ def _decode_lines(path: Path, handle) -> Iterator[str]:
                                 "line); save the file as UTF-8") from e
 
 
-def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[dict]:
+def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[tuple[int, dict]]:
     for number, line in enumerate(lines, start=1):
         if not line.strip():
             continue
@@ -80,10 +87,10 @@ def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[d
         if not isinstance(record.get(text_field), str):
             raise TextFileError(f"{path}:{number}: field {text_field!r} is missing or not a string; "
                                 f"fields present: {sorted(record)} (choose the field with --text-field)")
-        yield record
+        yield number, record
 
 
-def _iter_table(path: Path, lines: Iterator[str], text_field: str, delimiter: str) -> Iterator[dict]:
+def _iter_table(path: Path, lines: Iterator[str], text_field: str, delimiter: str) -> Iterator[tuple[int, dict]]:
     """Rows of a CSV/TSV file with a header line, as dicts. Strict quoting (RFC 4180): an opened quote must
     close, or one unterminated quote would swallow the rest of the file as a single text."""
     kind = "CSV" if delimiter == "," else "TSV"
@@ -105,7 +112,7 @@ def _iter_table(path: Path, lines: Iterator[str], text_field: str, delimiter: st
                 continue
             if len(fields) != len(header):
                 raise TextFileError(f"{path}:{first}: has {len(fields)} columns where the header has {len(header)}")
-            yield dict(zip(header, fields))
+            yield first, dict(zip(header, fields))
     except csv.Error as e:
         raise TextFileError(f"{path}:{first}: malformed {kind} ({e}); a field that opens a quote must close it, "
                             'and a quote inside a quoted field is written twice ("")') from e

@@ -82,6 +82,11 @@ PRESETS = {
         f"[^\\W_](?:[^\\W_]|[{MARKS}])*(?:[{APOSTROPHES}\\-](?:[^\\W_]|[{MARKS}])+)*"
         f"|[^\\w\\s_{MARKS}{INVISIBLE}\\ufe00-\\ufe0f\\ufffd]"
     ),
+    # spaces-v1: every run of non-whitespace is a token (str.split() in a training script).
+    "spaces-v1": r"\S+",
+    # wordpunct-v1: runs of word characters (letters, digits, "_"; combining marks split), or any
+    # single other non-space character: re.findall(r"\w+|[^\w\s]", text), common in PyTorch training scripts.
+    "wordpunct-v1": r"\w+|[^\w\s]",
 }
 DEFAULT_PATTERN = "words-v1"
 
@@ -91,6 +96,7 @@ DEFAULT_PATTERN = "words-v1"
 # against the full patterns on arbitrary ASCII.
 ASCII_PRESETS = {
     "words-v1": r"[A-Za-z0-9]+(?:['\-][A-Za-z0-9]+)*|[!-/:-@\[-^`{-~]",
+    "wordpunct-v1": r"[0-9A-Za-z_]+|[!-/:-@\[-^`{-~\x00-\x08\x0e-\x1b\x7f]",
 }
 
 NORMALIZATIONS = ("NFC", "NFKC", "NFD", "NFKD", "none")

@@ -205,9 +205,9 @@ def test_eval_set_formats_and_label_detection(tmp_path):
 
 
 @pytest.mark.parametrize("content,needle", [
-    ('{"text": "a", "label": "angry"}\n', "record 1: label 'angry' is not one of the model's labels"),
+    ('{"text": "a", "label": "angry"}\n', "1 of 1 records have a label that is not one of the model's labels"),
     ('{"text": "a", "label": "negative"}\n{"text": "b"}\n', "record 2 has no field 'label'"),
-    ('{"text": "a", "label": null}\n', "label None is not one of"),
+    ('{"text": "a", "label": null}\n', "line 1: None"),
     ("", "holds no records"),
 ])
 def test_eval_set_errors_name_file_and_record(tmp_path, content, needle):
@@ -514,7 +514,7 @@ def test_cli_unreadable_inputs_exit_2(case, tmp_path):
     bad = tmp_path / "bad.jsonl"
     bad.write_text('{"text": "w1 w2", "label": "furious"}\n', encoding="utf-8")
     res = invoke(case.good, "--reference", case.model_dir, "--eval", bad, *NO_LATENCY)
-    assert res.exit_code == 2 and "'furious' is not one of the model's labels" in res.stderr
+    assert res.exit_code == 2 and "line 1: 'furious'" in res.stderr
     res = invoke(case.good, "--reference", tmp_path, "--eval", case.eval_path, *NO_LATENCY)
     assert res.exit_code == 2 and "dan.json" in res.stderr
     res = invoke(case.good, "--reference", case.model_dir, "--eval", case.unlabelled, *NO_LATENCY,

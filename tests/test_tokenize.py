@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import re
 import unicodedata
 
 import pytest
@@ -519,3 +520,28 @@ def test_lazy_split_of_long_texts_equals_the_full_split(text, cap, pattern):
     # texts longer than max_tokens characters take the lazy path; its tokens must be the full split's prefix
     capped = Tokenizer(TokenizerSpec(pattern=pattern, max_tokens=cap))
     assert capped.tokenize(text) == capped.split(capped.normalize(text))[:cap]
+
+
+# --- the presets users train with -------------------------------------------------------------
+
+@FAST
+@given(st.one_of(tricky_text, any_text))
+def test_wordpunct_preset_is_the_common_training_split(text):
+    # source: Python's re, as a PyTorch training script calls it: re.findall(r"\w+|[^\w\s]", text.lower())
+    tok = Tokenizer(TokenizerSpec(pattern="wordpunct-v1", normalization="none", case="lower", max_tokens=10**6))
+    assert tok.tokenize(text) == re.findall(r"\w+|[^\w\s]", text.lower())
+
+
+@FAST
+@given(st.one_of(tricky_text, any_text))
+def test_spaces_preset_is_str_split(text):
+    tok = Tokenizer(TokenizerSpec(pattern="spaces-v1", normalization="none", case="keep", max_tokens=10**6))
+    assert tok.tokenize(text) == text.split()
+
+
+@pytest.mark.parametrize("pattern, text, tokens", [
+    ("wordpunct-v1", "I doesn't know 🙂\ufe0f", ["i", "doesn", "'", "t", "know", "🙂", "\ufe0f"]),
+    ("spaces-v1", "I doesn't know!", ["i", "doesn't", "know!"]),
+])
+def test_presets_on_examples(pattern, text, tokens):
+    assert Tokenizer(TokenizerSpec(pattern=pattern, normalization="none")).tokenize(text) == tokens

@@ -24,9 +24,12 @@ from danpack.files import file_sha256
 from danpack.model import FloatModel, load_model, model_bytes, model_digest
 from danpack.pack.quantize import dequantize_rows
 from danpack.progress import Steps
+from danpack.runtime.tokenize import Tokenizer
 from danpack.runtime.errors import DanpackError
-from danpack.textfile import iter_records
+from danpack.textfile import iter_numbered_records
 
+REFERENCE_TOLERANCE = 1e-5  # float reading vs the framework's probabilities: float32 rounding is ~1e-7
+SHOWN_BAD_LABELS = 5  # bad eval labels listed (with line numbers) before exit 2
 KL_EPSILON = 1e-12  # added to both distributions before the log: keeps KL finite when a probability underflows
 DEFAULT_LABEL_FIELD = "label"  # the label field looked for when --label-field is not given
 
@@ -80,7 +83,15 @@ FIGURES: dict[str, FigureInfo] = {
     "throughput_float": FigureInfo("batched throughput, float ONNX", "rate"),
     "throughput_bundle": FigureInfo("batched throughput, bundle", "rate"),
     "throughput_ratio": FigureInfo("throughput ratio (bundle / float)", "ratio"),
+    # with --reference-probs: the user's framework (PyTorch, ...) as the reference
+    "reference_accuracy": FigureInfo("accuracy of the framework's outputs", "share"),
+    "reference_accuracy_drop_points": FigureInfo("accuracy drop (framework - bundle)", "points"),
+    "reference_agreement": FigureInfo("prediction agreement, framework vs bundle", "share"),
+    "reference_float_agreement": FigureInfo("prediction agreement, framework vs float reading", "share"),
+    "reference_float_max_abs_diff": FigureInfo("largest probability difference, framework vs float reading", "prob"),
+    "reference_float_mismatches": FigureInfo("texts where the float reading differs from the framework", "count"),
 }
+REFERENCE_KEYS = tuple(k for k in FIGURES if k.startswith("reference_"))
 LATENCY_KEYS = tuple(k for k in FIGURES if k.startswith(("latency_", "throughput_")))
 LABEL_KEYS = tuple(k for k in FIGURES if k.startswith(("accuracy_", "only_", "mcnemar")))
 
@@ -99,6 +110,10 @@ class CheckOptions:
     show_disagreements: int = 5  # texts listed where the two predictions differ
     tokens_per_disagreement: int = 8  # tokens listed per such text, largest mean shift first
     allow_other_reference: bool = False  # compare with a float model the bundle was not packed from (a warning)
+    label_map: tuple[tuple[str, str], ...] = ()  # (the eval file's spelling, the model's label) pairs
+    reference_probs: str | None = None  # JSONL of the framework's own outputs, one record per eval record
+    reference_tolerance: float = REFERENCE_TOLERANCE  # largest probability difference counted as agreeing
+    token_sample: str | None = None  # JSONL of texts and the user's tokens or ids, reproduced before the check
 
     def __post_init__(self) -> None:
         if self.batch_size < 1:
@@ -234,19 +249,110 @@ def kl_divergence(p: np.ndarray, q: np.ndarray, eps: float = KL_EPSILON) -> np.n
 
 # ---- inputs -------------------------------------------------------------------------------------
 
+def parse_label_map(spec: str | None, labels: Sequence[str]) -> tuple[tuple[str, str], ...]:
+    """--label-map: a file (JSON object, or one `spelling=label` / tab-separated pair per line) or inline
+    `a=b,c=d`; every target must be one of the model's labels."""
+    if not spec:
+        return ()
+    path = Path(spec)
+    if path.is_file():
+        import json
+
+        try:
+            text = path.read_text(encoding="utf-8")
+        except (OSError, UnicodeDecodeError) as e:
+            raise CheckError(f"--label-map {path}: cannot be read as UTF-8 text ({e})") from e
+        where = str(path)
+        if text.lstrip().startswith("{"):
+            try:
+                obj = json.loads(text)
+            except json.JSONDecodeError as e:
+                raise CheckError(f"{path}: not valid JSON ({e.msg}); give an object {{\"spelling\": \"label\"}}") from e
+            pairs = [(str(k), v) for k, v in obj.items()]
+        else:
+            pairs = []
+            for number, line in enumerate(text.splitlines(), start=1):
+                if not line.strip():
+                    continue
+                key, sep, value = line.partition("\t") if "\t" in line else line.partition("=")
+                if not sep:
+                    raise CheckError(f"{path}:{number}: expected `spelling=label` (or a tab between them), "
+                                     f"found {line[:60]!r}")
+                pairs.append((key.strip(), value.strip()))
+    else:
+        where = f"--label-map {spec!r}"
+        pairs = []
+        for item in spec.split(","):
+            key, sep, value = item.partition("=")
+            if not sep:
+                raise CheckError(f"{where}: item {item!r} is not `spelling=label`; e.g. --label-map 0=ham,1=spam "
+                                 "(or give a file)")
+            pairs.append((key.strip(), value.strip()))
+    wrong = [(k, v) for k, v in pairs if v not in labels]
+    if wrong:
+        raise CheckError(f"{where}: maps {wrong[0][0]!r} to {wrong[0][1]!r}, which is not one of the model's labels "
+                         f"{list(labels)}")
+    return tuple(pairs)
+
+
+def resolve_label(value: object, labels: Sequence[str], label_map: dict[str, str]) -> str | None:
+    """A label as a user wrote it -> the model's label, or None. An integer (or, when no label is spelled with
+    digits, a string of digits, as in CSV) indexes the model's labels in output order."""
+    if isinstance(value, bool) or not isinstance(value, (int, str)):
+        return None
+    key = str(value)
+    if key in label_map:
+        return label_map[key]
+    if isinstance(value, str) and value in labels:
+        return value
+    digits = isinstance(value, int) or (value.isdecimal() and value.isascii()
+                                        and not any(label.isdecimal() for label in labels))
+    if digits and 0 <= int(value) < len(labels):
+        return labels[int(value)]
+    return None
+
+
+def _near_miss(value: object, labels: Sequence[str]) -> str:
+    """A hint for one bad label: a case or spacing difference, or the index range."""
+    if isinstance(value, int) and not isinstance(value, bool):
+        return f"integer labels index the model's labels 0..{len(labels) - 1}"
+    if isinstance(value, str):
+        close = [label for label in labels if label.casefold() == value.strip().casefold()]
+        if close:
+            return f"did you mean {close[0]!r}? pass --label-map '{value}={close[0]}'"
+    return ""
+
+
+def report_bad_labels(path: Path, bad: list[tuple[int, object]], labels: Sequence[str], total: int) -> str:
+    """One message for every bad label: the count, the first few with line numbers, and hints."""
+    lines = [f"{path}: {len(bad):,} of {total:,} records have a label that is not one of the model's labels "
+             f"{list(labels)} (integers index them in that order):"]
+    for line, value in bad[:SHOWN_BAD_LABELS]:
+        hint = _near_miss(value, labels)
+        lines.append(f"  line {line}: {value!r}" + (f" ({hint})" if hint else ""))
+    counts: dict[str, int] = {}
+    for _, value in bad:
+        counts[repr(value)] = counts.get(repr(value), 0) + 1
+    lines.append("spellings found: " + ", ".join(f"{k} x{v}" for k, v in sorted(counts.items(), key=lambda kv: -kv[1])[:8]))
+    lines.append("fix the labels, map them with --label-map 'yours=model,...', or pass the matching --reference model")
+    return "\n".join(lines)
+
+
 def read_eval_set(path: str | os.PathLike, labels: Sequence[str], text_field: str = "text",
-                  label_field: str | None = None) -> EvalSet:
+                  label_field: str | None = None, label_map: Sequence[tuple[str, str]] = ()) -> EvalSet:
     """Read texts (and labels, when the file has them) from JSONL, CSV or TSV.
 
     Without `label_field`, the field "label" is used when the first record has it. Every record
-    must then have a label, and each label must be one of `labels`.
+    must then have a label naming one of `labels` (after `label_map`), or an integer indexing them;
+    every bad label is counted and the first few reported together.
     """
     path = Path(path)
-    known = set(labels)
+    mapping = dict(label_map)
     texts: list[str] = []
     gold: list[str] = []
+    bad: list[tuple[int, object]] = []
     field_name = label_field
-    for number, record in enumerate(iter_records(path, text_field), start=1):
+    for number, (line, record) in enumerate(iter_numbered_records(path, text_field), start=1):
         if number == 1:
             if label_field is None:
                 field_name = DEFAULT_LABEL_FIELD if DEFAULT_LABEL_FIELD in record else None
@@ -257,19 +363,85 @@ def read_eval_set(path: str | os.PathLike, labels: Sequence[str], text_field: st
         if field_name is None:
             continue
         if field_name not in record:
-            raise CheckError(f"{path}: record {number} has no field {field_name!r} but record 1 has one; "
+            raise CheckError(f"{path}:{line}: record {number} has no field {field_name!r} but record 1 has one; "
                              "label every record or none")
-        value = record[field_name]
-        if isinstance(value, int) and not isinstance(value, bool):
-            value = str(value)
-        if not isinstance(value, str) or value not in known:
-            raise CheckError(f"{path}: record {number}: label {value!r} is not one of the model's labels "
-                             f"{list(labels)}; fix the label or pass the matching --reference model")
+        value = resolve_label(record[field_name], labels, mapping)
+        if value is None:
+            bad.append((line, record[field_name]))
         gold.append(value)
     if not texts:
         raise CheckError(f"{path}: holds no records; an evaluation set needs at least one text")
+    if bad:
+        raise CheckError(report_bad_labels(path, bad, labels, len(texts)))
     return EvalSet(tuple(texts), tuple(gold) if field_name is not None else None, str(path),
                    file_sha256(path), text_field, field_name)
+
+
+@dataclass(frozen=True)
+class FrameworkOutputs:
+    """The user's framework's own outputs on the eval texts: probabilities (model label order) or labels."""
+
+    probs: np.ndarray | None  # (N, C) float64, or None when only labels were given
+    predicted: np.ndarray  # (N,) int64 label index (argmax of probs when given)
+    path: str
+    sha256: str
+
+
+def read_reference_probs(path: str | os.PathLike, texts: Sequence[str], labels: Sequence[str],
+                         label_map: Sequence[tuple[str, str]] = ()) -> FrameworkOutputs:
+    """One JSONL record per eval record, same order: {"probs": [...]} in the model's label order, or
+    {"label": ...}; a "text" field, when present, must be the eval record's text."""
+    import json
+
+    path = Path(path)
+    mapping = dict(label_map)
+    rows: list[list[float] | None] = []
+    predicted: list[int] = []
+    try:
+        handle = open(path, encoding="utf-8")
+    except OSError as e:
+        raise CheckError(f"--reference-probs {path}: cannot be opened ({e})") from e
+    with handle:
+        number = 0
+        for line_no, line in enumerate(handle, start=1):
+            if not line.strip():
+                continue
+            try:
+                record = json.loads(line)
+            except json.JSONDecodeError as e:
+                raise CheckError(f"{path}:{line_no}: not valid JSON ({e.msg})") from e
+            if not isinstance(record, dict) or ("probs" not in record and "label" not in record):
+                raise CheckError(f"{path}:{line_no}: expected an object with 'probs' (the model's probabilities in "
+                                 f"label order {list(labels)}) or 'label'")
+            if number < len(texts) and isinstance(record.get("text"), str) and record["text"] != texts[number]:
+                raise CheckError(f"{path}:{line_no}: text {record['text'][:60]!r} is not eval record {number + 1}'s "
+                                 f"text {texts[number][:60]!r}; write one record per eval record, in the same order")
+            if "probs" in record:
+                p = record["probs"]
+                if (not isinstance(p, list) or len(p) != len(labels)
+                        or not all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+                                   for x in p)):
+                    raise CheckError(f"{path}:{line_no}: 'probs' must be {len(labels)} finite numbers (label order "
+                                     f"{list(labels)}), found {str(p)[:80]}")
+                if abs(sum(p) - 1.0) > 1e-3 or min(p) < 0:
+                    raise CheckError(f"{path}:{line_no}: 'probs' sum to {sum(p):.4g}; give probabilities "
+                                     "(softmax of the logits), not logits")
+                rows.append([float(x) for x in p])
+                predicted.append(int(np.argmax(p)))
+            else:
+                value = resolve_label(record["label"], labels, mapping)
+                if value is None:
+                    hint = _near_miss(record["label"], labels)
+                    raise CheckError(f"{path}:{line_no}: label {record['label']!r} is not one of the model's labels "
+                                     f"{list(labels)}" + (f" ({hint})" if hint else ""))
+                rows.append(None)
+                predicted.append(list(labels).index(value))
+            number += 1
+    if number != len(texts):
+        raise CheckError(f"{path}: has {number:,} records but the evaluation set has {len(texts):,}; write one "
+                         "record per eval record, in the same order")
+    probs = np.array(rows, dtype=np.float64) if all(r is not None for r in rows) else None  # (N, C)
+    return FrameworkOutputs(probs, np.array(predicted, dtype=np.int64), str(path), file_sha256(path))
 
 
 # ---- running both models ------------------------------------------------------------------------
@@ -459,6 +631,125 @@ def list_disagreements(texts, gold, labels, probs_float, probs_packed, view: Tok
     return out
 
 
+# ---- the user's framework as the reference -----------------------------------------------------
+
+DIAGNOSIS_TEXTS = 300  # differing texts (and as many agreeing ones) re-read under each candidate pipeline
+DIAGNOSIS_EXAMPLES = 3  # example texts named in the diagnosis
+
+
+def reference_figures(framework: FrameworkOutputs, probs_float: np.ndarray, probs_packed: np.ndarray,
+                      gold: np.ndarray | None, tolerance: float) -> tuple[dict, np.ndarray]:
+    """Bundle and float reading against the framework's outputs; also (N,) bool: float reading differs."""
+    pred_f, pred_p = probs_float.argmax(axis=1), probs_packed.argmax(axis=1)  # (N,)
+    figures = {"reference_agreement": float((pred_p == framework.predicted).mean()),
+               "reference_float_agreement": float((pred_f == framework.predicted).mean()),
+               "reference_float_max_abs_diff": None, "reference_accuracy": None,
+               "reference_accuracy_drop_points": None}
+    if framework.probs is not None:
+        diff = np.abs(probs_float.astype(np.float64) - framework.probs).max(axis=1)  # (N,)
+        differs = diff > tolerance
+        figures["reference_float_max_abs_diff"] = float(diff.max())
+    else:
+        differs = pred_f != framework.predicted
+    figures["reference_float_mismatches"] = int(np.count_nonzero(differs))
+    if gold is not None:
+        right_r, right_p = framework.predicted == gold, pred_p == gold
+        figures["reference_accuracy"] = float(right_r.mean())
+        figures["reference_accuracy_drop_points"] = 100.0 * float(right_r.mean() - right_p.mean())
+    return figures, differs
+
+
+def _matches(probs: np.ndarray, framework: FrameworkOutputs, idx: np.ndarray, tolerance: float) -> np.ndarray:
+    """(K,) bool: the candidate's (K, C) probabilities agree with the framework on texts `idx`."""
+    if framework.probs is not None:
+        return np.abs(probs.astype(np.float64) - framework.probs[idx]).max(axis=1) <= tolerance
+    return probs.argmax(axis=1) == framework.predicted[idx]
+
+
+def _padding_model(model: FloatModel) -> tuple[FloatModel, str] | None:
+    """The model with its dropped padding row back (a zero row) as the unknown-word row: how a pipeline that
+    sends unknown words to the padding index reads text. None when conversion dropped no row."""
+    dropped = (model.metadata.get("converted_from") or {}).get("dropped_rows") or []
+    if not dropped:
+        return None
+    token = dropped[0].get("token") or "<pad>"
+    if token in model.vocab:
+        return None
+    table = np.vstack([model.embedding, np.zeros((1, model.embedding.shape[1]), np.float32)])  # (V + 1, D)
+    import dataclasses
+
+    return dataclasses.replace(model, vocab=model.vocab + (token,), embedding=table, oov_policy="unk",
+                               unk_token=token), token
+
+
+def diagnose_reference(model: FloatModel, texts: Sequence[str], framework: FrameworkOutputs, differs: np.ndarray,
+                       tolerance: float) -> list[str]:
+    """Why danpack's float reading differs from the framework: the tokenizer, the unknown-word policy or the
+    padding row, found by re-reading the differing texts under each pipeline danpack could have been told."""
+    from danpack.pipeline import Pipeline, candidate_pipelines, first_difference, show_tokens
+
+    bad = np.flatnonzero(differs)[:DIAGNOSIS_TEXTS]
+    good = np.flatnonzero(~differs)[:DIAGNOSIS_TEXTS]
+    idx = np.concatenate([bad, good])  # (K,)
+    subset = [texts[i] for i in idx]
+    current = Pipeline.of(model)
+    out = [f"danpack's float reading differs from the framework's outputs on {int(differs.sum()):,} of "
+           f"{len(texts):,} texts (tolerance {tolerance:g}); danpack reads text with {current.describe()}"]
+    best, best_score = None, -1
+    for cand in candidate_pipelines(current, model.vocab):
+        if cand == current:
+            continue
+        score = int(_matches(cand.apply(model).predict_proba(subset), framework, idx, tolerance).sum())
+        if score > best_score:
+            best, best_score = cand, score
+    padded = _padding_model(model)
+    pad_score = -1
+    if padded is not None:
+        pad_score = int(_matches(padded[0].predict_proba(subset), framework, idx, tolerance).sum())
+    tokenizer = Tokenizer(model.tokenizer)
+    long = [i for i in bad if len(tokenizer.tokenize(texts[i])) >= model.tokenizer.max_tokens]
+    if pad_score > best_score and pad_score == len(idx):
+        out.append(f"likely cause: the padding row. Unknown words read as the dropped padding row "
+                   f"{padded[1]!r} (a zero vector counted in the mean) reproduce the framework on all {len(idx):,} "
+                   f"texts re-read; convert again with --padding-row none --oov unk --unk-token {padded[1]}")
+        unknown = padded[0].encoder()
+        for i in bad[:DIAGNOSIS_EXAMPLES]:
+            words = [t for t in unknown.tokenizer.tokenize(texts[i]) if t not in unknown.index or t == padded[1]]
+            out.append(f"  e.g. {texts[i][:80]!r}: unknown words {words[:8]}")
+    elif best is not None and best_score > int(_matches(model.predict_proba(subset), framework, idx,
+                                                        tolerance).sum()):
+        causes = []
+        if best.tokenizer != current.tokenizer:
+            causes.append("the tokenizer")
+        if (best.oov_policy, best.unk_token) != (current.oov_policy, current.unk_token):
+            causes.append("the unknown-word policy")
+        full = best_score == len(idx)
+        out.append(f"likely cause: {' and '.join(causes)}. With {' '.join(best.changes_from(current))} danpack's "
+                   f"float reading matches the framework on {best_score:,} of {len(idx):,} texts re-read"
+                   + (" (all)" if full else "") + "; convert the model again with those options")
+        here, there = current.encoder(model.vocab), best.encoder(model.vocab)
+        for i in bad[:DIAGNOSIS_EXAMPLES]:
+            ours, theirs = here.tokenizer.tokenize(texts[i]), there.tokenizer.tokenize(texts[i])
+            if ours != theirs:
+                at = first_difference(ours, theirs)
+                out.append(f"  e.g. {texts[i][:80]!r}: danpack reads {show_tokens(ours, at, width=10)}, "
+                           f"the fix reads {show_tokens(theirs, at, width=10)}")
+            else:
+                unknown = [t for t in ours if t not in here.index]
+                out.append(f"  e.g. {texts[i][:80]!r}: unknown words {unknown[:8]} "
+                           f"({'skipped' if current.oov_policy == 'skip' else 'read as ' + repr(current.unk_token)} "
+                           f"by danpack, {'skipped' if best.oov_policy == 'skip' else 'read as ' + repr(best.unk_token)} "
+                           "by the fix)")
+    elif long:
+        out.append(f"likely cause: text length. {len(long)} differing texts reach the tokenizer's max_tokens "
+                   f"{model.tokenizer.max_tokens}, where danpack stops reading; raise --max-tokens")
+    else:
+        out.append("no preset, case, normalization, unknown-word policy or padding treatment reproduces the "
+                   "framework: check that the eval file and --reference-probs are in the same order, that the "
+                   "model averages over real tokens only (padding masked), and declare a custom --pattern")
+    return out
+
+
 CERTIFIED_KEYS = ("certified_share", "certified_share_of_covered", "runtime_certified_share", "certified_changes",
                   "bound_premise_failing_rows")
 
@@ -509,8 +800,16 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
         warnings.append(other)
     if bundle.tokenizer != model.tokenizer:
         warnings.append("the bundle's tokenizer spec differs from the float original's")
+    sample = None
+    if options.token_sample is not None:
+        from danpack.pipeline import check_token_sample
+
+        sample = check_token_sample(options.token_sample, model, style="model")
     with steps.step(f"reading evaluation set {eval_path}"):
-        evalset = read_eval_set(eval_path, labels, options.text_field, options.label_field)
+        evalset = read_eval_set(eval_path, labels, options.text_field, options.label_field, options.label_map)
+        framework = None
+        if options.reference_probs is not None:
+            framework = read_reference_probs(options.reference_probs, evalset.texts, labels, options.label_map)
     steps.note(f"{len(evalset.texts):,} texts, " + ("labelled" if evalset.labels is not None else "unlabelled"))
     texts = list(evalset.texts)
     with steps.step("running the float original (numpy, full vocabulary, float32)"):
@@ -529,6 +828,14 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
             figures.update(accuracy_figures(gold, pred_f, pred_p, options))
             per_class = per_class_recall(gold, pred_f, pred_p, labels)
         figures.update(agreement_figures(probs_float, probs_packed))
+        figures.update({k: None for k in REFERENCE_KEYS})
+        if framework is not None:
+            reference, differs = reference_figures(framework, probs_float, probs_packed, gold,
+                                                   options.reference_tolerance)
+            figures.update(reference)
+            if differs.any():
+                warnings.append("\n".join(diagnose_reference(model, texts, framework, differs,
+                                                             options.reference_tolerance)))
         view, token_figures = view_tokens(model, bundle.vocab, texts)
         figures.update(token_figures)
         float_bytes = model_bytes(model_dir)
@@ -558,6 +865,12 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
                  "text_field": evalset.text_field, "label_field": evalset.label_field,
                  "labelled": evalset.labels is not None},
     }
+    if framework is not None:
+        inputs["framework"] = {"path": framework.path, "sha256": framework.sha256,
+                               "kind": "probs" if framework.probs is not None else "labels"}
+    if sample is not None:
+        inputs["token_sample"] = {"path": sample.path, "records": sample.records, "kind": sample.kind}
     settings = {"backend": options.backend, "bootstrap_resamples": options.bootstrap, "seed": options.seed,
-                "confidence": options.confidence, "kl_epsilon": KL_EPSILON, "latency": latency_info}
+                "confidence": options.confidence, "kl_epsilon": KL_EPSILON, "latency": latency_info,
+                "reference_tolerance": options.reference_tolerance if framework is not None else None}
     return CheckResult(figures, per_class, disagreements, inputs, settings, tuple(warnings))

@@ -146,6 +146,18 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
                      "if both were equally accurate)"))
     rows.append(("agreement", "", format_value(f["agreement"], "share"),
                  f"{f['disagreements']:,} of {f['texts']:,} texts differ"))
+    if f.get("reference_agreement") is not None:
+        fw = "framework"
+        if f.get("reference_accuracy") is not None:
+            rows.append((f"accuracy, {fw} -> bundle", format_value(f["reference_accuracy"], "share"),
+                         format_value(f["accuracy_packed"], "share"),
+                         f"drop {f['reference_accuracy_drop_points']:+.2f} pt (the '{fw}' column is your framework)"))
+        rows.append((f"agreement with the {fw}", format_value(f["reference_float_agreement"], "share"),
+                     format_value(f["reference_agreement"], "share"), "float reading | bundle"))
+        diff = f.get("reference_float_max_abs_diff")
+        rows.append((f"float reading vs {fw}", "", f"{f['reference_float_mismatches']:,} differ",
+                     "" if diff is None else f"largest probability difference {diff:.2e} "
+                     f"(tolerance {s.get('reference_tolerance') or 0:g})"))
     rows.append(("probability change, mean / max", "", f"{f['mean_abs_prob_diff']:.4f}",
                  f"max {f['max_abs_prob_diff']:.4f}"))
     rows.append(("KL(float || bundle), mean / max", "", f"{f['mean_kl']:.2e}",

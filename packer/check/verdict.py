@@ -7,6 +7,7 @@ gate (e.g. a certified share) is one more row here and one more option in the CL
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -30,13 +31,18 @@ class Threshold:
     unit: str  # how values print (see danpack.check.compare.FIGURES units)
     title: str  # the figure's name in messages
     needs: str = ""  # what the figure needs when it is missing ("labels", "latency")
+    # with --reference-probs the gate reads this figure instead: the chain the user cares about, framework -> bundle
+    reference_key: str | None = None
+    reference_title: str = ""
 
 
 THRESHOLDS: tuple[Threshold, ...] = (
     # 1 point: well above what packing costs the demo models (0.00 / 0.10 points), below what a user notices
-    Threshold("max-points-lost", "accuracy_drop_points", "<=", 1.0, "points", "accuracy drop", "labels"),
+    Threshold("max-points-lost", "accuracy_drop_points", "<=", 1.0, "points", "accuracy drop", "labels",
+              "reference_accuracy_drop_points", "accuracy drop framework -> bundle"),
     # 99%: the demo bundles agree on 99.8-100% of texts; a lower share means pruning costs decisions
-    Threshold("min-agreement", "agreement", ">=", 0.99, "share", "prediction agreement"),
+    Threshold("min-agreement", "agreement", ">=", 0.99, "share", "prediction agreement", "",
+              "reference_agreement", "prediction agreement framework vs bundle"),
     # no default: the byte budget is the device's, not ours
     Threshold("max-bytes", "bundle_bytes", "<=", None, "bytes", "bundle size"),
     # 1.0: a bundle larger than its float original defeats the purpose
@@ -49,6 +55,9 @@ THRESHOLDS: tuple[Threshold, ...] = (
     # 0: a certified text that changed class means the bound itself is broken
     Threshold("max-certified-changes", "certified_changes", "<=", 0, "count", "certified texts that changed class",
               "bound"),
+    # 0: with the pipeline declared right, danpack's float reading equals the framework's to float32 rounding
+    Threshold("max-reference-mismatches", "reference_float_mismatches", "<=", 0, "count",
+              "texts where danpack's float reading differs from the framework", "reference"),
 )
 
 
@@ -193,7 +202,8 @@ def check_threshold(t: Threshold, value: float | None, limit: float | None, expl
         return Outcome(t.name, t.key, t.op, None, value, "skip", "not gated (no limit set)")
     if value is None:
         why = {"labels": "the evaluation set has no labels", "latency": "latency was not measured",
-               "bound": "no drift bound applies (a float32 table, or a bundle not packed from --reference)"}.get(t.needs, "")
+               "bound": "no drift bound applies (a float32 table, or a bundle not packed from --reference)",
+               "reference": "no --reference-probs given"}.get(t.needs, "")
         if explicit:
             raise VerdictError(f"--{t.name} {limit:g} cannot be checked: {why or 'the figure is missing'}"
                                + (" (pass a labelled --eval)" if t.needs == "labels" else "")
@@ -208,7 +218,12 @@ def check_threshold(t: Threshold, value: float | None, limit: float | None, expl
 def evaluate(figures: Mapping[str, float | None], limits: Mapping[str, float | None],
              explicit: set[str] = frozenset()) -> tuple[Outcome, ...]:
     """One outcome per threshold of THRESHOLDS, in table order."""
-    return tuple(check_threshold(t, figures.get(t.key), limits.get(t.name), t.name in explicit) for t in THRESHOLDS)
+    out = []
+    for t in THRESHOLDS:
+        if t.reference_key is not None and figures.get(t.reference_key) is not None:
+            t = dataclasses.replace(t, key=t.reference_key, title=t.reference_title)
+        out.append(check_threshold(t, figures.get(t.key), limits.get(t.name), t.name in explicit))
+    return tuple(out)
 
 
 # ---- baseline -----------------------------------------------------------------------------------

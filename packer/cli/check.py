@@ -24,7 +24,11 @@ def check_command(
     reference: Path = typer.Option(..., "--reference", "-r", metavar="MODEL_DIR", help="The float model directory the bundle was packed from."),
     eval_file: Path = typer.Option(..., "--eval", "-e", metavar="FILE", help="Evaluation texts: JSONL, CSV or TSV with a header; labels optional."),
     text_field: str = typer.Option("text", metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text."),
-    label_field: Optional[str] = typer.Option(None, metavar="NAME", help="Field holding the label [default: 'label' when present; else unlabelled]."),
+    label_field: Optional[str] = typer.Option(None, metavar="NAME", help="Field holding the label [default: 'label' when present; else unlabelled]. Integer labels index the model's labels."),
+    label_map: Optional[str] = typer.Option(None, metavar="FILE|A=B,...", help="Other label spellings: a file (JSON object or spelling=label lines) or inline a=b,c=d."),
+    reference_probs: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL, one record per eval record: your framework's 'probs' (model label order) or 'label'. Gates then apply framework -> bundle."),
+    reference_tolerance: float = typer.Option(1e-5, metavar="PROB", help="Largest probability difference between the float reading and --reference-probs counted as equal."),
+    token_sample: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record."),
     max_points_lost: Optional[str] = typer.Option(None, metavar="POINTS|off", help=f"Largest accuracy loss of the bundle against the float original, in percentage points [default: 1.0]. {LIMIT_HELP}"),
     min_agreement: Optional[str] = typer.Option(None, metavar="SHARE|off", help=f"Smallest prediction agreement, 0..1 or a percent [default: 0.99]. {LIMIT_HELP}"),
     max_bytes: Optional[str] = typer.Option(None, metavar="BYTES|off", help="Largest bundle size in bytes [default: not gated]."),
@@ -49,18 +53,19 @@ def check_command(
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Compare a bundle with its float original on labelled or unlabelled texts; exit 1 when a gate fails."""
-    from danpack.check.compare import CheckOptions, run_check
+    from danpack.check.compare import CheckOptions, parse_label_map, run_check
     from danpack.check.latency import LatencyOptions
     from danpack.check.reports import build_report, read_report, render_table, write_junit, write_markdown, write_report
     from danpack.check.verdict import (Verdict, baseline_lineage, compare_baseline, evaluate, parse_limit,
                                        parse_tolerances, resolve_limits)
     from danpack.files import check_outputs
-    from danpack.model import model_files
+    from danpack.model import load_model, model_files
     from danpack.progress import Steps
 
     try:
         check_outputs({"--report": report, "--markdown": markdown, "--junit": junit},
                       {"BUNDLE": bundle, "--eval": eval_file, "--baseline": baseline,
+                       "--reference-probs": reference_probs, "--token-sample": token_sample,
                        **{f"--reference file {n}": p for n, p in model_files(reference).items()}})
         given = {"max-points-lost": parse_limit(max_points_lost, "max-points-lost"),
                  "min-agreement": parse_limit(min_agreement, "min-agreement"),
@@ -74,9 +79,14 @@ def check_command(
             fail("--max-latency-ratio needs the latency measurement; drop --no-latency")
         tolerances = parse_tolerances(baseline_tolerance)
         previous = read_report(baseline) if baseline is not None else None
+        labels_now = load_model(reference).labels if label_map else ()
         options = CheckOptions(text_field=text_field, label_field=label_field, backend=backend, bootstrap=bootstrap,
                                seed=seed, show_disagreements=show_disagreements,
-                               allow_other_reference=allow_other_reference)
+                               allow_other_reference=allow_other_reference,
+                               label_map=parse_label_map(label_map, labels_now),
+                               reference_probs=None if reference_probs is None else str(reference_probs),
+                               reference_tolerance=reference_tolerance,
+                               token_sample=None if token_sample is None else str(token_sample))
         latency = None if no_latency else LatencyOptions(texts=latency_texts, batch=latency_batch,
                                                          batches=latency_batches)
         steps = Steps(6 + (latency is not None), quiet=quiet)

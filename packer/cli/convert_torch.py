@@ -52,6 +52,14 @@ def _describe(report: ConversionReport) -> list[str]:
         token = "no token" if d.token is None else repr(d.token)
         lines.append(f"  dropped row {d.row} ({token}): {d.reason}")
     lines.append(f"labels      {len(report.labels)}: {', '.join(report.labels)}")
+    t = report.tokenizer
+    if t is not None:
+        lines.append(f"tokenizer   pattern {t.pattern}, case {t.case}, normalization {t.normalization}, "
+                     f"max tokens {t.max_tokens}")
+    lines.append(f"unknown     {report.oov_choice}")
+    lines.append(f"sample      {report.token_sample.removeprefix('token sample ')}" if report.token_sample else
+                 "sample      none given: pass --token-sample FILE (texts and your pipeline's tokens or ids) "
+                 "to prove the tokenizer matches your training")
     lines.append(f"wrote       {report.output_dir} (weights.{report.weights_format}, {format_bytes(report.bytes_written)}), "
                  "re-loaded and validated")
     return lines
@@ -71,11 +79,13 @@ def convert_torch(
     ignore_key: list[str] = typer.Option([], "--ignore-key", metavar="KEY", help="A tensor or module prefix the model does not use."),
     state_key: Optional[str] = typer.Option(None, "--state-key", metavar="KEY", help="Entry holding the state_dict in a training checkpoint."),
     padding_row: str = typer.Option("auto", "--padding-row", metavar="N|auto|none", help="Row to drop as padding: N, 'auto' or 'none'."),
+    pattern: str = typer.Option("words-v1", "--pattern", metavar="PRESET|REGEX", help="Token pattern: a preset (words-v1, spaces-v1 = \\S+, wordpunct-v1 = \\w+|[^\\w\\s]) or a regex, each match a token."),
     normalization: str = typer.Option("NFKC", "--normalization", metavar="NFKC|NFC|NFKD|NFD|none", help="Tokenizer Unicode form: NFC|NFKC|NFD|NFKD|none."),
     case: str = typer.Option("lower", "--case", metavar="lower|casefold|keep", help="Tokenizer case: lower|casefold|keep."),
     max_tokens: int = typer.Option(512, "--max-tokens", metavar="N", help="Tokens kept per text."),
-    oov: str = typer.Option("skip", "--oov", metavar="skip|unk", help="Unknown tokens: skip (leave the mean) or unk (use --unk-token)."),
-    unk_token: str = typer.Option("<unk>", "--unk-token", metavar="TOKEN", help="Vocabulary token for unknown words with --oov unk."),
+    oov: str = typer.Option("auto", "--oov", metavar="auto|skip|unk", help="Unknown tokens: auto (unk when the vocabulary has <unk>, [UNK], <oov>, ...; else skip), skip (leave the mean) or unk."),
+    unk_token: Optional[str] = typer.Option(None, "--unk-token", metavar="TOKEN", help="Vocabulary token for unknown words [default: the usual spelling found]."),
+    token_sample: Optional[Path] = typer.Option(None, "--token-sample", metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record."),
     weights_format: str = typer.Option("npz", "--weights-format", metavar="npz|safetensors", help="npz or safetensors."),
     overwrite: bool = typer.Option(False, "--overwrite", help="Replace an existing model directory."),
 ) -> None:
@@ -94,9 +104,10 @@ def convert_torch(
             state_key=state_key,
             padding_row=row,
             detect_padding=detect,
-            tokenizer=TokenizerSpec(normalization=normalization, case=case, max_tokens=max_tokens),
+            tokenizer=TokenizerSpec(normalization=normalization, case=case, pattern=pattern, max_tokens=max_tokens),
             oov_policy=oov,
             unk_token=unk_token,
+            token_sample=None if token_sample is None else str(token_sample),
             weights_format=weights_format,
         )
         with interruptible(f"nothing was written ({output} is as it was)"):

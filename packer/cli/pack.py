@@ -38,6 +38,7 @@ def pack_command(
     keep_words: Optional[Path] = typer.Option(None, metavar="FILE", help="File of tokens (one per line) always kept, e.g. negations; only with a corpus (without one every row is kept)."),
     pruned: str = typer.Option("auto", metavar="auto|skip|unk|rest", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
     fold: str = typer.Option("auto", metavar="auto|yes|no", help="Fold the first hidden layer into the table (store each row already multiplied by that layer's weights, so the device skips one matrix product and the table gets narrower): auto (when the layer is narrower than the embedding), yes, no."),
+    token_sample: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record before packing."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
@@ -65,7 +66,14 @@ def pack_command(
             typer.echo(f"danpack: warning: {warning}", err=True)
     try:
         check_outputs({"--output": output}, {**{f"model file {n}": p for n, p in model_files(model_dir).items()},
-                                             **{f"--corpus {p}": p for p in corpus}, "--keep-words": keep_words})
+                                             **{f"--corpus {p}": p for p in corpus}, "--keep-words": keep_words,
+                                             "--token-sample": token_sample})
+        sample = None
+        if token_sample is not None:
+            from danpack.model import load_model
+            from danpack.pipeline import check_token_sample
+
+            sample = check_token_sample(token_sample, load_model(model_dir), style="model")
         options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field or "text",
                               coverage=PackOptions.coverage if coverage is None else parse_share(coverage, "--coverage"),
                               top=top,
@@ -84,10 +92,13 @@ def pack_command(
         "unreachable_rows": plan.unreachable, "unreachable_examples": list(plan.unreachable_examples),
         "unknown_keep_words": list(plan.unknown_keep_words), "pruned_policy": result.policy, "folded": result.folded,
         "breakdown": result.breakdown,
+        "token_sample": None if sample is None else {"path": sample.path, "records": sample.records},
     }
     if json_out:
         typer.echo(json.dumps(summary, indent=2, ensure_ascii=False))
         return
+    if sample is not None:
+        typer.echo(sample.describe())
     typer.echo(f"wrote {result.path}: {format_bytes(result.bytes)} "
                f"(float model {format_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
     if plan.has_corpus:

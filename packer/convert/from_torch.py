@@ -53,8 +53,9 @@ class ConvertOptions:
     padding_row: int | None = None  # table row to drop as padding (negative counts from the end)
     detect_padding: bool = True  # drop an all-zero row whose token is a pad token like "<pad>"
     tokenizer: TokenizerSpec = field(default_factory=TokenizerSpec)  # written into dan.json
-    oov_policy: str = "skip"  # "skip" or "unk"
-    unk_token: str = "<unk>"  # the row unknown tokens use under oov_policy "unk"
+    oov_policy: str = "auto"  # "auto" (unk when the vocabulary has an unknown-word token, else skip), "skip" or "unk"
+    unk_token: str | None = None  # the row unknown tokens use under "unk"; None: the usual spelling found
+    token_sample: str | None = None  # JSONL of texts and the user's own tokens or ids, reproduced before writing
     weights_format: str = "npz"  # "npz" or "safetensors"
 
 
@@ -126,6 +127,9 @@ class ConversionReport:
     output_dir: Path
     weights_format: str
     bytes_written: int
+    tokenizer: TokenizerSpec | None = None  # the pipeline written into dan.json
+    oov_choice: str = ""  # the unknown-word policy chosen, and why
+    token_sample: str = ""  # what the token sample proved ("" when none was given)
 
 
 # ---------------------------------------------------------------- reading the checkpoint
@@ -659,8 +663,8 @@ def _check_options(options: ConvertOptions) -> None:
                               "retrain with mode='mean' (or nn.Embedding with a masked mean)")
     if options.activation is not None and options.activation not in ACTIVATIONS:
         raise CheckpointError(f"--activation {options.activation!r} is not one of {list(ACTIVATIONS)}")
-    if options.oov_policy not in OOV_POLICIES:
-        raise CheckpointError(f"--oov {options.oov_policy!r} is not one of {list(OOV_POLICIES)}")
+    if options.oov_policy not in ("auto", *OOV_POLICIES):
+        raise CheckpointError(f"--oov {options.oov_policy!r} is not one of {['auto', *OOV_POLICIES]}")
     if options.weights_format not in ("npz", "safetensors"):
         raise CheckpointError(f"--weights-format {options.weights_format!r} is not 'npz' or 'safetensors'")
 
@@ -703,9 +707,7 @@ def build_model(ck: Checkpoint, layout: Layout, kept: list[int], tokens: list[st
         if not np.isfinite(a).all():
             raise CheckpointError(f"{ck.path}: tensor {key!r} holds NaN or Inf (after conversion from "
                                   f"{ck.dtypes[key]} to float32); retrain or repair the weights")
-    if options.oov_policy == "unk" and options.unk_token not in tokens:
-        raise CheckpointError(f"--oov unk: the unknown-token {options.unk_token!r} is not in the vocabulary; "
-                              "pass --unk-token with the vocabulary's unknown token, or use --oov skip")
+    policy, unk_token, _ = choose_oov(options, tokens)
     metadata = {
         "converted_from": {
             "file": ck.path.name,
@@ -717,8 +719,32 @@ def build_model(ck: Checkpoint, layout: Layout, kept: list[int], tokens: list[st
         }
     }
     return FloatModel(tuple(tokens), np.ascontiguousarray(table, np.float32), tuple(layers), labels,
-                      options.tokenizer, options.oov_policy,
-                      options.unk_token if options.oov_policy == "unk" else None, metadata)
+                      options.tokenizer, policy, unk_token, metadata)
+
+
+def choose_oov(options: ConvertOptions, tokens: Sequence[str]) -> tuple[str, str | None, str]:
+    """(policy, unknown-word token, why): the vocabulary decides under "auto"; an explicit choice is checked."""
+    from danpack.pipeline import UNK_TOKENS, find_unk_token
+
+    policy, unk = options.oov_policy, options.unk_token
+    if policy == "auto" and unk is not None:
+        policy = "unk"  # --unk-token alone means: use that row
+    if policy == "unk":
+        unk = unk or find_unk_token(tokens)
+        if unk is None or unk not in tokens:
+            raise CheckpointError(f"--oov unk: the unknown-token {unk or UNK_TOKENS[0]!r} is not in the vocabulary; "
+                                  "pass --unk-token with the vocabulary's unknown token, or use --oov skip")
+        return "unk", unk, f"unk {unk!r} (asked for)"
+    if policy == "skip":
+        found = find_unk_token(tokens)
+        return "skip", None, "skip (asked for)" + (f"; note: the vocabulary has {found!r}, which unknown words "
+                                                     "then never use" if found else "")
+    found = find_unk_token(tokens)
+    if found is not None:
+        return "unk", found, (f"unk {found!r}: the vocabulary holds this unknown-word token, so unknown words use "
+                              "its row, as in training (pass --oov skip to leave them out of the mean instead)")
+    return "skip", None, (f"skip: the vocabulary holds no unknown-word token ({', '.join(UNK_TOKENS[:4])}, ...), "
+                          "so unknown words are left out of the mean (pass --oov unk --unk-token T to use a row)")
 
 
 def _mapping(ck: Checkpoint, layout: Layout) -> list[tuple[str, str, tuple[int, ...]]]:
@@ -744,6 +770,11 @@ def convert_checkpoint(checkpoint: str | os.PathLike, vocab: str | os.PathLike, 
     kept, tokens, dropped = align_vocab(read_vocab_source(vocab_path), ck.tensors[layout.embedding_key],
                                         vocab_path, ck.path, options.padding_row, options.detect_padding)
     model = build_model(ck, layout, kept, tokens, label_tuple, options, dropped)
+    sample = ""
+    if options.token_sample is not None:
+        from danpack.pipeline import check_token_sample
+
+        sample = check_token_sample(options.token_sample, model, kept, {d.row for d in dropped}).describe()
     warnings = list(layout.notes)
     tokenizer = Tokenizer(options.tokenizer)
     unreachable = [t for t in tokens if not tokenizer.is_reachable(t) and t != model.unk_token]
@@ -760,7 +791,8 @@ def convert_checkpoint(checkpoint: str | os.PathLike, vocab: str | os.PathLike, 
     size = sum(p.stat().st_size for p in out.iterdir() if p.is_file())
     return ConversionReport(ck, layout, tuple(_mapping(ck, layout)), ck.shapes[layout.embedding_key][0],
                             len(tokens), int(model.embedding.shape[1]), model.hidden_sizes, label_tuple,
-                            model.activation, tuple(dropped), tuple(warnings), out, options.weights_format, size)
+                            model.activation, tuple(dropped), tuple(warnings), out, options.weights_format, size,
+                            model.tokenizer, choose_oov(options, tokens)[2], sample)
 
 
 def _check_round_trip(model: FloatModel, out: Path) -> None:
