@@ -37,9 +37,10 @@ def iter_records(path: str | os.PathLike, text_field: str = "text", fmt: str | N
         yield record
 
 
-def iter_numbered_records(path: str | os.PathLike, text_field: str = "text",
+def iter_numbered_records(path: str | os.PathLike, text_field: str | None = "text",
                           fmt: str | None = None) -> Iterator[tuple[int, dict]]:
-    """(line where the record starts, record) pairs, so later checks can name the line of a bad value."""
+    """(line where the record starts, record) pairs, so later checks can name the line of a bad value.
+    `text_field` None (JSONL only): records need no text, e.g. a framework's outputs beside an eval set."""
     path = Path(path)
     fmt = fmt or detect_format(path)
     if fmt not in ("lines", "jsonl", "csv", "tsv"):
@@ -74,7 +75,7 @@ def _decode_lines(path: Path, handle) -> Iterator[str]:
                                 "line); save the file as UTF-8") from e
 
 
-def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[tuple[int, dict]]:
+def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str | None) -> Iterator[tuple[int, dict]]:
     for number, line in enumerate(lines, start=1):
         if not line.strip():
             continue
@@ -84,7 +85,7 @@ def _iter_jsonl(path: Path, lines: Iterator[str], text_field: str) -> Iterator[t
             raise TextFileError(f"{path}:{number}: not valid JSON ({e.msg})") from e
         if not isinstance(record, dict):
             raise TextFileError(f"{path}:{number}: expected a JSON object, found {type(record).__name__}")
-        if not isinstance(record.get(text_field), str):
+        if text_field is not None and not isinstance(record.get(text_field), str):
             raise TextFileError(f"{path}:{number}: field {text_field!r} is missing or not a string; "
                                 f"fields present: {sorted(record)} (choose the field with --text-field)")
         yield number, record

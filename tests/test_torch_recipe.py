@@ -168,3 +168,22 @@ def test_wrong_declaration_is_caught_by_the_reference_check(recipe, option, valu
     assert result.exit_code == 1, result.output
     assert "FAIL  max-reference-mismatches" in result.stdout
     assert cause in result.stderr
+
+
+def test_check_cli_label_map_and_bad_reference_file(recipe):
+    work, commands, _ = recipe
+    records = [json.loads(line) for line in (work / "test.jsonl").read_text().splitlines()]
+    spelled = work / "spelled.jsonl"  # the user's own spellings of the labels
+    spelled.write_text("".join(json.dumps({"text": r["text"], "label": ["Ham", "SPAM"][r["label"]]}) + "\n"
+                               for r in records))
+    check = commands[2][1:] + ["--bootstrap", "200", "-q"]
+    args = replace_option(check, "--eval", str(spelled))
+    result = run(work, args)
+    assert result.exit_code == 2
+    assert f"{len(records):,} of {len(records):,} records have a label" in result.stderr
+    assert "line 1: " in result.stderr and "did you mean" in result.stderr
+    assert run(work, args + ["--label-map", "Ham=ham,SPAM=spam"]).exit_code == 0
+    short = work / "short_probs.jsonl"
+    short.write_text("\n".join((work / "torch_probs.jsonl").read_text().splitlines()[:-1]) + "\n")
+    result = run(work, replace_option(check, "--reference-probs", str(short)))
+    assert result.exit_code == 2 and "records but the evaluation set has" in result.stderr

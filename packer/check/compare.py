@@ -391,52 +391,39 @@ def read_reference_probs(path: str | os.PathLike, texts: Sequence[str], labels: 
                          label_map: Sequence[tuple[str, str]] = ()) -> FrameworkOutputs:
     """One JSONL record per eval record, same order: {"probs": [...]} in the model's label order, or
     {"label": ...}; a "text" field, when present, must be the eval record's text."""
-    import json
-
     path = Path(path)
     mapping = dict(label_map)
     rows: list[list[float] | None] = []
     predicted: list[int] = []
-    try:
-        handle = open(path, encoding="utf-8")
-    except OSError as e:
-        raise CheckError(f"--reference-probs {path}: cannot be opened ({e})") from e
-    with handle:
-        number = 0
-        for line_no, line in enumerate(handle, start=1):
-            if not line.strip():
-                continue
-            try:
-                record = json.loads(line)
-            except json.JSONDecodeError as e:
-                raise CheckError(f"{path}:{line_no}: not valid JSON ({e.msg})") from e
-            if not isinstance(record, dict) or ("probs" not in record and "label" not in record):
-                raise CheckError(f"{path}:{line_no}: expected an object with 'probs' (the model's probabilities in "
-                                 f"label order {list(labels)}) or 'label'")
-            if number < len(texts) and isinstance(record.get("text"), str) and record["text"] != texts[number]:
-                raise CheckError(f"{path}:{line_no}: text {record['text'][:60]!r} is not eval record {number + 1}'s "
-                                 f"text {texts[number][:60]!r}; write one record per eval record, in the same order")
-            if "probs" in record:
-                p = record["probs"]
-                if (not isinstance(p, list) or len(p) != len(labels)
-                        or not all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
-                                   for x in p)):
-                    raise CheckError(f"{path}:{line_no}: 'probs' must be {len(labels)} finite numbers (label order "
-                                     f"{list(labels)}), found {str(p)[:80]}")
-                if abs(sum(p) - 1.0) > 1e-3 or min(p) < 0:
-                    raise CheckError(f"{path}:{line_no}: 'probs' sum to {sum(p):.4g}; give probabilities "
-                                     "(softmax of the logits), not logits")
-                rows.append([float(x) for x in p])
-                predicted.append(int(np.argmax(p)))
-            else:
-                value = resolve_label(record["label"], labels, mapping)
-                if value is None:
-                    hint = _near_miss(record["label"], labels)
-                    raise CheckError(f"{path}:{line_no}: label {record['label']!r} is not one of the model's labels "
-                                     f"{list(labels)}" + (f" ({hint})" if hint else ""))
-                rows.append(None)
-                predicted.append(list(labels).index(value))
-            number += 1
+    number = 0
+    for line_no, record in iter_numbered_records(path, None, fmt="jsonl"):  # the one text-file reader
+        if "probs" not in record and "label" not in record:
+            raise CheckError(f"{path}:{line_no}: expected an object with 'probs' (the model's probabilities in "
+                             f"label order {list(labels)}) or 'label'")
+        if number < len(texts) and isinstance(record.get("text"), str) and record["text"] != texts[number]:
+            raise CheckError(f"{path}:{line_no}: text {record['text'][:60]!r} is not eval record {number + 1}'s "
+                             f"text {texts[number][:60]!r}; write one record per eval record, in the same order")
+        if "probs" in record:
+            p = record["probs"]
+            if (not isinstance(p, list) or len(p) != len(labels)
+                    or not all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+                               for x in p)):
+                raise CheckError(f"{path}:{line_no}: 'probs' must be {len(labels)} finite numbers (label order "
+                                 f"{list(labels)}), found {str(p)[:80]}")
+            if abs(sum(p) - 1.0) > 1e-3 or min(p) < 0:
+                raise CheckError(f"{path}:{line_no}: 'probs' sum to {sum(p):.4g}; give probabilities "
+                                 "(softmax of the logits), not logits")
+            rows.append([float(x) for x in p])
+            predicted.append(int(np.argmax(p)))
+        else:
+            value = resolve_label(record["label"], labels, mapping)
+            if value is None:
+                hint = _near_miss(record["label"], labels)
+                raise CheckError(f"{path}:{line_no}: label {record['label']!r} is not one of the model's labels "
+                                 f"{list(labels)}" + (f" ({hint})" if hint else ""))
+            rows.append(None)
+            predicted.append(list(labels).index(value))
+        number += 1
     if number != len(texts):
         raise CheckError(f"{path}: has {number:,} records but the evaluation set has {len(texts):,}; write one "
                          "record per eval record, in the same order")
