@@ -187,3 +187,17 @@ def test_check_cli_label_map_and_bad_reference_file(recipe):
     short.write_text("\n".join((work / "torch_probs.jsonl").read_text().splitlines()[:-1]) + "\n")
     result = run(work, replace_option(check, "--reference-probs", str(short)))
     assert result.exit_code == 2 and "records but the evaluation set has" in result.stderr
+
+
+def test_pack_and_check_reproduce_the_token_sample_too(recipe):
+    work, commands, _ = recipe
+    assert _convert_variant(work, commands, "undeclared", **{"--pattern": None, "--case": None,
+                                                              "--normalization": None, "--token-sample": None}).exit_code == 0
+    result = run(work, ["pack", "undeclared", "-o", "undeclared.danpack", "--token-sample", "sample.jsonl", "-q"])
+    assert result.exit_code == 2 and not (work / "undeclared.danpack").exists()
+    assert "fix: convert the model again with --pattern wordpunct-v1" in result.stderr
+    assert run(work, ["pack", "undeclared", "-o", "undeclared.danpack", "-q"]).exit_code == 0
+    check = replace_option(commands[2][1:], "-r", "undeclared") + ["--token-sample", "sample.jsonl", "-q"]
+    check[1] = "undeclared.danpack"
+    result = run(work, check)
+    assert result.exit_code == 2 and "danpack does not reproduce" in result.stderr
