@@ -150,7 +150,7 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
         fw = "framework"
         if f.get("reference_accuracy") is not None:
             rows.append((f"accuracy, {fw} -> bundle", format_value(f["reference_accuracy"], "share"),
-                         format_value(f["accuracy_packed"], "share"),
+                         format_value(f["accuracy_bundle"], "share"),
                          f"drop {f['reference_accuracy_drop_points']:+.2f} pt (the '{fw}' column is your framework)"))
         rows.append((f"agreement with the {fw}", format_value(f["reference_float_agreement"], "share"),
                      format_value(f["reference_agreement"], "share"), "float reading | bundle"))
