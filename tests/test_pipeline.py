@@ -188,3 +188,20 @@ def test_gates_read_framework_to_bundle_when_reference_figures_exist():
     plain = {o.name: o for o in evaluate({"agreement": 1.0, "accuracy_drop_points": 0.0, "size_ratio": 2.0},
                                          limits, explicit)}
     assert plain["min-agreement"].status == "pass" and plain["max-reference-mismatches"].status == "skip"
+
+
+def test_diagnosis_names_the_padding_row_when_unknown_words_read_as_padding(tmp_path):
+    # a training script that sends unknown words to padding_idx 0 (a zero vector counted in the mean)
+    from danpack.check.compare import _padding_model
+
+    declared = dataclasses.replace(model(), metadata={"converted_from": {"dropped_rows": [{"row": 0, "token": "<pad>"}]}})
+    truth, token = _padding_model(declared)
+    assert token == "<pad>" and truth.predict_proba(["zzz free"]).tolist() != declared.predict_proba(["zzz free"]).tolist()
+    texts = ["zzz free prize", "call now", "qqq qqq know", "free"]
+    path = write_jsonl(tmp_path / "r.jsonl", [{"probs": p} for p in truth.predict_proba(texts).tolist()])
+    framework = read_reference_probs(path, texts, LABELS)
+    _, differs = reference_figures(framework, declared.predict_proba(texts), declared.predict_proba(texts), None, 1e-5)
+    assert differs.tolist() == [True, False, True, False]
+    message = "\n".join(diagnose_reference(declared, texts, framework, differs, 1e-5))
+    assert "likely cause: the padding row" in message
+    assert "--padding-row none --oov unk --unk-token <pad>" in message
