@@ -51,7 +51,7 @@ def main(argv: list[str] | None = None) -> int:
     corpus = workdata.stream_corpus(config)
     lines = workdata.run_lines_file(config)
     intro_corpus = (f"Packed with the demo deployment stream ({config.stream_texts:,} comments, "
-                    "`danpack.models_demo.scenario.generate_stream`) as corpus, default pack options (coverage 0.995).")
+                    "`danpack.models_demo.scenario.generate_stream`) as corpus, default pack options (the measured default: smallest bundle within 0.1 pt of every row on a held-out slice).")
 
     if "demo" in chosen or "long" in chosen:
         for task in ("sentiment", "topic"):

@@ -57,20 +57,25 @@ def test_pack_writes_a_bundle_and_prints_a_summary(packed):
     bundle = runtime.read_bundle(out)
     size = out.stat().st_size
     assert lines[0].startswith(f"wrote {out}: ") and "smaller" in lines[0]
-    kept = re.match(r"kept (\d+) of 151 rows, covering (\d+\.\d\d)% of the ([\d,]+) known tokens in 200 corpus texts",
-                    lines[1])
+    kept = re.match(r"kept (\d+) of 151 rows, covering (\d+\.\d\d)% of the ([\d,]+) known tokens in (\d+) selection "
+                    r"texts \((\d+) more held out for measurement\); chosen by --coverage 0.9", lines[1])
     assert kept, lines[1]
-    assert int(kept.group(1)) == len(bundle.vocab) and float(kept.group(2)) >= 90.0
-    assert lines[2] == "dropped 1 rows the tokenizer can never produce, e.g. 'Hello'"
+    assert int(kept.group(1)) == len(bundle.vocab)  # the pruned-rest row, if any, has no token
+    assert float(kept.group(2)) >= 90.0 and int(kept.group(4)) + int(kept.group(5)) == 200
+    held = bundle.manifest["selection"]["heldout"]
+    assert held["texts"] == int(kept.group(5)) and 0 < int(kept.group(5)) < 200
+    assert lines[2] == (f"held-out: agreement with the float model {held['agreement']:.2%}, mean |dp| "
+                        f"{held['mean_abs_prob_diff']:.4f}, certified {held['certified_share']:.2%} of {held['texts']} texts")
+    assert lines[3] == "dropped 1 rows the tokenizer can never produce, e.g. 'Hello'"
     table = bundle.manifest["table"]
-    assert lines[3] == (f"table {table['rows']:,} x {table['width']} int8 (first hidden layer folded in); "
-                        "pruned tokens at run time: skip")
-    assert lines[4].startswith("bytes: table ")
-    assert len(lines) == 5
+    assert lines[4] == (f"table {table['rows']:,} x {table['width']} int8 (first hidden layer folded in); "
+                        f"pruned tokens at run time: {bundle.manifest['oov']['policy']}")
+    assert lines[5].startswith("bytes: table ")
+    assert len(lines) == 6
     assert size == bundle.size
     # progress went to stderr, numbered; stdout holds only the summary
-    assert re.search(r"^\[1/5\] reading float model", result.stderr, re.M)
-    assert "[5/5] writing" in result.stderr and "[1/5]" not in result.stdout
+    assert re.search(r"^\[1/6\] reading float model", result.stderr, re.M)
+    assert "[6/6] writing" in result.stderr and "[1/6]" not in result.stdout
     clf = runtime.load(out)
     assert clf.labels == LABELS and len(clf.predict(["w1 w2", "Hello"])) == 2
 
@@ -181,15 +186,19 @@ def test_inspect_human(packed):
     result = invoke("inspect", out)
     assert result.exit_code == 0, result.stderr
     fields = {line.split()[0]: line.split(None, 1)[1] for line in result.stdout.splitlines()}
-    assert list(fields) == ["bundle", "sha256", "size", "labels", "table", "layers", "pruned", "source", "packer", "bytes",
-                            "bound"]
+    assert list(fields) == ["bundle", "sha256", "size", "labels", "table", "layers", "pruned", "heldout", "source",
+                            "packer", "bytes", "bound"]
     assert "cannot be changed by quantisation" in result.stdout  # the drift bound's guaranteed-safe margin
     assert fields["bundle"] == str(out)
     assert fields["sha256"] == _payload_sha(out)
     assert f"({out.stat().st_size:,} bytes)" in fields["size"]
     assert fields["labels"] == ", ".join(LABELS)
     assert fields["layers"] == "folded into the table + relu -> dense + softmax"
-    assert fields["pruned"].startswith("skip; coverage ")
+    held = runtime.read_bundle(out).manifest["selection"]["heldout"]
+    assert fields["pruned"].startswith(f"{runtime.read_bundle(out).manifest['oov']['policy']}; coverage ")
+    assert fields["heldout"] == (f"agreement {held['agreement']:.2%}, mean |dp| {held['mean_abs_prob_diff']:.4f}, "
+                                 f"certified {held['certified_share']:.2%} of {held['texts']:,} texts; chosen by "
+                                 "--coverage 0.9 (policy by held-out agreement)")
 
 
 def test_inspect_json_breakdown_sums_to_the_file_size(packed):

@@ -250,7 +250,7 @@ def test_changing_any_input_changes_the_checksum(models, tmp_path, monkeypatch):
         "weights as safetensors": pack(base, weights="safetensors"),
         "corpus with more texts": pack(base, corpus_text="w1 w2 w3\nw4 w5 w1\nw7 w1 w2\nw9 w9 w9 w8\n"),
         "coverage": pack(base, dataclasses.replace(options, coverage=0.5)),
-        "top": pack(base, dataclasses.replace(options, top=3)),
+        "top": pack(base, dataclasses.replace(options, coverage=None, top=3)),
         "keep-words": pack(base, dataclasses.replace(options, keep_words=("w250",))),
         "pruned policy": pack(base, dataclasses.replace(options, pruned="rest")),
         "fold": pack(base, dataclasses.replace(options, fold="no")),

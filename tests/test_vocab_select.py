@@ -13,6 +13,7 @@ import re
 import time
 import unicodedata
 from collections import Counter
+from dataclasses import replace
 from fractions import Fraction
 
 import numpy as np
@@ -21,6 +22,7 @@ from helpers import UNK, make_corpus, make_float_model, make_model, token, zipf_
 
 from danpack.model import load_model, save_model
 from danpack.pack.build import PackError, PackOptions, build_bundle, pack_model
+from danpack.pack.heldout import is_heldout
 from danpack.pack.quantize import dequantize_rows
 from danpack.pack.vocab import VocabOptions, plan_vocab
 from danpack.runtime.bundle import decode_bundle
@@ -41,9 +43,14 @@ def setup(tmp_path_factory):
     return model_dir, corpus, texts
 
 
+def selection(texts) -> list[str]:
+    """The texts rows are ranked on: the corpus less its held-out slice."""
+    return [t for t in texts if not is_heldout(t)]
+
+
 def recount(texts, vocab) -> np.ndarray:
-    """(V,) corpus count of each vocabulary row, counted independently with Counter/str.split."""
-    c = Counter(w for t in texts for w in t.split())
+    """(V,) count of each vocabulary row over the selection texts, counted independently with Counter/str.split."""
+    c = Counter(w for t in selection(texts) for w in t.split())
     return np.array([c[t] for t in vocab], dtype=np.int64)
 
 
@@ -70,8 +77,9 @@ def test_coverage_target_reached_with_fewest_rows(setup, target):
     k = fewest_rows_for(counts, target)
     assert plan.keep == k
     assert plan.known_tokens == counts.sum()
-    assert plan.corpus_texts == len(texts)
-    assert plan.corpus_tokens == sum(len(t.split()) for t in texts)  # unknown words counted too
+    assert plan.corpus_texts == len(selection(texts)) and result.heldout_texts == len(texts) - plan.corpus_texts
+    assert 0.08 < result.heldout_texts / len(texts) < 0.22  # about 15% held out
+    assert plan.corpus_tokens == sum(len(t.split()) for t in selection(texts))  # unknown words counted too
     assert plan.coverage >= float(target)
     assert Fraction(int(plan.row_counts[: k - 1].sum()), int(counts.sum())) < Fraction(target)  # one row fewer misses
     # the kept rows are the most frequent ones: none pruned is more frequent than one kept
@@ -86,7 +94,7 @@ def test_coverage_target_reached_with_fewest_rows(setup, target):
 def test_coverage_boundary_is_inclusive(tmp_path):
     # counts 50, 40, 10 (known 100): exactly 90% is covered by 2 rows, so 0.9 keeps 2, not 3
     model_dir = make_model(tmp_path, vocab_size=5, seed=2)
-    texts = [token(0)] * 50 + [token(1)] * 40 + [token(2)] * 10
+    texts = [token(0)] * 50 + [token(1)] * 40 + [token(2)] * 10  # each text on one side of the split: no held-out
     plan = pack_model(model_dir, None, PackOptions(corpora=(str(make_corpus(tmp_path, texts)),), coverage=0.9)).plan
     assert plan.keep == 2 and plan.coverage == pytest.approx(0.9)
 
@@ -128,15 +136,17 @@ def _assert_budget_is_tight(model_dir, corpus, budget: int, **options) -> None:
     if plan.keep == len(plan.ranked_rows):
         return  # everything fits
     m = decode_bundle(result.data).manifest
-    build = lambda p: build_bundle(model, p, result.policy, m["pack"]["fold"], m["pack"]["quantize"],
-                                   m["source"], m["pack"])[0]
+    fold = "yes" if m["table"]["folded"] else "no"
+    measured = {k: m["selection"][k] for k in ("heldout", "choice", "selection_texts") if k in m["selection"]}
+    build = lambda p: build_bundle(model, p, result.policy, fold, m["pack"]["quantize"], m["source"], m["pack"],
+                                   measured or None)[0]
     assert build(plan) == result.data  # the rebuild reproduces the packed bytes exactly
     assert len(build(plan.with_keep(plan.keep + 1))) > budget, f"budget {budget}: one more row still fits"
 
 
 def test_max_bytes_fits_and_is_tight(setup):
     model_dir, corpus, _ = setup
-    for budget in range(3000, 7000, 373):
+    for budget in range(3300, 7300, 373):  # the smallest bundle (one row, held-out record) is about 3.2 KB
         _assert_budget_is_tight(model_dir, corpus, budget)
 
 
@@ -245,11 +255,10 @@ def unk_model(tmp_path_factory):
     return model_dir, corpus
 
 
-@pytest.mark.parametrize("pruned", ["unk", "auto"])
-def test_policy_unk_maps_pruned_tokens_to_the_unknown_row(unk_model, pruned):
+def test_policy_unk_maps_pruned_tokens_to_the_unknown_row(unk_model):
     model_dir, corpus = unk_model
     model = load_model(model_dir)
-    result = pack_model(model_dir, None, PackOptions(corpora=(str(corpus),), top=10, pruned=pruned))
+    result = pack_model(model_dir, None, PackOptions(corpora=(str(corpus),), top=10, pruned="unk"))
     assert result.policy == "unk"
     bundle = decode_bundle(result.data)
     row = bundle.manifest["oov"]["row"]
@@ -273,9 +282,21 @@ def test_policy_unk_without_an_unknown_row_is_refused(setup):
         pack_model(model_dir, None, PackOptions(corpora=(str(corpus),), pruned="unk"))
 
 
-def test_policy_auto_is_skip_without_an_unknown_row(setup):
-    model_dir, corpus, _ = setup
-    assert pack_model(model_dir, None, PackOptions(corpora=(str(corpus),), top=5)).policy == "skip"
+@pytest.mark.parametrize("which", ["setup", "unk_model"])
+def test_policy_auto_is_the_fixed_policy_with_the_best_held_out_agreement(request, which):
+    model_dir, corpus = request.getfixturevalue(which)[:2]
+    fixed = ("skip", "rest") + (("unk",) if which == "unk_model" else ())
+    base = PackOptions(corpora=(str(corpus),), top=8)
+    auto = pack_model(model_dir, None, base)
+    figures = {p: pack_model(model_dir, None, replace(base, pruned=p)).heldout for p in fixed}
+    best = max(figures.values(), key=lambda m: (m.agreement, -m.mean_abs_prob_diff))
+    assert auto.policy in fixed and auto.heldout.agreement == best.agreement
+    assert auto.heldout.mean_abs_prob_diff == pytest.approx(best.mean_abs_prob_diff)
+
+
+def test_policy_auto_without_a_corpus_is_unk_with_an_unknown_row_else_skip(setup, unk_model):
+    assert pack_model(setup[0], None, PackOptions()).policy == "skip"
+    assert pack_model(unk_model[0], None, PackOptions()).policy == "unk"
 
 
 @pytest.mark.parametrize("fold,quantize", [("no", False), ("yes", False), ("yes", True)])

@@ -32,12 +32,15 @@ def pack_command(
     output: Path = typer.Option(..., "--output", "-o", metavar="FILE", help="Bundle file to write (replaced atomically)."),
     corpus: list[Path] = typer.Option([], "--corpus", "-c", metavar="FILE", help="Unlabelled deployment-domain texts (plain lines, .jsonl, .csv or .tsv); repeatable. Without one, every row the tokenizer can produce is kept."),
     text_field: Optional[str] = typer.Option(None, metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text [default: text]; needs such a corpus."),
-    coverage: Optional[str] = typer.Option(None, metavar="SHARE", help="Keep the most frequent rows until this share of the corpus's known tokens is covered: 0..1 or a percent such as 99.5% [default: 0.995]; only with a corpus."),
+    coverage: Optional[str] = typer.Option(None, metavar="SHARE", help="Keep the most frequent rows until this share of the known tokens of the selection texts (the corpus less its held-out slice) is covered: 0..1 or a percent such as 99.5%; only with a corpus. Default (none of --coverage, --top, --max-bytes, --target-agreement): the smallest bundle whose held-out agreement is within 0.1 pt of keeping every row."),
     top: Optional[int] = typer.Option(None, metavar="N", help="Keep exactly the N most frequent rows (keep-words count among them) instead of a coverage target; only with a corpus."),
     max_bytes: Optional[int] = typer.Option(None, metavar="BYTES", help="Keep the most rows whose whole bundle fits this many bytes (instead of --coverage or --top); only with a corpus."),
+    target_agreement: Optional[str] = typer.Option(None, metavar="SHARE", help="The smallest bundle (rows x pruned policy x fold) that agrees with the float model on at least this share of the held-out corpus texts (by its 90% lower confidence bound): 0..1 or a percent such as 99.5%; exit 1 and no bundle when none does. Only with a corpus."),
     keep_words: Optional[Path] = typer.Option(None, metavar="FILE", help="File of tokens (one per line) always kept, e.g. negations; only with a corpus (without one every row is kept)."),
-    pruned: str = typer.Option("auto", metavar="auto|skip|unk|rest", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (unk when the model has one, else skip)."),
-    fold: str = typer.Option("auto", metavar="auto|yes|no", help="Fold the first hidden layer into the table (store each row already multiplied by that layer's weights, so the device skips one matrix product and the table gets narrower): auto (when the layer is narrower than the embedding), yes, no."),
+    pruned: str = typer.Option("auto", metavar="auto|skip|unk|rest", help="Run-time fate of pruned tokens: skip (left out of the mean), unk (the model's unknown row), rest (one row holding the mean of the pruned rows), auto (the one with the best held-out agreement; without a corpus: unk when the model has one, else skip)."),
+    fold: str = typer.Option("auto", metavar="auto|yes|no", help="Fold the first hidden layer into the table (store each row already multiplied by that layer's weights, so the device skips one matrix product and the table gets narrower): auto (when the layer is narrower than the embedding; a measured search tries both), yes, no."),
+    rank: str = typer.Option("frequency", metavar="frequency|effect", help="Row ranking: frequency (corpus count), or effect (count x how far the row moves the first layer); only with a corpus."),
+    measure: bool = typer.Option(True, "--measure/--no-measure", help="Hold out about 1 in 7 corpus texts and choose by measurement (the default); --no-measure: rank on every text and use the fixed rules (coverage 0.995, policy unk when the model has one, else skip)."),
     token_sample: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record before packing."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
@@ -45,13 +48,12 @@ def pack_command(
     """Prune, quantise (int8, per-row scale), fold and export a float DAN into one bundle."""
     from danpack.files import check_outputs
     from danpack.model import model_files
-    from danpack.pack.build import PackOptions, pack_model
+    from danpack.pack.build import PackOptions, TargetError, pack_model
     from danpack.progress import Steps
-
     from danpack.textfile import detect_format, format_warning
 
-    chosen = [name for name, value in (("--coverage", coverage), ("--top", top), ("--max-bytes", max_bytes))
-              if value is not None]
+    chosen = [name for name, value in (("--coverage", coverage), ("--top", top), ("--max-bytes", max_bytes),
+                                       ("--target-agreement", target_agreement)) if value is not None]
     if len(chosen) > 1:
         fail(f"{' and '.join(chosen)} each choose how many rows to keep; give one of them")
     idle = chosen + (["--keep-words"] if keep_words is not None else [])
@@ -75,12 +77,18 @@ def pack_command(
 
             sample = check_token_sample(token_sample, load_model(model_dir), style="model")
         options = PackOptions(corpora=tuple(str(p) for p in corpus), text_field=text_field or "text",
-                              coverage=PackOptions.coverage if coverage is None else parse_share(coverage, "--coverage"),
-                              top=top,
-                              max_bytes=max_bytes, keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
-        steps = Steps(5 + (max_bytes is not None), quiet=quiet or json_out)
+                              coverage=None if coverage is None else parse_share(coverage, "--coverage"), top=top,
+                              max_bytes=max_bytes,
+                              target_agreement=None if target_agreement is None else parse_share(target_agreement,
+                                                                                                  "--target-agreement"),
+                              keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold, rank=rank,
+                              measure=measure)
+        steps = Steps(5 + (bool(corpus) and measure) + (max_bytes is not None and not (corpus and measure)),
+                      quiet=quiet or json_out)
         with interruptible(f"nothing was written ({output} is as it was)"):
             result = pack_model(model_dir, output, options, steps)
+    except TargetError as e:  # a finding, not bad input
+        fail(str(e), code=1)
     except DanpackError as e:
         fail(str(e))
     plan = result.plan
@@ -88,10 +96,12 @@ def pack_command(
         "bundle": str(result.path), "bytes": result.bytes, "float_bytes": result.source_bytes,
         "ratio": round(result.source_bytes / result.bytes, 2),
         "rows_kept": int(plan.keep), "rows_float": result.source_rows, "table_rows": result.rows, "table_width": result.width,
-        "coverage": round(plan.coverage, 6), "corpus_texts": plan.corpus_texts, "corpus_tokens": plan.corpus_tokens,
+        "coverage": round(plan.coverage, 6), "corpus_texts": plan.corpus_texts + result.heldout_texts,
+        "selection_texts": plan.corpus_texts, "heldout_texts": result.heldout_texts, "corpus_tokens": plan.corpus_tokens,
         "unreachable_rows": plan.unreachable, "unreachable_examples": list(plan.unreachable_examples),
         "unknown_keep_words": list(plan.unknown_keep_words), "pruned_policy": result.policy, "folded": result.folded,
-        "breakdown": result.breakdown,
+        "breakdown": result.breakdown, "choice": result.choice,
+        "heldout": None if result.heldout is None else result.heldout.to_dict(),
         "token_sample": None if sample is None else {"path": sample.path, "records": sample.records},
     }
     if json_out:
@@ -103,7 +113,12 @@ def pack_command(
                f"(float model {format_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
     if plan.has_corpus:
         typer.echo(f"kept {plan.keep:,} of {result.source_rows:,} rows, covering {plan.coverage:.2%} of the "
-                   f"{plan.known_tokens:,} known tokens in {plan.corpus_texts:,} corpus texts")
+                   f"{plan.known_tokens:,} known tokens in {plan.corpus_texts:,} selection texts "
+                   f"({result.heldout_texts:,} more held out for measurement); chosen by {result.choice}")
+        if result.heldout is not None:
+            h = result.heldout
+            typer.echo(f"held-out: agreement with the float model {h.agreement:.2%}, mean |dp| {h.mean_abs_prob_diff:.4f}, "
+                       f"certified {h.certified_share:.2%} of {h.texts:,} texts")
     else:
         typer.echo(f"no corpus given: kept every reachable row ({plan.keep:,} of {result.source_rows:,}); "
                    "quantisation only — pass --corpus to prune to the deployment vocabulary")
@@ -146,6 +161,10 @@ def inspect_command(
     typer.echo("layers   " + " -> ".join(  # a folded layer lives in the table: the device skips its matrix product
         f"{'folded into the table' if not l['weight'] else 'dense'} + {l['activation'] or 'softmax'}" for l in m["layers"]))
     typer.echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
+    held = m["selection"].get("heldout")
+    if isinstance(held, dict):
+        typer.echo(f"heldout  agreement {held['agreement']:.2%}, mean |dp| {held['mean_abs_prob_diff']:.4f}, certified "
+                   f"{held['certified_share']:.2%} of {held['texts']:,} texts; chosen by {m['selection'].get('choice')}")
     typer.echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
                f"{format_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
     typer.echo(f"packer   {m['packer']}")

@@ -24,6 +24,7 @@ class VocabOptions:
     coverage: float = 0.995  # keep frequent rows until this share of known corpus tokens is covered
     top: int | None = None  # or keep exactly the N most frequent rows (overrides coverage)
     keep_words: tuple[str, ...] = ()  # tokens always kept when the model knows them
+    effect: np.ndarray | None = None  # (V,) per-row effect weight: rank by count × effect (None: by count alone)
 
 
 @dataclass(frozen=True)
@@ -106,8 +107,9 @@ def plan_vocab(
     forced_set = set(forced)
     reachable = np.flatnonzero(~unreachable)  # (R,)
     rest = np.array([r for r in reachable if r not in forced_set], dtype=np.int64) if forced_set else reachable
-    # most frequent first; stable sort keeps row order among ties (deterministic)
-    rest = rest[np.argsort(-freq[rest], kind="stable")]
+    # most frequent (or count × effect) first; stable sort keeps row order among ties (deterministic)
+    score = freq[rest] if options.effect is None else freq[rest] * options.effect[rest]  # (R,)
+    rest = rest[np.argsort(-score, kind="stable")]
     ranked = np.concatenate([np.array(forced, dtype=np.int64), rest]).astype(np.int64)
     row_counts = freq[ranked]
 
@@ -125,6 +127,36 @@ def plan_vocab(
         unknown_keep_words=unknown_keep, has_corpus=corpus is not None,
     )
     return plan.with_keep(keep)
+
+
+def row_effects(embedding: np.ndarray, first_weight: np.ndarray | None) -> np.ndarray:
+    """(V,) float64: how far each row moves the first layer's input, |W1 (E_t − ē)| (or |E_t − ē| without a
+    hidden layer), ē the table's mean row: a cheap proxy of a token's effect on the decision."""
+    centre = embedding.mean(axis=0, dtype=np.float64)  # (D,)
+    out = np.empty(embedding.shape[0], np.float64)  # (V,)
+    for start in range(0, embedding.shape[0], 65536):
+        block = embedding[start : start + 65536].astype(np.float64) - centre  # (b, D)
+        if first_weight is not None:
+            block = block @ first_weight.T.astype(np.float64)  # (b, H1)
+        out[start : start + 65536] = np.sqrt((block * block).sum(axis=1))
+    return out
+
+
+def pruned_mean_row(embedding: np.ndarray, plan: VocabPlan) -> np.ndarray:
+    """(D,) float32: the pruned-rest row, the corpus-frequency-weighted mean of the pruned reachable rows
+    (their plain mean when the corpus saw none of them; zeros when nothing is pruned)."""
+    pruned = plan.ranked_rows[plan.keep :]  # (P,)
+    if len(pruned) == 0:
+        return np.zeros(embedding.shape[1], np.float32)
+    weights = plan.row_counts[plan.keep :].astype(np.float64)  # (P,)
+    seen = np.flatnonzero(weights)  # only rows with a weight contribute
+    if seen.size:
+        total = weights[seen] @ embedding[pruned[seen]].astype(np.float64)  # (D,)
+        return (total / weights[seen].sum()).astype(np.float32)
+    total = np.zeros(embedding.shape[1], np.float64)  # (D,)
+    for start in range(0, len(pruned), 65536):  # in blocks: a 400k-row table stays out of a float64 copy
+        total += embedding[pruned[start : start + 65536]].astype(np.float64).sum(axis=0)
+    return (total / len(pruned)).astype(np.float32)
 
 
 def _rows_for_coverage(row_counts: np.ndarray, forced: int, known: int, target: float) -> int:
