@@ -7,24 +7,25 @@ from typing import Optional
 
 import typer
 
-from danpack.cli.common import fail
+from danpack.cli.common import fail, interruptible
 from danpack.cli.pack import _read_keep_words
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
 # The library (numpy, onnx, matplotlib) is imported inside the command: `danpack --help` stays fast.
 
 
-@app.command("frontier")
+@app.command("frontier", cls=PlainCommand,
+             short_help="Measure candidate bundles and plot their size against agreement with the float model.")
 def frontier_command(
-    model_dir: Path = typer.Argument(..., help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
-    corpus: list[Path] = typer.Option(..., "--corpus", "-c", help="Unlabelled deployment-domain texts, as for `danpack pack` (about 1 in 7 is held out to measure); repeatable."),
-    output: Path = typer.Option(..., "--output", "-o", help="Folder for frontier.json, frontier.svg and frontier.png."),
-    eval_file: Optional[Path] = typer.Option(None, "--eval", help="Texts (JSONL, CSV or TSV) also measured at every point; with a 'label' field, accuracy too."),
-    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text."),
-    keep_words: Optional[Path] = typer.Option(None, help="File of tokens (one per line) always kept, as for `danpack pack`."),
-    pruned: str = typer.Option("auto", help="Pruned-token policies to try: auto (every one the model can use), skip, unk or rest."),
-    fold: str = typer.Option("auto", help="Fold modes to try: auto (both, when the model has a hidden layer), yes or no."),
+    model_dir: Path = typer.Argument(..., metavar="MODEL_DIR", help="Float model directory (dan.json, tokens.txt, weights.npz or weights.safetensors)."),
+    corpus: list[Path] = typer.Option(..., "--corpus", "-c", metavar="FILE", help="Unlabelled deployment-domain texts, as for `danpack pack` (about 1 in 7 is held out to measure); repeatable."),
+    output: Path = typer.Option(..., "--output", "-o", metavar="DIR", help="Folder for frontier.json, frontier.svg and frontier.png."),
+    eval_file: Optional[Path] = typer.Option(None, "--eval", metavar="FILE", help="Texts (JSONL, CSV or TSV) also measured at every point; with a 'label' field, accuracy too."),
+    text_field: str = typer.Option("text", metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text."),
+    keep_words: Optional[Path] = typer.Option(None, metavar="FILE", help="File of tokens (one per line) always kept, as for `danpack pack`."),
+    pruned: str = typer.Option("auto", metavar="auto|skip|unk|rest", help="Pruned-token policies to try: auto (every one the model can use), skip, unk or rest."),
+    fold: str = typer.Option("auto", metavar="auto|yes|no", help="Fold modes to try: auto (both, when the model has a hidden layer), yes or no."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
     """Measure a grid of candidate bundles (rows x pruned policy x fold) on held-out corpus texts; write the
@@ -44,8 +45,9 @@ def frontier_command(
                            keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold)
         options = FrontierOptions(pack, None if eval_file is None else str(eval_file),
                                   None if keep_words is None else str(keep_words))
-        result = run_frontier(model_dir, options, Steps(5 + (eval_file is not None), quiet=quiet))
-        json_path, plots, no_plot = write_frontier(result, output)
+        with interruptible(f"nothing was written in {output}"):
+            result = run_frontier(model_dir, options, Steps(5 + (eval_file is not None), quiet=quiet))
+            json_path, plots, no_plot = write_frontier(result, output)
     except DanpackError as e:
         fail(str(e))
     for line in format_table(result):
