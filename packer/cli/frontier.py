@@ -36,7 +36,13 @@ def frontier_command(
     from danpack.pack.frontier import FrontierOptions, format_table, run_frontier, write_frontier
     from danpack.progress import Steps
 
+    if output.exists() and not output.is_dir():
+        fail(f"--output {output} is a file, not a folder; give the folder to write frontier.json and the plots into")
+    if not output.parent.is_dir():  # as for every output: a typo must not create a tree of folders
+        fail(f"--output {output}: the folder {output.parent} does not exist; create it first (mkdir -p "
+             f"{output.parent}) or correct the path")
     try:
+        output.mkdir(exist_ok=True)
         inputs = {**{f"model file {n}": p for n, p in model_files(model_dir).items()},
                   **{f"--corpus {p}": p for p in corpus}, "--eval": eval_file, "--keep-words": keep_words}
         check_outputs({f"--output {output}/{name}": output / name

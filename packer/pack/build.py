@@ -37,6 +37,7 @@ DEFAULT_PRUNED = "skip"  # measured on the demo models (README, "Choosing the pr
 PROBE_TEXTS = 8  # id sequences stored in the manifest, re-run by the runtime on load
 DEFAULT_LOSS = 0.001  # measured default: the smallest bundle within 0.1 pt of every row's held-out agreement
 FALLBACK_COVERAGE = 0.995  # the cut when nothing can be measured (no held-out text)
+MIN_HELDOUT_TEXTS = 20  # fewer held-out texts (a corpus under about 130) measure nothing: the corpus is not split
 
 
 class PackError(DanpackError):
@@ -314,6 +315,11 @@ def prepare_pack(model_dir: str | os.PathLike, options: PackOptions, steps: Step
             effect = row_effects(model.embedding, model.layers[0].weight if len(model.layers) > 1 else None)
         vocab_options = VocabOptions(coverage=cut, top=options.top, keep_words=options.keep_words, effect=effect)
         plan = plan_vocab(model.vocab, Tokenizer(model.tokenizer), selection, vocab_options, always)
+        if 0 < len(heldout_texts) < MIN_HELDOUT_TEXTS and options.target_agreement is None:
+            # too few texts to measure anything: every text ranks rows and the fixed rules apply
+            heldout_texts = []
+            plan = plan_vocab(model.vocab, Tokenizer(model.tokenizer), read_corpora(options.corpora, options.text_field),
+                              vocab_options, always)
     if plan.has_corpus and plan.known_tokens == 0:  # the cut would keep one arbitrary row: a useless bundle
         raise PackError(f"the corpus ({plan.corpus_texts + len(heldout_texts):,} texts, {plan.corpus_tokens:,} tokens "
                         "outside the held-out slice) holds no token the model knows; check the file, --text-field "
@@ -386,7 +392,8 @@ def _describe_cut(plan: VocabPlan, options: PackOptions) -> str:
         return f"--top {options.top}"
     if options.coverage is not None:
         return f"--coverage {options.coverage}"
-    return f"no held-out text to measure: coverage {FALLBACK_COVERAGE}"
+    return (f"corpus too small to hold out a slice (under {MIN_HELDOUT_TEXTS} held-out texts): "
+            f"coverage {FALLBACK_COVERAGE}")
 
 
 def _choose(model: FloatModel, plan: VocabPlan, options: PackOptions, policies: tuple[str, ...], searcher: Searcher,
