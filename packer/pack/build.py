@@ -20,6 +20,7 @@ from danpack.runtime.tokenize import Tokenizer
 
 from danpack import __version__
 from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+from danpack.pack.envelope import unknown_envelope
 from danpack.files import file_sha256, write_atomic
 from danpack.pack.fold import fold_first_layer, should_fold
 from danpack.pack.graph import GraphSpec, build_graph, check_graph
@@ -141,7 +142,9 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
     """Assemble the bundle bytes for a vocabulary plan; returns (bytes, breakdown, folded, rows, width)."""
     kept = plan.kept_rows  # (K,)
     vocab = [model.vocab[r] for r in kept]
-    table = model.embedding[kept] if len(kept) != len(model.vocab) else model.embedding  # (K, D)
+    # every row kept still follows the ranking's order (the vocabulary's): only the identity order needs no copy
+    same = len(kept) == len(model.vocab) and bool((kept == np.arange(len(kept))).all())
+    table = model.embedding if same else model.embedding[kept]  # (K, D)
     oov_row = None
     if policy == "rest":
         table = np.vstack([table, _rest_row(model, plan)[None, :]])  # (K + 1, D)
@@ -188,6 +191,7 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
         "pack": options,
         "packer": f"danpack {__version__}",
         "probe": _probe(tensors["table"], tensors.get("scales"), layers, rows, probe_ids),
+        "unknown": unknown_envelope(model, kept, folded),  # what a token the bundle does not know may have done
     }
     epoch = source_date_epoch()
     if epoch is not None:
