@@ -259,6 +259,14 @@ class BoxBound:
     contrast: np.ndarray | None  # (C, C, H) float64 |W_c − W_k| of the output layer (None when it is folded)
     envelope: Envelope | None
 
+    @property
+    def row_terms(self) -> np.ndarray:
+        """(R, 3) float64: steps, radius and mass side by side, gathered once per text."""
+        return self._row_terms
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_row_terms", np.stack([self.steps, self.radius, self.mass], axis=1))
+
 
 def gamma64(k: int) -> float:
     """γ_k for float64 (u = 2⁻⁵³): the rounding of this module's own dot products of k terms."""
@@ -337,10 +345,16 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
     a box holding the float model's computed mean (table space), for every text marked covered."""
     mask = (np.arange(ids.shape[1])[None, :] < counts[:, None]) & bound.certifiable[ids]  # (B, T): own rows
     n = mask.sum(axis=1)  # (B,)
-    weight = np.where(mask, bound.steps[ids], 0.0)  # (B, T)
-    total = np.einsum("bt,btw->bw", weight, bound.table[ids].astype(np.float64))  # (B, W): Σ dequantised rows
-    reach = np.where(mask, bound.radius[ids], 0.0).sum(axis=1)  # (B,): Σ r_t
-    reach = reach + gamma(n + unknown + bound.terms) * np.where(mask, bound.mass[ids], 0.0).sum(axis=1)
+    flat = ids[mask]  # (N,): every text's own rows, text after text (padding never gathered)
+    terms = bound.row_terms[flat]  # (N, 3): step, radius, mass
+    rows = bound.table[flat].astype(np.float64) * terms[:, :1]  # (N, W): dequantised, exact (q·s: 8 + 24 bits)
+    parts = np.concatenate([rows, terms[:, 1:]], axis=1)  # (N, W + 2)
+    sums = np.zeros((ids.shape[0], parts.shape[1]))  # (B, W + 2): Σ rows, Σ r_t, Σ mass_t
+    has = n > 0
+    if flat.size:  # float64 sums round far below the float32 allowance (module doc)
+        sums[has] = np.add.reduceat(parts, (np.cumsum(n) - n)[has], axis=0)
+    total = sums[:, :-2]  # (B, W)
+    reach = sums[:, -2] + gamma(n + unknown + bound.terms) * sums[:, -1]  # (B,)
     low, high = total - reach[:, None], total + reach[:, None]  # (B, W): the kept rows' sum, float side
     kept_n = np.maximum(n, 1).astype(np.float64)[:, None]  # (B, 1)
     lo, hi = low / kept_n, high / kept_n  # k = 0: every unknown token left out

@@ -301,3 +301,23 @@ def test_every_row_kept_follows_the_ranked_vocabulary(tmp_path):
     for token in ("w0", "w17", "w39"):
         np.testing.assert_array_equal(bundle.tensors["table"][bundle.vocab.index(token)],
                                       model.embedding[model.vocab.index(token)])
+
+
+def test_envelope_rounding_reserve_is_needed(tmp_path, monkeypatch):
+    """Texts of one all-zero kept row and copies of the most extreme pruned rows: the float model's mean of
+    them rounds past the rows' exact envelope, which only the packer's float32 reserve covers."""
+    import danpack.pack.envelope as envelope
+
+    rng = np.random.default_rng(13)
+    model = random_model(rng, vocab=60, dim=8, hidden=(5,), scale=3.0)
+    emb = model.embedding.copy()
+    emb[0] = 0.0
+    model = replace(model, embedding=emb)
+    extreme = [f"w{i}" for i in set(emb[12:].argmax(axis=0) + 12) | set(emb[12:].argmin(axis=0) + 12)]
+    texts = [" ".join(["w0", *[a] * u, *[b] * v]) for a in extreme for b in extreme for u in range(1, 12)
+             for v in range(0, 4)]
+    bundle = pack_pruned(model, tmp_path / "a", rng, 12, fold="no", quantize=False)
+    assert containment_violation(model, bundle, texts) <= 0.0
+    monkeypatch.setattr(envelope, "gamma", lambda k: np.zeros_like(np.asarray(k, dtype=np.float64)))
+    bundle = pack_pruned(model, tmp_path / "b", rng, 12, fold="no", quantize=False)
+    assert containment_violation(model, bundle, texts) > 0.0
