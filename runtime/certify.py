@@ -29,8 +29,41 @@ Every term is listed where it is computed below; README-level summary:
     first matmul W1·mean(E): both are at most γ_k Σ_d |W1_hd| |E_td|, a quantity the bundle does
     not hold. The runtime assumes Σ_d |W1_hd| |E_td| ≤ FOLD_MASS_STEPS · s_t for every kept row;
     packer/bound.py verifies this premise on the actual rows and reports any row that breaks it.
-Not covered: tokens the bundle does not know (pruned or unknown) and tokens mapped to its
-out-of-vocabulary row. Texts holding one are never certified.
+The bound above (`drift_bound`, `logit_bounds`) covers texts whose tokens all have their own row; it
+gives `danpack inspect` its worst case. What `predict_certified` uses is the per-text BOX below, which
+also covers tokens the bundle does not know.
+
+Box certification (`box_bound`, `mean_box`, `logit_gaps`, `certify_box`). It bounds the FLOAT model's
+computation directly, from what the device knows, and asks whether the float model's top class is the
+device's; the device's own rounding never enters (only its argmax is used).
+  1. Tokens. Of a text's tokens (after the tokenizer's cap, which both sides share), n have their own
+     kept row t and u do not (under `skip` the device left them out; under `unk` and `rest` it put them
+     on the out-of-vocabulary row, which counts as "not its own" even for the literal unknown token).
+  2. The float model's mean, in table space (the first pre-activation W1·mean(E) when folded). A kept
+     token's float row lies within r_t of the dequantised row (premise, verified by the packer). A token
+     without its own row was, in the float model, one of three things, whatever the bundle's policy:
+       - a pruned row: any row of the float table the bundle left out;
+       - a word the float model never knew, which a `skip` float model leaves out of its mean and an
+         `unk` float model maps to its unknown row (that row is always kept, but the device cannot tell
+         a word the float model maps there from a pruned one, so the row joins the envelope);
+     The manifest's `unknown` field holds the per-coordinate min and max over all those rows (every row
+     left out, reachable or not; plus the unknown row) and whether "left out" is possible (`skipped`).
+     With k of the u tokens standing for rows, the float mean is (Σ_kept E_t + Σ_k E_p) / (n + k): it
+     lies in [(S − R + k·lo), (S + R + k·hi)] / (n + k), S the sum of dequantised kept rows, R = Σ r_t.
+     (a + k·e) / (n + k) is monotone in k, so k = 0 and k = u bound every k between (hull); a `skip`
+     float model may have any k in 0..u, an `unk` float model has k = u. The device's policy changes
+     only what the DEVICE computed (its label), never this box. n = 0: never certified.
+  3. float32 rounding of the float model's mean: γ_{n+u+terms} (1/(n+k)) Σ mass per element, split
+     into the kept rows' share (added per text to R) and the pruned rows' share (the packer widened
+     the envelope by γ_{max_tokens+terms}·mass_p, so nothing more is needed on the device); terms = 2
+     (sum and division) or D + 1 when folded (the float model's W1 matmul; mass = Σ_d |W1_hd||E_td|).
+  4. Layers, per text: centre c and radius r; z = W c + b, r ← |W| r + allowance, where the allowance
+     is the float model's float32 rounding of that layer (γ_in Σ|W||a| + γ_1 |z|, with |a| bounded
+     once per bundle). ReLU maps [c − r, c + r] exactly (a unit whose whole interval is negative gives
+     0, a positive one passes linearly); tanh maps it monotonically, widened by TANH_ERROR.
+  5. The output layer: the logit DIFFERENCE z_top − z_k ≥ (W_top − W_k)·c + b_top − b_k
+     − |W_top − W_k|·r − allowance_top − allowance_k; certified when every such bound is > 0.
+This module's own float64 arithmetic is covered by γ64 terms, INFLATE and 2⁻⁵⁰-relative slack.
 """
 
 from __future__ import annotations

@@ -239,7 +239,8 @@ def test_worst_case_bound_covers_every_text(tmp_path):
     texts = random_texts(rng, list(model.vocab), 100)
     ids, counts, _ = certify.encode_kept(Classifier(bundle, "numpy").encoder, texts)
     assert (certify.logit_bounds(certify.drift_bound(bundle), ids, counts) <= b * (1 + 1e-9)).all()
-    assert len(describe_bound(worst)) == 4 and describe_bound(worst)[0].startswith("drift bound: ")
+    lines = describe_bound(worst)
+    assert len(lines) == 5 and lines[0].startswith("drift bound: ") and "every row kept" in lines[4]
 
 
 # --- runtime and float-side certification ------------------------------------------------------------

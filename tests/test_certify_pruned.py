@@ -321,3 +321,37 @@ def test_envelope_rounding_reserve_is_needed(tmp_path, monkeypatch):
     monkeypatch.setattr(envelope, "gamma", lambda k: np.zeros_like(np.asarray(k, dtype=np.float64)))
     bundle = pack_pruned(model, tmp_path / "b", rng, 12, fold="no", quantize=False)
     assert containment_violation(model, bundle, texts) > 0.0
+
+
+def test_manifest_envelope_is_validated(tmp_path):
+    """The reader refuses a malformed `unknown` field by name; a bundle without it (older packer) loads and
+    never certifies a text holding a token it does not know."""
+    from danpack.pack.bundle import encode_bundle, encode_payload
+    from danpack.runtime.errors import BundleError
+
+    rng = np.random.default_rng(4)
+    model = random_model(rng, vocab=40, dim=6, hidden=(4,))
+    bundle = pack_pruned(model, tmp_path, rng, 10, fold="no")
+    width = bundle.tensors["table"].shape[1]
+
+    def repack(field) -> bytes:
+        manifest = {k: v for k, v in bundle.manifest.items() if k != "unknown"}
+        if field is not None:
+            manifest["unknown"] = field
+        from danpack.pack.bundle import encode_vocab
+        return encode_bundle(encode_payload(manifest, encode_vocab(list(bundle.vocab)), bundle.graph,
+                                            dict(bundle.tensors)))
+
+    good = bundle.manifest["unknown"]
+    for bad, message in (([1, 2], "must be a map"), ({**good, "rows": -1}, "expected a count and a bool"),
+                         ({**good, "rows": 0, "skipped": False}, "a count of 0 only when skipped"),
+                         ({**good, "lo": good["lo"][:-1]}, f"{width} finite floats"),
+                         ({**good, "hi": [float("inf")] * width}, "finite floats"),
+                         ({**good, "lo": good["hi"], "hi": good["lo"]}, "lo <= hi")):
+        with pytest.raises(BundleError, match=message):
+            decode_bundle(repack(bad), "crafted")
+    older = decode_bundle(repack(None), "older")
+    texts = ["w1 w2 w3 w30", "w1 w2 w3"]
+    _, _, certified = Classifier(older, "numpy").predict_certified(texts)
+    assert not certified[0]
+    assert Classifier(bundle, "numpy").predict_certified(texts)[2][1] == certified[1]

@@ -141,7 +141,8 @@ def worst_case_bound(bundle: Bundle | str | os.PathLike) -> dict:
     pair = np.sort(logit)[-2:].sum()  # max over c ≠ c' of b_c + b_c'
     labels = bundle.labels
     return {
-        "method": "interval bound propagation of the int8 table error; activations relaxed to Lipschitz 1",
+        "method": "interval bound propagation of the int8 table error; activations relaxed to Lipschitz 1 "
+                  "(worst case over texts of kept tokens; predict_certified bounds each text on its own box)",
         "table": bundle.manifest["table"]["dtype"],
         "folded": bound.fold_terms > 0,
         "max_tokens": n,
@@ -151,11 +152,21 @@ def worst_case_bound(bundle: Bundle | str | os.PathLike) -> dict:
         "rounding_allowance": dict(zip(labels, bound.allowance.tolist())),
         "logit_bound": dict(zip(labels, logit.tolist())),
         "safe_margin": float(pair),
+        "unknown_tokens": _describe_envelope(bundle),
         "premise": (f"every kept row within {HALF_STEP:g} quantisation steps of its float row"
                     + (f" (plus float32 folding reserve), first-layer mass Σ|W1||E| at most {FOLD_MASS_STEPS:g} steps"
                        if bound.fold_terms else "")
                     + "; verified against the float model by certify_texts (`danpack check`)"),
     }
+
+
+def _describe_envelope(bundle: Bundle) -> dict | None:
+    """What the manifest's `unknown` envelope says, for `danpack inspect` (None: packed before it existed)."""
+    env = read_envelope(bundle)
+    if env is None:
+        return None
+    return {"rows": env.rows, "skipped": env.skipped,
+            "mean_width": float((env.hi - env.lo).mean()) if env.rows else 0.0}
 
 
 def describe_bound(worst: dict) -> list[str]:
@@ -169,7 +180,18 @@ def describe_bound(worst: dict) -> list[str]:
         f"logit bound per class: {bounds}",
         f"any prediction whose logit margin exceeds {worst['safe_margin']:.3g} cannot be changed by quantisation "
         "(texts whose tokens are all kept)",
+        _envelope_line(worst.get("unknown_tokens")),
     ]
+
+
+def _envelope_line(env: dict | None) -> str:
+    if env is None:
+        return "tokens the bundle does not know: no envelope (packed by an older danpack), such texts are never certified"
+    if not env["rows"]:
+        return "tokens the bundle does not know: the float model never knew them either (every row kept); certified per text"
+    return (f"tokens the bundle does not know: each may stand for any of {env['rows']:,} float rows"
+            + (" or be left out" if env["skipped"] else "")
+            + f" (envelope, mean width {env['mean_width']:.3g}); texts holding them are certified per text")
 
 
 def _check_pair(model: FloatModel, bundle: Bundle, source: str) -> None:
