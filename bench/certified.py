@@ -26,7 +26,7 @@ from .stats import paired_ratios, summarize
 from .timing import interleave
 
 BATCH = 256
-ROUNDS = 30
+ROUNDS = 80
 
 
 def envelope_bytes(bundle) -> int:

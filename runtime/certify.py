@@ -57,6 +57,8 @@ device's; the device's own rounding never enters (only its argmax is used).
      into the kept rows' share (added per text to R) and the pruned rows' share (the packer widened
      the envelope by γ_{max_tokens+terms}·mass_p, so nothing more is needed on the device); terms = 2
      (sum and division) or D + 1 when folded (the float model's W1 matmul; mass = Σ_d |W1_hd||E_td|).
+     The device sums its dequantised rows in float32 (q·s rounded, then n terms): γ_{n+1} Σ mass_t more,
+     as mass_t ≥ max |dequantised row t| (enforced in `box_bound`).
   4. Layers, per text: centre c and radius r; z = W c + b, r ← |W| r + allowance, where the allowance
      is the float model's float32 rounding of that layer (γ_in Σ|W||a| + γ_1 |z|, with |a| bounded
      once per bundle). ReLU maps [c − r, c + r] exactly (a unit whose whole interval is negative gives
@@ -294,11 +296,17 @@ class BoxBound:
 
     @property
     def row_terms(self) -> np.ndarray:
-        """(R, 3) float64: steps, radius and mass side by side, gathered once per text."""
+        """(R, 2) float64: radius and mass side by side, gathered once per text."""
         return self._row_terms
 
+    @property
+    def row_steps32(self) -> np.ndarray:
+        """(R,) float32: the steps as stored (exact: they are float32 scales, or 1)."""
+        return self._steps32
+
     def __post_init__(self) -> None:
-        object.__setattr__(self, "_row_terms", np.stack([self.steps, self.radius, self.mass], axis=1))
+        object.__setattr__(self, "_row_terms", np.stack([self.radius, self.mass], axis=1))
+        object.__setattr__(self, "_steps32", self.steps.astype(np.float32))
 
 
 def gamma64(k: int) -> float:
@@ -317,6 +325,7 @@ def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
     folded = drift.fold_terms > 0
     # the float model's mean rounds by at most γ_{n+terms} (1/n) Σ mass_t per element (module doc, step 2)
     mass = drift.fold_mass if folded else magnitude + drift.radius  # (R,)
+    mass = np.maximum(mass, magnitude)  # also bounds |dequantised row|, for the device's own float32 sum
     terms = drift.fold_terms if folded else 2
     g_mean = float(gamma(drift.max_tokens + terms))
 
@@ -379,15 +388,18 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
     mask = (np.arange(ids.shape[1])[None, :] < counts[:, None]) & bound.certifiable[ids]  # (B, T): own rows
     n = mask.sum(axis=1)  # (B,)
     flat = ids[mask]  # (N,): every text's own rows, text after text (padding never gathered)
-    terms = bound.row_terms[flat]  # (N, 3): step, radius, mass
-    rows = bound.table[flat].astype(np.float64) * terms[:, :1]  # (N, W): dequantised, exact (q·s: 8 + 24 bits)
-    parts = np.concatenate([rows, terms[:, 1:]], axis=1)  # (N, W + 2)
-    sums = np.zeros((ids.shape[0], parts.shape[1]))  # (B, W + 2): Σ rows, Σ r_t, Σ mass_t
+    rows = bound.table[flat].astype(np.float32)  # (N, W): int8 -> float32 is exact
+    rows *= bound.row_steps32[flat][:, None]  # dequantised in float32: each product within u·|q·s|
+    terms = bound.row_terms[flat]  # (N, 2) float64: radius, mass
+    total = np.zeros((ids.shape[0], rows.shape[1]))  # (B, W): Σ dequantised rows
+    sums = np.zeros((ids.shape[0], 2))  # (B, 2): Σ r_t, Σ mass_t
     has = n > 0
-    if flat.size:  # float64 sums round far below the float32 allowance (module doc)
-        sums[has] = np.add.reduceat(parts, (np.cumsum(n) - n)[has], axis=0)
-    total = sums[:, :-2]  # (B, W)
-    reach = sums[:, -2] + gamma(n + unknown + bound.terms) * sums[:, -1]  # (B,)
+    if flat.size:
+        starts = (np.cumsum(n) - n)[has]
+        total[has] = np.add.reduceat(rows, starts, axis=0)  # float32 sums: within γ_{n+1} Σ|q·s| ≤ γ_{n+1} Σ mass
+        sums[has] = np.add.reduceat(terms, starts, axis=0)
+    # the float model's mean rounding, plus this sum's own (|dequantised row| ≤ mass_t for every row: module doc)
+    reach = sums[:, 0] + (gamma(n + unknown + bound.terms) + gamma(n + 1)) * sums[:, 1] * INFLATE  # (B,)
     low, high = total - reach[:, None], total + reach[:, None]  # (B, W): the kept rows' sum, float side
     kept_n = np.maximum(n, 1).astype(np.float64)[:, None]  # (B, 1)
     lo, hi = low / kept_n, high / kept_n  # k = 0: every unknown token left out

