@@ -69,7 +69,7 @@ def test_share_among_texts_with_unknown_tokens_is_reported(tmp_path):
     pack_model(model_dir, bundle, PackOptions(corpora=(str(corpus),), coverage=1.0))
     report, markdown = tmp_path / "r.json", tmp_path / "r.md"
     result = _check(model_dir, bundle, eval_file, "--report", str(report), "--markdown", str(markdown),
-                    "--min-agreement", "0", "--max-accuracy-drop", "100")
+                    "--min-agreement", "0", "--max-points-lost", "100")
     assert result.exit_code == 0, result.stdout + result.stderr
     figures = json.loads(report.read_text())["figures"]
     assert 0.0 <= figures["certified_share_of_uncovered"] <= 1.0 and figures["certified_changes"] == 0
