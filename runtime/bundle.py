@@ -331,6 +331,7 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
         raise fail(f"field 'table.folded' is {_show(table_meta.get('folded'))}, but layer 0 "
                    f"{'has no' if not layers[0]['weight'] else 'has its'} weight")
     _check_probe(fail, m.get("probe"), rows, len(labels))
+    _check_unknown(fail, m.get("unknown"), table.shape[1])
     _check_description(fail, m)
     for name, t in tensors.items():
         if t.dtype == DTYPES["float32"] and not np.isfinite(t).all():
@@ -385,6 +386,21 @@ def _check_description(fail, m: dict) -> None:
             raise fail(f"nests deeper than {MAX_MANIFEST_DEPTH} levels of maps and lists")
         children = value.values() if isinstance(value, dict) else value if isinstance(value, list) else ()
         stack.extend((child, depth + 1) for child in children if isinstance(child, (dict, list)))
+
+
+def _check_unknown(fail, field: object, width: int) -> None:
+    """The optional envelope of tokens the bundle does not know (runtime/certify.py); absent in older bundles."""
+    if field is None:
+        return
+    if not isinstance(field, dict) or set(field) != {"rows", "skipped", "lo", "hi"}:
+        raise fail("field 'unknown' must be a map with rows, skipped, lo and hi")
+    rows, skipped, lo, hi = field["rows"], field["skipped"], field["lo"], field["hi"]
+    if not _is_count(rows) or not isinstance(skipped, bool) or not (rows or skipped):
+        raise fail(f"field 'unknown' has rows {_show(rows)} and skipped {_show(skipped)}, expected a count and a bool "
+                   "(a count of 0 only when skipped)")
+    if not all(isinstance(v, list) and len(v) == width and all(isinstance(x, float) and math.isfinite(x) for x in v)
+               for v in (lo, hi)) or any(a > b for a, b in zip(lo, hi)):
+        raise fail(f"field 'unknown' lo and hi must be {width} finite floats each (the table width), lo <= hi")
 
 
 def _check_probe(fail, probe: object, rows: int, classes: int) -> None:

@@ -29,8 +29,43 @@ Every term is listed where it is computed below; README-level summary:
     first matmul W1·mean(E): both are at most γ_k Σ_d |W1_hd| |E_td|, a quantity the bundle does
     not hold. The runtime assumes Σ_d |W1_hd| |E_td| ≤ FOLD_MASS_STEPS · s_t for every kept row;
     packer/bound.py verifies this premise on the actual rows and reports any row that breaks it.
-Not covered: tokens the bundle does not know (pruned or unknown) and tokens mapped to its
-out-of-vocabulary row. Texts holding one are never certified.
+The bound above (`drift_bound`, `logit_bounds`) covers texts whose tokens all have their own row; it
+gives `danpack inspect` its worst case. What `predict_certified` uses is the per-text BOX below, which
+also covers tokens the bundle does not know.
+
+Box certification (`box_bound`, `mean_box`, `logit_gaps`, `certify_box`). It bounds the FLOAT model's
+computation directly, from what the device knows, and asks whether the float model's top class is the
+device's; the device's own rounding never enters (only its argmax is used).
+  1. Tokens. Of a text's tokens (after the tokenizer's cap, which both sides share), n have their own
+     kept row t and u do not (under `skip` the device left them out; under `unk` and `rest` it put them
+     on the out-of-vocabulary row, which counts as "not its own" even for the literal unknown token).
+  2. The float model's mean, in table space (the first pre-activation W1·mean(E) when folded). A kept
+     token's float row lies within r_t of the dequantised row (premise, verified by the packer). A token
+     without its own row was, in the float model, one of three things, whatever the bundle's policy:
+       - a pruned row: any row of the float table the bundle left out;
+       - a word the float model never knew, which a `skip` float model leaves out of its mean and an
+         `unk` float model maps to its unknown row (that row is always kept, but the device cannot tell
+         a word the float model maps there from a pruned one, so the row joins the envelope);
+     The manifest's `unknown` field holds the per-coordinate min and max over all those rows (every row
+     left out, reachable or not; plus the unknown row) and whether "left out" is possible (`skipped`).
+     With k of the u tokens standing for rows, the float mean is (Σ_kept E_t + Σ_k E_p) / (n + k): it
+     lies in [(S − R + k·lo), (S + R + k·hi)] / (n + k), S the sum of dequantised kept rows, R = Σ r_t.
+     (a + k·e) / (n + k) is monotone in k, so k = 0 and k = u bound every k between (hull); a `skip`
+     float model may have any k in 0..u, an `unk` float model has k = u. The device's policy changes
+     only what the DEVICE computed (its label), never this box. n = 0: never certified.
+  3. float32 rounding of the float model's mean: γ_{n+u+terms} (1/(n+k)) Σ mass per element, split
+     into the kept rows' share (added per text to R) and the pruned rows' share (the packer widened
+     the envelope by γ_{max_tokens+terms}·mass_p, so nothing more is needed on the device); terms = 2
+     (sum and division) or D + 1 when folded (the float model's W1 matmul; mass = Σ_d |W1_hd||E_td|).
+     The device sums its dequantised rows in float32 (q·s rounded, then n terms): γ_{n+1} Σ mass_t more,
+     as mass_t ≥ max |dequantised row t| (enforced in `box_bound`).
+  4. Layers, per text: centre c and radius r; z = W c + b, r ← |W| r + allowance, where the allowance
+     is the float model's float32 rounding of that layer (γ_in Σ|W||a| + γ_1 |z|, with |a| bounded
+     once per bundle). ReLU maps [c − r, c + r] exactly (a unit whose whole interval is negative gives
+     0, a positive one passes linearly); tanh maps it monotonically, widened by TANH_ERROR.
+  5. The output layer: the logit DIFFERENCE z_top − z_k ≥ (W_top − W_k)·c + b_top − b_k
+     − |W_top − W_k|·r − allowance_top − allowance_k; certified when every such bound is > 0.
+This module's own float64 arithmetic is covered by γ64 terms, INFLATE and 2⁻⁵⁰-relative slack.
 """
 
 from __future__ import annotations
@@ -225,9 +260,210 @@ def certify_margins(logits: np.ndarray, bounds: np.ndarray) -> np.ndarray:
     return ok.all(axis=1) & np.isfinite(bounds).all(axis=1)
 
 
-def certify_packed(bound: DriftBound, logits: np.ndarray, ids: np.ndarray, counts: np.ndarray,
-                   kept: np.ndarray) -> np.ndarray:
-    """(B,) bool from the packed logits: True where the float model provably predicts the same class. A text with
-    no token (count 0) is never certified: the same answer on both sides says nothing about the text."""
-    in_rows = np.where(np.arange(ids.shape[1])[None, :] < counts[:, None], bound.certifiable[ids], True).all(axis=1)
-    return kept & (counts > 0) & in_rows & certify_margins(logits, logit_bounds(bound, ids, counts))
+@dataclass(frozen=True)
+class Envelope:
+    """What a token unknown to the bundle may have added to the float model's mean (the manifest's `unknown`)."""
+
+    rows: int  # float rows such a token may stand for (every row the bundle left out, plus the unknown row)
+    skipped: bool  # True: the float model may instead have left the token out (it skips tokens it does not know)
+    lo: np.ndarray  # (W,) float64: per-coordinate minimum over those rows, less their float32 rounding reserve
+    hi: np.ndarray  # (W,) float64: per-coordinate maximum, plus the reserve
+
+
+def read_envelope(bundle: Bundle) -> Envelope | None:
+    """The manifest's `unknown` field, or None for a bundle packed before it existed (then a text with a token
+    the bundle does not know is never certified)."""
+    field = bundle.manifest.get("unknown")
+    if field is None:
+        return None
+    return Envelope(int(field["rows"]), bool(field["skipped"]), np.asarray(field["lo"], np.float64),
+                    np.asarray(field["hi"], np.float64))
+
+
+@dataclass(frozen=True)
+class BoxBound:
+    """What the per-text box certification needs, computed once from a bundle (see the module doc)."""
+
+    table: np.ndarray  # (R, W) the bundle's table (int8 or float32), read-only
+    steps: np.ndarray  # (R,) float64: dequantisation multiplier of each row (the int8 scale; 1 for float32)
+    radius: np.ndarray  # (R,) float64: |float row − dequantised row| per element (the premise r_t)
+    mass: np.ndarray  # (R,) float64: per element, what the float model's mean of this row rounds per unit of γ
+    terms: int  # float32 operations in the float model's mean besides the n-term sum: 2, or D + 1 when folded
+    certifiable: np.ndarray  # (R,) bool: False for the out-of-vocabulary / pruned-rest row
+    layers: tuple  # per layer: ((out, in) float64 W or None, (out, in) |W| or None, (out,) b, activation, (out,) allowance)
+    contrast: np.ndarray | None  # (C, C, H) float64 |W_c − W_k| of the output layer (None when it is folded)
+    envelope: Envelope | None
+
+    @property
+    def row_terms(self) -> np.ndarray:
+        """(R, 2) float64: radius and mass side by side, gathered once per text."""
+        return self._row_terms
+
+    @property
+    def row_steps32(self) -> np.ndarray:
+        """(R,) float32: the steps as stored (exact: they are float32 scales, or 1)."""
+        return self._steps32
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "_row_terms", np.stack([self.radius, self.mass], axis=1))
+        object.__setattr__(self, "_steps32", self.steps.astype(np.float32))
+
+
+def gamma64(k: int) -> float:
+    """γ_k for float64 (u = 2⁻⁵³): the rounding of this module's own dot products of k terms."""
+    return k * 2.0**-53 / (1.0 - k * 2.0**-53)
+
+
+def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
+              min_fold_mass: np.ndarray | None = None) -> BoxBound:
+    """Per-row terms and per-layer float32 allowances of the box certification (`min_*`: as in drift_bound)."""
+    drift = drift_bound(bundle, min_radius, min_fold_mass)
+    quantized = bundle.manifest["table"]["dtype"] == "int8"
+    steps = read_steps(bundle)  # (R,)
+    magnitude = _row_magnitude(bundle, steps)  # (R,)
+    envelope = read_envelope(bundle)
+    folded = drift.fold_terms > 0
+    # the float model's mean rounds by at most γ_{n+terms} (1/n) Σ mass_t per element (module doc, step 2)
+    mass = drift.fold_mass if folded else magnitude + drift.radius  # (R,)
+    mass = np.maximum(mass, magnitude)  # also bounds |dequantised row|, for the device's own float32 sum
+    terms = drift.fold_terms if folded else 2
+    g_mean = float(gamma(drift.max_tokens + terms))
+
+    # allowances: |float activations| ≤ m, from the largest element any contributing row can hold
+    worst = (magnitude + drift.radius + g_mean * mass)[drift.certifiable]  # (K,)
+    top = float(worst.max()) if worst.size else 0.0
+    if envelope is not None and envelope.rows:
+        top = max(top, float(np.abs(envelope.lo).max()), float(np.abs(envelope.hi).max()))
+    m = np.full(bundle.tensors["table"].shape[1], top)  # (W,)
+    g1 = float(gamma(1))
+    layers = []
+    for weight, bias, activation in _layers(bundle):
+        b = bias.astype(np.float64)  # (out,)
+        if weight is not None:
+            w = weight.astype(np.float64)  # (out, in)
+            k = float(gamma(w.shape[1]))
+            mass_out = np.abs(w) @ m  # (out,): Σ|W||a|
+            # the float model's x·Wᵀ rounds by γ_in Σ|W||a|, then its bias add by γ_1 |x·Wᵀ + b|
+            allowance = k * mass_out + g1 * ((1.0 + k) * mass_out + np.abs(b))
+            m = (1.0 + g1) * ((1.0 + k) * mass_out + np.abs(b))
+            layers.append((w, np.abs(w), b, activation, allowance * INFLATE))
+        else:  # folded: the first matmul's rounding is in the per-row mass; the bias add remains
+            allowance = g1 * (m + np.abs(b))
+            m = (1.0 + g1) * (m + np.abs(b))
+            layers.append((None, None, b, activation, allowance * INFLATE))
+        if activation == "tanh":
+            m = np.minimum(m, 1.0 + TANH_ERROR)
+    last = layers[-1][0]
+    contrast = None if last is None else np.abs(last[:, None, :] - last[None, :, :])  # (C, C, H)
+    return BoxBound(bundle.tensors["table"], steps if quantized else np.ones_like(steps), drift.radius, mass, terms,
+                    drift.certifiable, tuple(layers), contrast, envelope)
+
+
+def encode_unknown(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) int64: tokens without a row of their own).
+
+    Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
+    when it is the unknown-word token itself, whose float row the certification must then bound too."""
+    oov, tokenize, map_tokens = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens
+    id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
+    for i, text in enumerate(texts):
+        tokens = tokenize(text)
+        rows = map_tokens(tokens)
+        # skip: an unknown token is left out of `rows`; unk / rest: it sits on the out-of-vocabulary row
+        unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
+        id_lists.append(rows)
+    ids, counts = encode_batch(id_lists)
+    return ids, counts, unknown
+
+
+def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Bounds -> centre and radius whose box holds [lo, hi] despite this module's float64 rounding."""
+    return 0.5 * (lo + hi), 0.5 * (hi - lo) + 2.0**-50 * (np.abs(lo) + np.abs(hi))
+
+
+def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
+             unknown: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(B, T) ids, (B,) counts, (B,) unknown-token counts -> ((B, W) lo, (B, W) hi, (B,) bool covered):
+    a box holding the float model's computed mean (table space), for every text marked covered."""
+    mask = (np.arange(ids.shape[1])[None, :] < counts[:, None]) & bound.certifiable[ids]  # (B, T): own rows
+    n = mask.sum(axis=1)  # (B,)
+    flat = ids[mask]  # (N,): every text's own rows, text after text (padding never gathered)
+    rows = bound.table[flat].astype(np.float32)  # (N, W): int8 -> float32 is exact
+    rows *= bound.row_steps32[flat][:, None]  # dequantised in float32: each product within u·|q·s|
+    terms = bound.row_terms[flat]  # (N, 2) float64: radius, mass
+    total = np.zeros((ids.shape[0], rows.shape[1]))  # (B, W): Σ dequantised rows
+    sums = np.zeros((ids.shape[0], 2))  # (B, 2): Σ r_t, Σ mass_t
+    has = n > 0
+    if flat.size:
+        starts = (np.cumsum(n) - n)[has]
+        total[has] = np.add.reduceat(rows, starts, axis=0)  # float32 sums: within γ_{n+1} Σ|q·s| ≤ γ_{n+1} Σ mass
+        sums[has] = np.add.reduceat(terms, starts, axis=0)
+    # the float model's mean rounding, plus this sum's own (|dequantised row| ≤ mass_t for every row: module doc)
+    reach = sums[:, 0] + (gamma(n + unknown + bound.terms) + gamma(n + 1)) * sums[:, 1] * INFLATE  # (B,)
+    low, high = total - reach[:, None], total + reach[:, None]  # (B, W): the kept rows' sum, float side
+    kept_n = np.maximum(n, 1).astype(np.float64)[:, None]  # (B, 1)
+    lo, hi = low / kept_n, high / kept_n  # k = 0: every unknown token left out
+    env, has = bound.envelope, unknown > 0
+    covered = n > 0  # no token of its own: never certified
+    if env is None or (not env.rows and not env.skipped):
+        covered &= ~has  # nothing is known about what an unknown token did
+    elif env.rows:
+        u = unknown.astype(np.float64)[:, None]  # (B, 1)
+        lo_u = (low + u * env.lo[None, :]) / (kept_n + u)  # (B, W): k = u, all unknown tokens were float rows
+        hi_u = (high + u * env.hi[None, :]) / (kept_n + u)
+        # (a + k·e) / (n + k) is monotone in k, so k = 0 and k = u bound every k in between
+        lo = np.where(has[:, None], np.minimum(lo, lo_u) if env.skipped else lo_u, lo)
+        hi = np.where(has[:, None], np.maximum(hi, hi_u) if env.skipped else hi_u, hi)
+    return lo, hi, covered
+
+
+def logit_gaps(bound: BoxBound, top: np.ndarray, ids: np.ndarray, counts: np.ndarray,
+               unknown: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(B,) classes, (B, T) ids, (B,) counts, (B,) unknown-token counts -> ((B, C) lower bound on the float
+    model's computed z_top − z_k, (B,) bool covered: the bound holds for every covered text)."""
+    lo, hi, covered = mean_box(bound, ids, counts, unknown)
+    with np.errstate(over="ignore", invalid="ignore"):
+        centre, radius = _as_box(lo, hi)  # (B, W)
+        for w, w_abs, b, activation, allowance in bound.layers[:-1]:
+            if w is None:
+                z = centre + b
+                radius = radius + allowance
+            else:
+                # the float64 product rounds by ≤ γ64 |W||c|: carried in the radius through the same |W|
+                z = centre @ w.T + b  # (B, out)
+                radius = (radius + gamma64(w.shape[1] + 1) * np.abs(centre)) @ w_abs.T + allowance
+            radius = (radius + 2.0**-52 * np.abs(z)) * INFLATE
+            low, high = z - radius, z + radius
+            if activation == "relu":  # exact in float32; a unit whose whole interval is negative contributes 0
+                low, high = np.maximum(low, 0.0), np.maximum(high, 0.0)
+            elif activation == "tanh":  # monotone: the image of the interval, widened by float32 tanh's error
+                low, high = np.tanh(low) - TANH_ERROR, np.tanh(high) + TANH_ERROR
+            centre, radius = _as_box(low, high)
+        w, w_abs, b, _, allowance = bound.layers[-1]
+        rows = np.arange(centre.shape[0])
+        if w is None:  # a lone folded layer: the logits are the mean plus the bias
+            z = centre + b  # (B, C)
+            spread = radius[rows, top][:, None] + radius  # (B, C)
+        else:
+            radius = radius + gamma64(w.shape[1] + 1) * np.abs(centre)
+            z = centre @ w.T + b  # (B, C)
+            spread = np.einsum("bch,bh->bc", bound.contrast[top], radius)  # (B, C): |W_top − W_k| · r
+        # logit differences bounded directly: z_top − z_k ≥ (W_top − W_k)·c − |W_top − W_k|·r − both allowances
+        low = (z[rows, top][:, None] - z - spread * INFLATE - allowance[top][:, None] - allowance[None, :]
+               - 2.0**-50 * (np.abs(z[rows, top])[:, None] + np.abs(z)))  # (B, C)
+    return np.where(np.isnan(low), -np.inf, low), covered
+
+
+def certify_box(bound: BoxBound, top: np.ndarray, ids: np.ndarray, counts: np.ndarray,
+                unknown: np.ndarray) -> np.ndarray:
+    """(B,) classes, (B, T) ids, (B,) counts, (B,) unknown-token counts -> (B,) bool: True where the
+    float model's logit of class `top` provably beats every other class's (so it predicts `top`)."""
+    low, covered = logit_gaps(bound, top, ids, counts, unknown)  # (B, C), (B,)
+    beats = (low > 0.0) | (np.arange(low.shape[1])[None, :] == top[:, None])
+    return covered & beats.all(axis=1)
+
+
+def certify_packed(bound: BoxBound, logits: np.ndarray, ids: np.ndarray, counts: np.ndarray,
+                   unknown: np.ndarray) -> np.ndarray:
+    """(B,) bool from the packed logits: True where the float model provably predicts the packed top class."""
+    return certify_box(bound, logits.argmax(axis=1), ids, counts, unknown)

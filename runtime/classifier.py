@@ -103,25 +103,25 @@ class Classifier:
         return [self.labels[i] for i in probs.argmax(axis=1)], probs, known
 
     @cached_property
-    def drift_bound(self):
-        """The bundle's quantisation drift bound, computed on first use: callers who never certify pay nothing."""
-        from .certify import drift_bound
+    def box_bound(self):
+        """The bundle's certification terms, computed on first use: callers who never certify pay nothing."""
+        from .certify import box_bound
 
-        return drift_bound(self.bundle)
+        return box_bound(self.bundle)
 
     def predict_certified(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
-        """(B,) texts -> (B labels, (B, C) probabilities, (B,) bool): True where int8 quantisation provably
-        cannot have changed the label (the float model predicts the same; see runtime/certify.py). A text with no
-        token the bundle knows is never certified: its answer says nothing about the text."""
-        from .certify import certify_packed, encode_kept
+        """(B,) texts -> (B labels, (B, C) probabilities, (B,) bool): True where the float original provably
+        predicts the same label, whatever int8 quantisation and pruning changed (see runtime/certify.py). A text with
+        no token the bundle knows is never certified: its answer says nothing about the text."""
+        from .certify import certify_packed, encode_unknown
 
-        bound, texts = self.drift_bound, as_texts(texts)
+        bound, texts = self.box_bound, as_texts(texts)
         probs_parts, certified_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
-            ids, counts, kept = encode_kept(self.encoder, texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
             probs, logits = self.backend.run(ids, counts)  # (b, C), (b, C)
             top = probs.argmax(axis=1)  # (b,)
-            certified_parts.append(certify_packed(bound, logits, ids, counts, kept) & (top == logits.argmax(axis=1)))
+            certified_parts.append(certify_packed(bound, logits, ids, counts, unknown) & (top == logits.argmax(axis=1)))
             probs_parts.append(probs)
         probs, certified = np.concatenate(probs_parts), np.concatenate(certified_parts)  # (B, C), (B,)
         return [self.labels[i] for i in probs.argmax(axis=1)], probs, certified

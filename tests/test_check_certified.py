@@ -60,3 +60,18 @@ def test_float32_bundle_skips_the_bound_and_refuses_an_explicit_gate(tmp_path):
     assert _check(model_dir, bundle, eval_file).exit_code == 0
     explicit = _check(model_dir, bundle, eval_file, "--min-certified", "0.5")
     assert explicit.exit_code == 2 and "no drift bound applies" in explicit.stderr
+
+
+def test_share_among_texts_with_unknown_tokens_is_reported(tmp_path):
+    model_dir, _, eval_file = _setup(tmp_path)
+    bundle, corpus = tmp_path / "pruned.danpack", tmp_path / "corpus.txt"
+    corpus.write_text(" ".join(token(i) for i in range(40)) + "\n", encoding="utf-8")
+    pack_model(model_dir, bundle, PackOptions(corpora=(str(corpus),), coverage=1.0))
+    report, markdown = tmp_path / "r.json", tmp_path / "r.md"
+    result = _check(model_dir, bundle, eval_file, "--report", str(report), "--markdown", str(markdown),
+                    "--min-agreement", "0", "--max-points-lost", "100")
+    assert result.exit_code == 0, result.stdout + result.stderr
+    figures = json.loads(report.read_text())["figures"]
+    assert 0.0 <= figures["certified_share_of_uncovered"] <= 1.0 and figures["certified_changes"] == 0
+    assert "of texts with unknown tokens" in markdown.read_text()
+    assert "of texts with unknown tokens" in result.stdout

@@ -1,9 +1,9 @@
 """The drift bound on the packer side: the worst case for `danpack inspect`, the certified share for `danpack check`.
 
-The formula is runtime/certify.py's (one bound for both sides). The packer adds what only it can see:
-the float model's rows, to verify the bound's premise on every kept row (each dequantised row lies
-within the radius the runtime assumes), and the float logits, to certify from the float margin:
-z_top − z_c > b_top + b_c for every other class c  ⇒  the packed bundle predicts the same class.
+The certification is runtime/certify.py's (one method for both sides). The packer adds what only it can
+see: the float model's rows, to verify the premise on every kept row (each dequantised row lies within
+the radius the runtime assumes; where one does not, the packer's own certification widens that row),
+and the float model's labels, to count certified texts whose label changed (always 0 unless broken).
 """
 
 from __future__ import annotations
@@ -16,8 +16,8 @@ import numpy as np
 
 from danpack.runtime.backends import NumpyBackend
 from danpack.runtime.bundle import Bundle, read_bundle
-from danpack.runtime.certify import (FOLD_MASS_STEPS, HALF_STEP, DriftBound, certify_margins, certify_packed, drift_bound,
-                             encode_kept, gamma, logit_bounds, read_steps)
+from danpack.runtime.certify import (FOLD_MASS_STEPS, HALF_STEP, DriftBound, box_bound, certify_packed, drift_bound,
+                                    encode_unknown, gamma, read_envelope, read_steps)
 from danpack.runtime.encode import Encoder
 from danpack.runtime.errors import DanpackError
 from danpack.runtime.tokenize import Tokenizer
@@ -53,15 +53,14 @@ class CertifiedReport:
     """Per-text certification of a bundle against its float model, with the counts `danpack check` reports."""
 
     labels: tuple[str, ...]
-    certified: np.ndarray  # (B,) bool: float margin beats the bound, so the bundle provably predicts the same
-    runtime_certified: np.ndarray  # (B,) bool: what Classifier.predict_certified says on the device (packed margin)
-    covered: np.ndarray  # (B,) bool: every token has its own kept row (the bound applies)
+    certified: np.ndarray  # (B,) bool: the float model provably predicts the bundle's class (rows as measured)
+    runtime_certified: np.ndarray  # (B,) bool: what Classifier.predict_certified says on the device (rows as assumed)
+    covered: np.ndarray  # (B,) bool: every token has its own kept row
     pruned: np.ndarray  # (B,) bool: a token the float model knows was pruned from the bundle
     unknown: np.ndarray  # (B,) bool: a token neither the float model nor the bundle knows
     float_top: np.ndarray  # (B,) int: the float model's class
     packed_top: np.ndarray  # (B,) int: the bundle's class (runtime numpy backend)
     margins: np.ndarray  # (B,) float64: float logit margin, top class over the runner-up
-    bounds: np.ndarray  # (B, C) float64: per-text bound on |logits_packed − logits_float|
     rows: RowCheck
 
     @property
@@ -70,12 +69,17 @@ class CertifiedReport:
 
     @property
     def share(self) -> float:
-        """Share of all texts certified (texts with pruned or unknown tokens count as not certified)."""
+        """Share of all texts certified (texts with no token of their own count as not certified)."""
         return float(self.certified.mean()) if self.texts else 1.0
 
     @property
     def runtime_share(self) -> float:
         return float(self.runtime_certified.mean()) if self.texts else 1.0
+
+    @property
+    def share_of_uncovered(self) -> float | None:
+        """Share certified among texts holding a token the bundle does not know (pruned or unknown); None if none."""
+        return float(self.certified[~self.covered].mean()) if (~self.covered).any() else None
 
     @property
     def disagreements(self) -> int:
@@ -89,6 +93,7 @@ class CertifiedReport:
 
     def to_dict(self) -> dict:
         """A JSON-ready summary."""
+        uncovered = self.share_of_uncovered
         return {
             "texts": self.texts,
             "certified": int(self.certified.sum()),
@@ -97,6 +102,8 @@ class CertifiedReport:
             "runtime_certified_share": round(self.runtime_share, 6),
             "covered_texts": int(self.covered.sum()),
             "certified_share_of_covered": round(float(self.certified[self.covered].mean()), 6) if self.covered.any() else None,
+            "uncovered_texts": int((~self.covered).sum()),
+            "certified_share_of_uncovered": None if uncovered is None else round(uncovered, 6),
             "pruned_texts": int(self.pruned.sum()),
             "unknown_texts": int(self.unknown.sum()),
             "disagreements": self.disagreements,
@@ -134,7 +141,8 @@ def worst_case_bound(bundle: Bundle | str | os.PathLike) -> dict:
     pair = np.sort(logit)[-2:].sum()  # max over c ≠ c' of b_c + b_c'
     labels = bundle.labels
     return {
-        "method": "interval bound propagation of the int8 table error; activations relaxed to Lipschitz 1",
+        "method": "interval bound propagation of the int8 table error; activations relaxed to Lipschitz 1 "
+                  "(worst case over texts of kept tokens; predict_certified bounds each text on its own box)",
         "table": bundle.manifest["table"]["dtype"],
         "folded": bound.fold_terms > 0,
         "max_tokens": n,
@@ -144,11 +152,21 @@ def worst_case_bound(bundle: Bundle | str | os.PathLike) -> dict:
         "rounding_allowance": dict(zip(labels, bound.allowance.tolist())),
         "logit_bound": dict(zip(labels, logit.tolist())),
         "safe_margin": float(pair),
+        "unknown_tokens": _describe_envelope(bundle),
         "premise": (f"every kept row within {HALF_STEP:g} quantisation steps of its float row"
                     + (f" (plus float32 folding reserve), first-layer mass Σ|W1||E| at most {FOLD_MASS_STEPS:g} steps"
                        if bound.fold_terms else "")
                     + "; verified against the float model by certify_texts (`danpack check`)"),
     }
+
+
+def _describe_envelope(bundle: Bundle) -> dict | None:
+    """What the manifest's `unknown` envelope says, for `danpack inspect` (None: packed before it existed)."""
+    env = read_envelope(bundle)
+    if env is None:
+        return None
+    return {"rows": env.rows, "skipped": env.skipped,
+            "mean_width": float((env.hi - env.lo).mean()) if env.rows else 0.0}
 
 
 def describe_bound(worst: dict) -> list[str]:
@@ -162,7 +180,18 @@ def describe_bound(worst: dict) -> list[str]:
         f"logit bound per class: {bounds}",
         f"any prediction whose logit margin exceeds {worst['safe_margin']:.3g} cannot be changed by quantisation "
         "(texts whose tokens are all kept)",
+        _envelope_line(worst.get("unknown_tokens")),
     ]
+
+
+def _envelope_line(env: dict | None) -> str:
+    if env is None:
+        return "tokens the bundle does not know: no envelope (packed by an older danpack), such texts are never certified"
+    if not env["rows"]:
+        return "tokens the bundle does not know: the float model never knew them either (every row kept); certified per text"
+    return (f"tokens the bundle does not know: each may stand for any of {env['rows']:,} float rows"
+            + (" or be left out" if env["skipped"] else "")
+            + f" (envelope, mean width {env['mean_width']:.3g}); texts holding them are certified per text")
 
 
 def _check_pair(model: FloatModel, bundle: Bundle, source: str) -> None:
@@ -245,38 +274,35 @@ def _token_flags(model: FloatModel, bundle: Bundle, texts: Sequence[str]) -> tup
 
 
 def certify_texts(model: FloatModel, bundle: Bundle | str | os.PathLike, texts: Sequence[str]) -> CertifiedReport:
-    """Certify each text against the float model: the bundle provably predicts the float model's class."""
+    """Certify each text against the float model: the float model provably predicts the bundle's class."""
     source = "bundle" if isinstance(bundle, Bundle) else str(bundle)
     bundle = _as_bundle(bundle)
     texts = list(texts)
     _check_pair(model, bundle, source)
-    runtime_bound = drift_bound(bundle)
-    rows, need_radius, need_mass = check_rows(model, bundle, runtime_bound)
-    # the float side is rigorous even when the premise fails: widen the rows that break it
-    float_bound = runtime_bound if rows.holds else drift_bound(bundle, need_radius, need_mass)
+    runtime_bound = box_bound(bundle)
+    rows, need_radius, need_mass = check_rows(model, bundle)
+    # the packer's side is rigorous even when the premise fails: widen the rows that break it
+    packer_bound = runtime_bound if rows.holds else box_bound(bundle, need_radius, need_mass)
     encoder = Encoder(Tokenizer(bundle.tokenizer), bundle.vocab, bundle.oov_row)
     float_encoder = model.encoder()
     backend = NumpyBackend(bundle)
     parts = []
     for start in range(0, len(texts), BATCH):
         batch = texts[start : start + BATCH]
-        ids, counts, covered = encode_kept(encoder, batch)  # (b, T), (b,), (b,)
+        ids, counts, unknown = encode_unknown(encoder, batch)  # (b, T), (b,), (b,)
         float_logits = model.predict_logits(batch, float_encoder)  # (b, C)
         packed_logits = backend.run(ids, counts)[1]  # (b, C)
-        bounds = logit_bounds(float_bound, ids, counts)  # (b, C)
         top2 = np.sort(float_logits.astype(np.float64), axis=1)[:, -2:]  # (b, 2)
         parts.append((
-            covered & (counts > 0) & certify_margins(float_logits, bounds),  # as certify_packed: no token, no claim
-            certify_packed(runtime_bound, packed_logits, ids, counts, covered),
-            covered, float_logits.argmax(axis=1), packed_logits.argmax(axis=1), top2[:, 1] - top2[:, 0], bounds,
+            certify_packed(packer_bound, packed_logits, ids, counts, unknown),
+            certify_packed(runtime_bound, packed_logits, ids, counts, unknown),
+            unknown == 0, float_logits.argmax(axis=1), packed_logits.argmax(axis=1), top2[:, 1] - top2[:, 0],
         ))
-    classes = len(bundle.labels)
     empty = (np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, np.int64), np.zeros(0, np.int64),
-             np.zeros(0), np.zeros((0, classes)))
+             np.zeros(0))
     cols = [np.concatenate(c) for c in zip(*parts)] if parts else list(empty)
     pruned, unknown = _token_flags(model, bundle, texts)
-    return CertifiedReport(bundle.labels, cols[0], cols[1], cols[2], pruned, unknown, cols[3], cols[4], cols[5],
-                           cols[6], rows)
+    return CertifiedReport(bundle.labels, cols[0], cols[1], cols[2], pruned, unknown, cols[3], cols[4], cols[5], rows)
 
 
 def check_certified(report: CertifiedReport, min_share: float) -> list[str]:
@@ -286,7 +312,7 @@ def check_certified(report: CertifiedReport, min_share: float) -> list[str]:
         problems.append(
             f"certified share {report.share:.2%} is below the required {min_share:.2%} "
             f"({int(report.certified.sum())} of {report.texts} texts; {int(report.pruned.sum())} hold pruned tokens and "
-            f"{int(report.unknown.sum())} unknown tokens, which are never certified); keep more rows (--coverage) or "
+            f"{int(report.unknown.sum())} unknown tokens, which widen the bound); keep more rows (--coverage) or "
             "lower --min-certified")
     if not report.rows.holds:
         problems.append(

@@ -68,6 +68,7 @@ FIGURES: dict[str, FigureInfo] = {
     "texts_with_pruned_share": FigureInfo("share of texts with a pruned token", "share"),
     "certified_share": FigureInfo("texts certified by the drift bound", "share"),
     "certified_share_of_covered": FigureInfo("certified among texts whose tokens are all kept", "share"),
+    "certified_share_of_uncovered": FigureInfo("certified among texts with a token the bundle does not know", "share"),
     "runtime_certified_share": FigureInfo("texts the device certifies (packed margin)", "share"),
     "certified_changes": FigureInfo("certified texts whose prediction changed", "count"),
     "bound_premise_failing_rows": FigureInfo("kept rows outside the bound's premise", "count"),
@@ -737,8 +738,8 @@ def diagnose_reference(model: FloatModel, texts: Sequence[str], framework: Frame
     return out
 
 
-CERTIFIED_KEYS = ("certified_share", "certified_share_of_covered", "runtime_certified_share", "certified_changes",
-                  "bound_premise_failing_rows")
+CERTIFIED_KEYS = ("certified_share", "certified_share_of_covered", "certified_share_of_uncovered",
+                  "runtime_certified_share", "certified_changes", "bound_premise_failing_rows")
 
 
 def certified_figures(model: FloatModel, bundle, texts: Sequence[str], warnings: list[str]) -> dict:
@@ -755,6 +756,7 @@ def certified_figures(model: FloatModel, bundle, texts: Sequence[str], warnings:
         return {k: None for k in CERTIFIED_KEYS}
     return {"certified_share": summary["certified_share"],
             "certified_share_of_covered": summary["certified_share_of_covered"],
+            "certified_share_of_uncovered": summary["certified_share_of_uncovered"],
             "runtime_certified_share": summary["runtime_certified_share"],
             "certified_changes": summary["certified_disagreements"],
             "bound_premise_failing_rows": summary["premise"]["failing_rows"]}

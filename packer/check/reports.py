@@ -166,11 +166,11 @@ def _rows(report: dict) -> list[tuple[str, str, str, str]]:
                  f"{f['pruned_tokens']:,} of {f['float_known_tokens']:,}; in "
                  f"{100 * f['texts_with_pruned_share']:.1f}% of texts"))
     if f.get("certified_share") is not None:
-        covered = f["certified_share_of_covered"]
-        rows.append(("certified unchanged by int8", "", format_value(f["certified_share"], "share"),
+        covered, uncovered = f["certified_share_of_covered"], f.get("certified_share_of_uncovered")
+        rows.append(("certified same class as float", "", format_value(f["certified_share"], "share"),
                      ("" if covered is None else f"{format_value(covered, 'share')} of texts with all tokens kept; ")
-                     + f"the device alone (from the bundle's own scores) certifies "
-                     f"{format_value(f['runtime_certified_share'], 'share')}"))
+                     + ("" if uncovered is None else f"{format_value(uncovered, 'share')} of texts with unknown tokens; ")
+                     + f"the device alone certifies {format_value(f['runtime_certified_share'], 'share')}"))
     rows.append(("size", _size(f["float_bytes"]), _size(f["bundle_bytes"]), f"{f['size_ratio']:.2f}x smaller"))
     if f.get("latency_ratio") is not None:
         lat = s.get("latency") or {}

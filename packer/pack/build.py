@@ -20,6 +20,7 @@ from danpack.runtime.tokenize import Tokenizer
 
 from danpack import __version__
 from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+from danpack.pack.envelope import unknown_envelope
 from danpack.files import file_sha256, write_atomic
 from danpack.pack.fold import fold_first_layer, should_fold
 from danpack.pack.graph import GraphSpec, build_graph, check_graph
@@ -225,6 +226,7 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
         "pack": options,
         "packer": f"danpack {__version__}",
         "probe": _probe(tensors["table"], tensors.get("scales"), layers, rows, probe_ids),
+        "unknown": unknown_envelope(model, kept, folded),  # what a token the bundle does not know may have done
     }
     epoch = source_date_epoch()
     if epoch is not None:

@@ -1,0 +1,85 @@
+"""The certified path's cost and reach: `predict_certified` against plain `predict`, side by side.
+
+```sh
+python -m bench.certified                      # the shipped demo models (sentiment, topic)
+python -m bench.certified --model glove=DIR    # any float model directory (task from its name: sentiment|topic)
+```
+
+Each model is packed with the demo deployment stream (50,000 comments) at the default options; its 2,000
+demo test comments are answered in calls of 256 texts, `predict` and `predict_certified` interleaved round
+by round (bench/timing.py), for both runtime backends. Printed: the median seconds per call, the median of
+the round-by-round ratios, the certified shares (all texts, texts whose tokens are all kept, texts with a
+token the bundle does not know), certified texts whose label differs from the float original's (always 0),
+and the bytes the manifest's `unknown` envelope adds to the bundle.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+import msgpack
+import numpy as np
+
+from .stats import paired_ratios, summarize
+from .timing import interleave
+
+BATCH = 256
+ROUNDS = 80
+
+
+def envelope_bytes(bundle) -> int:
+    """Bytes the manifest's `unknown` field takes in the payload (its msgpack key and value)."""
+    field = bundle.manifest.get("unknown")
+    return 0 if field is None else len(msgpack.packb("unknown")) + len(msgpack.packb(field))
+
+
+def measure(name: str, model_dir: Path, task: str, work: Path) -> None:
+    from danpack.check.bound import certify_texts
+    from danpack.model import load_model
+    from danpack.models_demo import scenario
+    from danpack.pack.build import PackOptions, pack_model
+    from danpack.runtime.bundle import decode_bundle
+    from danpack.runtime.classifier import Classifier
+
+    stream = work / "stream.txt"
+    if not stream.exists():
+        work.mkdir(parents=True, exist_ok=True)
+        stream.write_text("".join(r["text"] + "\n" for r in scenario.generate_stream(50_000)), encoding="utf-8")
+    texts = [r["text"] for r in scenario.generate_split(task, "test", 2000)]
+    model = load_model(model_dir)
+    bundle = decode_bundle(pack_model(model_dir, None, PackOptions(corpora=(str(stream),))).data)
+    report = certify_texts(model, bundle, texts)
+    print(f"## {name}: {bundle.size:,} bytes, envelope {envelope_bytes(bundle):,} bytes "
+          f"({envelope_bytes(bundle) / bundle.size:.2%}); certified {report.share:.2%} of {report.texts:,} "
+          f"(all kept {float(report.certified[report.covered].mean()):.2%}, with unknown tokens "
+          f"{report.share_of_uncovered or 0.0:.2%}); certified with another label than the float original: "
+          f"{report.certified_disagreements}")
+    batches = [texts[i : i + BATCH] for i in range(0, len(texts) - BATCH + 1, BATCH)]
+    for backend in ("onnxruntime", "numpy"):
+        clf = Classifier(bundle, backend)
+        calls = {"predict": lambda i: clf.predict(batches[i % len(batches)]),
+                 "predict_certified": lambda i: clf.predict_certified(batches[i % len(batches)])}
+        times = interleave(calls, ROUNDS, warmup=3)
+        ratio = summarize(paired_ratios(times["predict_certified"], times["predict"]))
+        print(f"{backend:12s} batch {BATCH}: predict {np.median(times['predict']) * 1e3:.2f} ms, "
+              f"predict_certified {np.median(times['predict_certified']) * 1e3:.2f} ms, "
+              f"ratio {ratio.median:.2f}x (IQR {ratio.q1:.2f}-{ratio.q3:.2f})")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--model", action="append", default=[], help="NAME=DIR of a float model (repeatable)")
+    parser.add_argument("--work", default="bench/out/certified", help="where the deployment stream is written")
+    args = parser.parse_args()
+    shipped = Path(__file__).resolve().parents[1] / "models_demo" / "shipped"
+    models = [(m.split("=", 1)[0], Path(m.split("=", 1)[1])) for m in args.model] or [
+        ("shipped sentiment", shipped / "sentiment"), ("shipped topic", shipped / "topic")]
+    for name, model_dir in models:
+        task = "topic" if "topic" in name else "sentiment"
+        measure(name, model_dir, task, Path(args.work))
+
+
+if __name__ == "__main__":
+    main()
