@@ -314,23 +314,37 @@ def gamma64(k: int) -> float:
     return k * 2.0**-53 / (1.0 - k * 2.0**-53)
 
 
+def _row_mass(bundle: Bundle, drift: DriftBound, steps: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
+    """((R,) mass, (R,) reach, terms): per row, what the float model's mean rounds per unit of γ (step 2 of the
+    module doc), and the largest |element| that row can put into a mean with that rounding (its reach)."""
+    magnitude = _row_magnitude(bundle, steps)  # (R,)
+    folded = drift.fold_terms > 0
+    # the float model's mean rounds by at most γ_{n+terms} (1/n) Σ mass_t per element (module doc, step 2)
+    mass = drift.fold_mass if folded else magnitude + drift.radius  # (R,)
+    mass = np.maximum(mass, magnitude)  # also bounds |dequantised row|, for the device's own float32 sum
+    terms = drift.fold_terms if folded else 2
+    reach = magnitude + drift.radius + float(gamma(drift.max_tokens + terms)) * mass
+    return mass, reach, terms
+
+
+def row_reach(bundle: Bundle) -> np.ndarray:
+    """(R,) float64: the largest |element| each row can put into the float model's mean, rounding included. The box's
+    allowances start from the largest over the rows a text may use (a packer measuring a cut needs the same)."""
+    drift = drift_bound(bundle)
+    return _row_mass(bundle, drift, read_steps(bundle))[1]
+
+
 def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
               min_fold_mass: np.ndarray | None = None) -> BoxBound:
     """Per-row terms and per-layer float32 allowances of the box certification (`min_*`: as in drift_bound)."""
     drift = drift_bound(bundle, min_radius, min_fold_mass)
     quantized = bundle.manifest["table"]["dtype"] == "int8"
     steps = read_steps(bundle)  # (R,)
-    magnitude = _row_magnitude(bundle, steps)  # (R,)
     envelope = read_envelope(bundle)
-    folded = drift.fold_terms > 0
-    # the float model's mean rounds by at most γ_{n+terms} (1/n) Σ mass_t per element (module doc, step 2)
-    mass = drift.fold_mass if folded else magnitude + drift.radius  # (R,)
-    mass = np.maximum(mass, magnitude)  # also bounds |dequantised row|, for the device's own float32 sum
-    terms = drift.fold_terms if folded else 2
-    g_mean = float(gamma(drift.max_tokens + terms))
+    mass, reach, terms = _row_mass(bundle, drift, steps)  # (R,), (R,)
 
     # allowances: |float activations| ≤ m, from the largest element any contributing row can hold
-    worst = (magnitude + drift.radius + g_mean * mass)[drift.certifiable]  # (K,)
+    worst = reach[drift.certifiable]  # (K,)
     top = float(worst.max()) if worst.size else 0.0
     if envelope is not None and envelope.rows:
         top = max(top, float(np.abs(envelope.lo).max()), float(np.abs(envelope.hi).max()))

@@ -143,3 +143,20 @@ def test_a_corpus_ranking_that_keeps_every_row_keeps_each_token_with_its_own_row
     assert len(bundle.vocab) == len(model.vocab) and bundle.vocab != model.vocab  # ranked, not in row order
     index = {t: i for i, t in enumerate(model.vocab)}
     np.testing.assert_array_equal(bundle.tensors["table"], model.embedding[[index[t] for t in bundle.vocab]])
+
+
+@pytest.mark.parametrize("unk", [False, True])
+@pytest.mark.parametrize("folded", [False, True])
+def test_envelope_index_equals_the_envelope_of_each_cut(unk, folded):
+    """The packer measures every cut with `EnvelopeIndex`; the bundle it writes carries `unknown_envelope`: the two
+    must be the same field for every cut (block edges, the unknown row ranked before or after the cut)."""
+    from test_bound import random_model
+
+    from danpack.pack.envelope import EnvelopeIndex, unknown_envelope
+
+    rng = np.random.default_rng(7)
+    model = random_model(rng, vocab=2600, dim=12, hidden=(8,), unk=unk)
+    order = rng.permutation(len(model.vocab))[:2500]  # some rows never ranked (as unreachable rows are not)
+    index = EnvelopeIndex(model, order, folded)
+    for keep in (0, 1, 700, 1023, 1024, 1025, 2048, 2499, 2500):
+        assert index.envelope(keep) == unknown_envelope(model, order[:keep], folded), keep

@@ -10,7 +10,7 @@ pass (`runtime.forward.forward_logits`) on a compact table: the int8 rows of the
 whole table is quantised once per fold mode: per-row quantisation makes a row's bytes independent of the
 others), with rows the candidate prunes zeroed and never referenced, plus the candidate's out-of-vocabulary
 row. Figures: agreement with the float model's class, mean |Δp| (largest class change per text, as `danpack
-check`), and the certified share from the drift bound of runtime/certify.py (the premise each kept row lies
+check`), and the certified share by the device's box method of runtime/certify.py (the premise each kept row lies
 within its assumed radius is taken as holding, as on the device; `danpack check` verifies it).
 """
 
@@ -23,11 +23,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from danpack.runtime.bundle import Bundle
-from danpack.runtime.certify import certify_margins, drift_bound, gamma, logit_bounds
+from danpack.runtime.certify import box_bound, certify_packed, row_reach
 from danpack.runtime.forward import Layer, forward_logits, softmax
 from danpack.runtime.tokenize import Tokenizer
 
 from danpack.model import FloatModel
+from danpack.pack.envelope import EnvelopeIndex
 from danpack.pack.fold import fold_first_layer
 from danpack.pack.quantize import quantize_rows
 from danpack.pack.vocab import VocabPlan
@@ -108,7 +109,8 @@ class _Table:
     q: np.ndarray  # (V, W) int8
     scales: np.ndarray  # (V,) float32
     layers: tuple[Layer, ...]
-    worst: np.ndarray  # (V,) float64: each row's term in the drift bound's |mean| bound (largest kept one counts)
+    worst: np.ndarray  # (V,) float64: each row's reach (runtime/certify.py `row_reach`; the largest kept one counts)
+    envelopes: EnvelopeIndex  # the manifest's `unknown` field of every cut of the ranking
 
 
 class HeldOut:
@@ -157,11 +159,9 @@ class HeldOut:
             if folded:
                 table, layers = fold_first_layer(table, layers)  # (V, H1)
             q, scales = quantize_rows(table)
-            bound = drift_bound(_stand_in(self.model, q, scales, layers, None))
-            magnitude = (bound.spread - bound.radius) / 2.0  # (V,): spread = 2·magnitude + radius
-            # the per-row term of the bound's |mean| bound (runtime/certify.py, step 2): the largest kept one counts
-            worst = magnitude + 2.0 * bound.radius + float(gamma(bound.max_tokens + bound.fold_terms)) * bound.fold_mass
-            self._tables[folded] = _Table(q, scales, layers, worst)
+            worst = row_reach(_stand_in(self.model, q, scales, layers, None))  # (V,)
+            envelopes = EnvelopeIndex(self.model, self.plan.ranked_rows, folded)
+            self._tables[folded] = _Table(q, scales, layers, worst, envelopes)
         return self._tables[folded]
 
     def measure(self, candidate: Candidate, rest_row: np.ndarray | None = None, size: int = 0) -> Measure:
@@ -194,21 +194,26 @@ class HeldOut:
             ids = np.where(kept, self.local, oov)  # (N, T)
             ids = np.where(self.valid, ids, 0)
             counts = self.counts
-        covered = (kept == self.valid).all(axis=1)  # (N,): every token has its own kept row
-        # 3. forward, figures, certification
-        bound = drift_bound(_stand_in(self.model, q, scales, t.layers, oov))
+        # tokens without a row of their own, as runtime/certify.py `encode_unknown` counts them
+        if candidate.policy == "skip":
+            unknown = self.counts - counts  # (N,): left out
+        else:
+            unknown = ((ids == oov) & self.valid).sum(axis=1)  # (N,): on the out-of-vocabulary row
+        # 3. forward, figures, certification (the device's box method, with this cut's envelope)
+        envelope = t.envelopes.envelope(candidate.keep)
+        bound = box_bound(_stand_in(self.model, q, scales, t.layers, oov, envelope))
         agree, moved, certified, right = [], [], [], []
         for s in range(0, len(self), BATCH):
             part = slice(s, s + BATCH)
             width = max(int(counts[part].max()), 1) if counts[part].size else 1
             b_ids, b_counts = ids[part, :width], counts[part]
-            probs = softmax(forward_logits(q, t.layers, b_ids, b_counts, scales))  # (b, C)
+            logits = forward_logits(q, t.layers, b_ids, b_counts, scales)  # (b, C)
+            probs = softmax(logits)  # (b, C)
             agree.append(probs.argmax(axis=1) == self.float_probs[part].argmax(axis=1))
             if self.gold is not None:
                 right.append(probs.argmax(axis=1) == self.gold[part])
             moved.append(np.abs(self.float_probs[part].astype(np.float64) - probs).max(axis=1))
-            bounds = logit_bounds(bound, b_ids, b_counts)  # (b, C)
-            certified.append(covered[part] & certify_margins(self.float_logits[part], bounds))
+            certified.append(certify_packed(bound, logits, b_ids, b_counts, unknown[part]))
         n = len(self)
         mean = (lambda parts: float(np.concatenate(parts).mean()) if n else 1.0)
         accuracy = None if self.gold is None else mean(right)
@@ -216,8 +221,8 @@ class HeldOut:
 
 
 def _stand_in(model: FloatModel, q: np.ndarray, scales: np.ndarray, layers: tuple[Layer, ...],
-              oov_row: int | None) -> Bundle:
-    """A Bundle holding only what `drift_bound` reads (table, scales, layers, manifest fields)."""
+              oov_row: int | None, unknown: dict | None = None) -> Bundle:
+    """A Bundle holding only what the certification reads (table, scales, layers, manifest fields)."""
     tensors = {"table": q, "scales": scales}
     for i, layer in enumerate(layers):
         if layer.weight is not None:
@@ -226,6 +231,8 @@ def _stand_in(model: FloatModel, q: np.ndarray, scales: np.ndarray, layers: tupl
     manifest = {"table": {"dtype": "int8"}, "oov": {"row": oov_row}, "tokenizer": model.tokenizer.to_dict(),
                 "source": {"embedding_dim": int(model.embedding.shape[1])},
                 "layers": [{"activation": l.activation, "weight": l.weight is not None} for l in layers]}
+    if unknown is not None:
+        manifest["unknown"] = unknown
     return Bundle(manifest, (), b"", tensors, "", 0, 0)
 
 
