@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import glob
 import os
 import tempfile
 from pathlib import Path
@@ -56,12 +57,36 @@ def check_outputs(outputs: dict[str, str | os.PathLike | None],
         seen[real] = name
 
 
+def remove_stale_partials(path: Path) -> list[Path]:
+    """Remove the temporary files `.NAME.PID.XXXX.partial` that a killed writer of `path` left behind: those whose
+    process no longer runs (a live writer's file is left alone). Returns what was removed."""
+    removed = []
+    for tmp in path.parent.glob(f".{glob.escape(path.name)}.*.partial"):
+        pid = tmp.name[len(path.name) + 2 :].split(".", 1)[0]
+        if not pid.isdigit() or int(pid) == os.getpid():
+            continue
+        try:
+            os.kill(int(pid), 0)
+            continue  # still running: its own write will rename or remove the file
+        except ProcessLookupError:
+            pass
+        except (PermissionError, OverflowError, ValueError):  # alive under another user, or not a pid
+            continue
+        try:
+            tmp.unlink()
+            removed.append(tmp)
+        except OSError:
+            pass
+    return removed
+
+
 def write_atomic(path: str | os.PathLike, data: bytes) -> Path:
     """Write bytes to a temp file beside `path`, fsync, then rename over it: never a partial file."""
     path = Path(path)
     check_outputs({"output": path})
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".partial", dir=path.parent)
+        remove_stale_partials(path)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.{os.getpid()}.", suffix=".partial", dir=path.parent)
     except OSError as e:
         raise OutputError(f"{path}: cannot write here ({e.strerror or e}); choose another output path") from e
     try:

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
 import shutil
 import tempfile
@@ -26,6 +27,8 @@ import numpy as np
 from danpack.runtime.encode import Encoder
 from danpack.runtime.errors import ModelError, TokenizerError
 from danpack.runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
+from danpack.runtime.safe_text import escape_text, labels_problem, token_problem
+from danpack.runtime.stream_records import MAX_JSON_DEPTH, _decode_json, nests_deeper
 from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 from danpack.files import current_umask, feed_file
@@ -33,6 +36,8 @@ from danpack.files import current_umask, feed_file
 FORMAT_NAME = "danpack-float"
 FORMAT_VERSION = 1
 WEIGHT_FILES = ("weights.safetensors", "weights.npz")
+MAX_CONFIG_BYTES = 16 << 20  # dan.json: a few hundred bytes plus metadata
+NPY_HEADER_SLACK = 1 << 16  # bytes an .npy member may hold beyond its array data (its header)
 MODEL_FILES = ("dan.json", "tokens.txt", *WEIGHT_FILES)  # every file a model directory may hold
 
 
@@ -89,15 +94,15 @@ def _fail(path: Path, what: str, fix: str = "") -> ModelError:
 
 def _read_config(path: Path) -> dict:
     try:
+        if path.stat().st_size > MAX_CONFIG_BYTES:
+            raise _fail(path, f"is {path.stat().st_size:,} bytes, more than any model description "
+                        f"({MAX_CONFIG_BYTES:,} max)", "check that this is the model's dan.json")
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError as e:
         raise _fail(path, "missing", "a model directory needs dan.json, tokens.txt and weights.npz or weights.safetensors") from e
     except (OSError, UnicodeDecodeError) as e:
         raise _fail(path, f"cannot be read as UTF-8 text ({e})") from e
-    try:
-        config = json.loads(text)
-    except json.JSONDecodeError as e:
-        raise _fail(path, f"is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
+    config = load_json_text(text, path)
     if not isinstance(config, dict):
         raise _fail(path, f"must hold a JSON object, found {type(config).__name__}")
     if config.get("format") != FORMAT_NAME:
@@ -111,6 +116,22 @@ def _read_config(path: Path) -> dict:
     if unknown:
         raise _fail(path, f"unknown fields {sorted(unknown)}", f"allowed fields are {sorted(CONFIG_KEYS)}")
     return config
+
+
+def load_json_text(text: str, path: Path):
+    """Strict, bounded JSON for the files a model folder or a user hands in (dan.json, JSON vocabularies and
+    label files): nesting deeper than MAX_JSON_DEPTH, integers of more than 4,000 digits, NaN / Infinity and
+    malformed text are each a ModelError naming the file, never a traceback."""
+    if nests_deeper(text):
+        raise _fail(path, f"nests arrays or objects deeper than {MAX_JSON_DEPTH} levels")
+    try:
+        return _decode_json(text)
+    except json.JSONDecodeError as e:
+        raise _fail(path, f"is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
+    except RecursionError as e:
+        raise _fail(path, "is not valid JSON (nested too deeply)") from e
+    except ValueError as e:  # NaN / Infinity, numbers out of range, over-long integers
+        raise _fail(path, f"is not valid JSON ({e})") from e
 
 
 def _config_field(config: dict, path: Path, key: str, check, expected: str):
@@ -156,10 +177,55 @@ def _read_vocab(path: Path) -> tuple[str, ...]:
         seen[token] = line
     if not tokens:
         raise _fail(path, "holds no tokens")
+    problem = token_problem(tokens)
+    if problem is not None:
+        raise _fail(path, problem, "drop or shorten the token")
     return tuple(tokens)
 
 
-def _read_weights(model_dir: Path) -> tuple[Path, dict[str, np.ndarray]]:
+def _read_npz(path: Path, budgets: dict[str, int]) -> dict[str, np.ndarray | None]:
+    """The arrays of an npz, each member sized from the zip directory and its .npy header before it is inflated.
+
+    `budgets` gives the elements each expected tensor declares (dan.json and tokens.txt); a member may hold at
+    most 8 bytes per declared element plus a header (float64 is the widest dtype worth a clear message later),
+    so a small deflated file can never inflate to gigabytes. An unexpected member is never inflated: it maps to
+    None, and load_model refuses it by name.
+    """
+    arrays: dict[str, np.ndarray | None] = {}
+    with zipfile.ZipFile(path) as archive:
+        for member in archive.infolist():
+            name = member.filename.removesuffix(".npy")
+            if name not in budgets:
+                arrays[name] = None
+                continue
+            limit = 8 * budgets[name] + NPY_HEADER_SLACK
+            if member.file_size > limit:
+                raise _fail(path, f"tensor {name!r} inflates to {member.file_size:,} bytes, far more than its "
+                            f"declared shape needs ({budgets[name]:,} elements)", "re-save the weights")
+            try:
+                with archive.open(member) as f:
+                    version = np.lib.format.read_magic(f)
+                    read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                                   else np.lib.format.read_array_header_2_0)
+                    shape, _fortran, dtype = read_header(f)
+                    if dtype.hasobject:
+                        raise _fail(path, f"cannot be read: tensor {name!r} holds Python objects (pickled data is "
+                                    "never loaded)", "save float32 arrays")
+                    need = math.prod(shape) * dtype.itemsize
+                    if need > limit:
+                        raise _fail(path, f"tensor {name!r} has shape {tuple(shape)} ({need:,} bytes), far more than "
+                                    f"its declared shape needs ({budgets[name]:,} elements)", "re-save the weights")
+                with archive.open(member) as f:
+                    arrays[name] = np.lib.format.read_array(f, allow_pickle=False)
+            except ModelError:
+                raise
+            except (OSError, ValueError, EOFError, zipfile.BadZipFile, RuntimeError) as e:
+                raise _fail(path, f"cannot be read as npz weights (tensor {name!r}: {type(e).__name__}: {e})",
+                            "re-save the weights; the file may be truncated") from e
+    return arrays
+
+
+def _read_weights(model_dir: Path, budgets: dict[str, int] | None = None) -> tuple[Path, dict[str, np.ndarray]]:
     present = [model_dir / name for name in WEIGHT_FILES if (model_dir / name).exists()]
     if not present:
         raise _fail(model_dir, f"no weights file: expected one of {list(WEIGHT_FILES)}")
@@ -167,14 +233,21 @@ def _read_weights(model_dir: Path) -> tuple[Path, dict[str, np.ndarray]]:
         raise _fail(model_dir, f"both {present[0].name} and {present[1].name} exist", "keep exactly one weights file")
     path = present[0]
     try:
-        if path.suffix == ".npz":
+        if path.suffix == ".npz" and budgets is not None:
+            arrays = _read_npz(path, budgets)
+        elif path.suffix == ".npz":
             with np.load(path, allow_pickle=False) as npz:
                 arrays = {key: npz[key] for key in npz.files}
         else:
+            if budgets is not None and path.stat().st_size > 8 * sum(budgets.values()) + NPY_HEADER_SLACK:
+                raise _fail(path, f"is {path.stat().st_size:,} bytes, far more than the tensors dan.json and "
+                            f"tokens.txt declare ({sum(budgets.values()):,} elements)", "re-save the weights")
             from safetensors.numpy import load_file
 
             arrays = load_file(str(path))
-    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, RuntimeError) as e:
+    except ModelError:
+        raise
+    except (OSError, ValueError, KeyError, EOFError, zipfile.BadZipFile, RuntimeError, MemoryError) as e:
         raise _fail(path, f"cannot be read as {path.suffix[1:]} weights ({type(e).__name__}: {e})",
                     "re-save the weights; the file may be truncated") from e
     except Exception as e:  # safetensors raises its own SafetensorError for damaged headers
@@ -211,8 +284,9 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     labels = _config_field(config, config_path, "labels",
                            lambda v: isinstance(v, list) and len(v) >= 2 and all(isinstance(x, str) and x for x in v),
                            "a list of at least 2 non-empty label strings")
-    if len(set(labels)) != len(labels):
-        raise _fail(config_path, f"field 'labels' repeats a label: {labels}")
+    problem = labels_problem(labels)
+    if problem is not None:
+        raise _fail(config_path, f"field 'labels' {problem}")
     dim = _config_field(config, config_path, "embedding_dim", _is_int, "a positive integer")
     hidden_sizes = _config_field(config, config_path, "hidden_sizes",
                                  lambda v: isinstance(v, list) and all(_is_int(x) for x in v),
@@ -242,7 +316,11 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
         raise _fail(config_path, f"field 'oov' names unknown-token {unk_token!r}, which is not in tokens.txt",
                     "add the token to the vocabulary or use the 'skip' policy")
 
-    weights_path, arrays = _read_weights(root)
+    shapes = {"embedding": (len(vocab), dim)}
+    width = dim
+    for name, size in zip([f"hidden.{i}" for i in range(len(hidden_sizes))] + ["output"], [*hidden_sizes, len(labels)]):
+        shapes[f"{name}.weight"], shapes[f"{name}.bias"], width = (size, width), (size,), size
+    weights_path, arrays = _read_weights(root, {name: math.prod(s) for name, s in shapes.items()})
     embedding = _take_tensor(weights_path, arrays, "embedding", 2)
     if embedding.shape[0] != len(vocab):
         raise _fail(weights_path, f"tensor 'embedding' has {embedding.shape[0]} rows but tokens.txt has {len(vocab)} tokens",

@@ -25,7 +25,9 @@ import msgpack
 import numpy as np
 
 from .errors import BundleError
+from .graph import first_difference, spec_from_tensors, write_graph
 from .onnx_wire import read_graph_names
+from .safe_text import labels_problem, token_problem
 from .tokenize import TokenizerSpec
 
 FORMAT_NAME = "danpack-bundle"
@@ -45,6 +47,8 @@ MAX_VOCAB_BYTES_PER_ROW, VOCAB_SLACK_BYTES = 256, 4096
 DTYPES = {"int8": np.dtype("i1"), "float32": np.dtype("<f4")}
 OOV_POLICIES = ("skip", "unk", "rest")
 ACTIVATIONS = ("relu", "tanh", None)
+PROBE_KEYS = {"ids", "probs", "texts", "text_probs"}
+MAX_PROBE_TEXTS, MAX_PROBE_TEXT_CHARS = 32, 1 << 14  # the packer writes at most 6 texts of about 16 tokens
 OUTER_KEYS = {"format", "version", "sha256", "payload"}
 PAYLOAD_KEYS = {"graph", "manifest", "tensors", "vocab"}
 ONNX_DTYPES = {"float32": 1, "int8": 3}  # TensorProto.DataType: FLOAT = 1, INT8 = 3 (onnx.proto)
@@ -196,6 +200,7 @@ def decode_bundle(data: bytes, source: str = "bundle") -> Bundle:
     vocab = _decode_vocab(source, vocab_blob, MAX_VOCAB_BYTES_PER_ROW * rows + VOCAB_SLACK_BYTES)
     _check_manifest(source, manifest, vocab, tensors)
     _check_graph(source, graph, tensors)
+    _check_graph_is_written(source, graph, manifest, tensors)
     return Bundle(manifest, vocab, graph, tensors, digest.hex(), len(data), len(vocab_blob))
 
 
@@ -268,10 +273,13 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
     labels = m.get("labels")
     if not isinstance(labels, list) or len(labels) < 2 or not all(isinstance(x, str) for x in labels):
         raise fail("field 'labels' must list at least 2 label strings")
+    problem = labels_problem(labels)
+    if problem is not None:
+        raise fail(f"field 'labels' {problem}")
     try:
         TokenizerSpec.from_dict(m.get("tokenizer"))
     except Exception as e:  # re.compile of a hostile pattern also raises OverflowError, RecursionError ...
-        raise fail(f"field 'tokenizer' is invalid ({type(e).__name__}: {str(e)[:200]})") from e
+        raise fail(f"field 'tokenizer' is invalid ({type(e).__name__}: {str(e)[:300]})") from e
     oov, table_meta, layers = m.get("oov"), m.get("table"), m.get("layers")
     if not isinstance(oov, dict) or oov.get("policy") not in OOV_POLICIES or "row" not in oov:
         raise fail(f"field 'oov' must be a map with policy in {OOV_POLICIES} and a row")
@@ -287,6 +295,9 @@ def _check_manifest(source: str, m: dict, vocab: tuple[str, ...], tensors: dict[
         raise fail(f"vocabulary ({len(vocab)} tokens) does not match the table ({rows} rows) or repeats a token")
     if "" in vocab:
         raise fail(f"vocabulary holds an empty token (line {vocab.index('') + 1}); tokens must be non-empty")
+    problem = token_problem(vocab)
+    if problem is not None:
+        raise fail(f"vocabulary {problem}")
     described = {k: table_meta.get(k) for k in ("rows", "width", "tokens")}
     if described != {"rows": rows, "width": table.shape[1], "tokens": len(vocab)}:
         raise fail(f"field 'table' describes {_show(described)}, but the bundle holds {rows} x {table.shape[1]} "
@@ -404,9 +415,19 @@ def _check_unknown(fail, field: object, width: int) -> None:
 
 
 def _check_probe(fail, probe: object, rows: int, classes: int) -> None:
-    """The probe: a few id sequences (all in range) and the probabilities the packer computed."""
-    if not isinstance(probe, dict) or set(probe) != {"ids", "probs"}:
-        raise fail("field 'probe' must be a map with ids and probs")
+    """The probe: a few id sequences (all in range) and texts, with the probabilities the packer computed."""
+    if not isinstance(probe, dict) or set(probe) != PROBE_KEYS:
+        raise fail(f"field 'probe' must be a map with {', '.join(sorted(PROBE_KEYS))}")
+    texts, text_probs = probe["texts"], probe["text_probs"]
+    if (not isinstance(texts, list) or not isinstance(text_probs, list) or len(texts) != len(text_probs)
+            or len(texts) > MAX_PROBE_TEXTS
+            or not all(isinstance(t, str) and len(t) <= MAX_PROBE_TEXT_CHARS for t in texts)):
+        raise fail(f"probe texts and text_probs must be lists of the same length (at most {MAX_PROBE_TEXTS}), "
+                   f"the texts strings of at most {MAX_PROBE_TEXT_CHARS} characters")
+    for p in text_probs:
+        if (not isinstance(p, list) or len(p) != classes
+                or not all(isinstance(x, float) and 0.0 <= x <= 1.0 for x in p)):
+            raise fail(f"probe probabilities must be {classes} floats in [0, 1] per text")
     ids, probs = probe["ids"], probe["probs"]
     if (not isinstance(ids, list) or not isinstance(probs, list) or len(ids) != len(probs)
             or not 1 <= len(ids) <= 64):
@@ -456,3 +477,14 @@ def _check_graph(source: str, graph: bytes, tensors: dict[str, np.ndarray]) -> N
         if dtype != want or tuple(dims) != t.shape:
             raise fail(f"declares tensor {name!r} as type {dtype} shape {_show(dims)}, "
                        f"but the bundle holds {t.dtype} {t.shape}")
+
+
+def _check_graph_is_written(source: str, graph: bytes, manifest: dict, tensors: dict[str, np.ndarray]) -> None:
+    """The graph is byte for byte the one runtime.graph writes for this manifest and these tensor shapes: no extra
+    node, constant, attribute or input can make the bundle compute anything but what its tensors say."""
+    spec = spec_from_tensors(len(manifest["labels"]), manifest["table"]["dtype"] == "int8", manifest["layers"],
+                             {name: t.shape for name, t in tensors.items()})
+    difference = first_difference(graph, write_graph(spec))
+    if difference is not None:
+        raise BundleError(f"{source}: graph is not the one danpack writes for this manifest: {difference}; "
+                          "repack the model with `danpack pack`")

@@ -47,10 +47,16 @@ class Classifier:
         self._check_probe()
 
     def _check_probe(self) -> None:
-        """Re-run the packer's probe sequences: a backend that computes differently is refused at load."""
+        """Re-run the packer's probe: its id sequences (a backend that computes differently is refused at load),
+        then its texts through tokenizer, vocabulary and backend (a permuted or edited vocabulary is refused)."""
         probe = self.bundle.manifest["probe"]
-        expected = np.asarray(probe["probs"], dtype=np.float32)  # (P, C)
-        ids, counts = encode_batch(probe["ids"])
+        self._check_probe_part(encode_batch(probe["ids"]), probe["probs"], "probe")
+        if probe["texts"]:
+            self._check_probe_part(self.encoder.encode(probe["texts"]), probe["text_probs"], "probe texts")
+
+    def _check_probe_part(self, encoded: tuple[np.ndarray, np.ndarray], expected_probs: list, what: str) -> None:
+        expected = np.asarray(expected_probs, dtype=np.float32)  # (P, C)
+        ids, counts = encoded  # (P, T), (P,)
         try:
             probs = np.asarray(self.backend.run(ids, counts)[0])  # (P, C)
         except Exception as e:  # onnxruntime raises Fail / InvalidArgument for a graph that fails only when run
@@ -59,10 +65,16 @@ class Classifier:
         if probs.shape != expected.shape:
             raise BundleError(f"the bundle's graph answers the probe with shape {probs.shape}, expected "
                               f"{expected.shape}; repack the model with `danpack pack`")
-        worst = float(np.abs(probs - expected).max())
+        if not np.isfinite(probs).all():
+            raise BundleError(f"the bundle's graph answers the {what} with a non-finite probability (NaN or Inf) on "
+                              f"the {self.backend.name} backend; the bundle is damaged or crafted: repack the model")
+        worst = float(np.abs(probs - expected).max(initial=0.0))
         if not worst <= PROBE_TOLERANCE:
-            raise BundleError(f"the {self.backend.name} backend disagrees with the packer on the bundle's probe "
-                              f"(max difference {worst:.2e} > {PROBE_TOLERANCE}); the bundle or the runtime is damaged")
+            cause = (" (its vocabulary or tokenizer is not the one the packer used)" if what == "probe texts"
+                     else "")
+            raise BundleError(f"the {self.backend.name} backend disagrees with the packer on the bundle's {what} "
+                              f"(max difference {worst:.2e} > {PROBE_TOLERANCE}){cause}; the bundle or the runtime "
+                              "is damaged")
 
     @property
     def labels(self) -> tuple[str, ...]:

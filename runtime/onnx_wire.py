@@ -134,3 +134,29 @@ def read_graph_names(graph: bytes) -> GraphNames:
             names = [_text(v) for f, w, v in _strings(list(_fields(value)), "value") if f == 1]
             (inputs if number == 11 else outputs).update(names)
     return GraphNames(used, defined | inputs, inputs, outputs, external, ops)
+
+
+# --- writing ---------------------------------------------------------------------------------------------------
+# The few protobuf encodings the graph writer (runtime/graph.py) needs. Fields are written in the order given,
+# so equal content gives equal bytes; the reader compares a bundle's graph with these bytes exactly.
+
+def put_varint(value: int) -> bytes:
+    """A non-negative integer as a protobuf varint (negative int64 values take 10 bytes, two's complement)."""
+    value &= (1 << 64) - 1
+    out = bytearray()
+    while value >= 0x80:
+        out.append((value & 0x7F) | 0x80)
+        value >>= 7
+    out.append(value)
+    return bytes(out)
+
+
+def put_int(number: int, value: int) -> bytes:
+    """A varint field (wire type 0)."""
+    return put_varint(number << 3) + put_varint(value)
+
+
+def put_bytes(number: int, value: bytes | str) -> bytes:
+    """A length-delimited field (wire type 2): bytes, a UTF-8 string or an encoded sub-message."""
+    data = value.encode("utf-8") if isinstance(value, str) else value
+    return put_varint(number << 3 | 2) + put_varint(len(data)) + data

@@ -19,6 +19,8 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from typing import BinaryIO
 
+import numpy as np
+
 from .backends import BACKENDS
 from .classifier import Classifier, load
 from .errors import DanpackError
@@ -166,20 +168,80 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
             with _stop_signals_held():
                 sink.write(formatter.header)
         for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes, wake_fd):
-            parsed = [parse(raw, records + i) for i, raw in enumerate(lines, start=1)]
-            texts = [p[1] for p in parsed if p[3] is None]
-            _, probs, known = classifier.predict_known(texts) if texts else (None, None, None)  # (N, C), (N,)
-            data = formatter.format(parsed, probs, known)
-            skipped = sum(isinstance(p[3], Skipped) for p in parsed)
+            parsed = [_parse_one(parse, raw, records + i) for i, raw in enumerate(lines, start=1)]
+            data, failed = answer_batch(classifier, formatter, parsed)
             with _stop_signals_held():  # one write and one flush per batch
                 sink.write(data)
                 sink.flush()
                 records += len(parsed)
-                errors += len(parsed) - len(texts) - skipped
+                errors += failed
                 batches += 1
     except KeyboardInterrupt as e:
         raise StreamInterrupted(stats(), signal.SIGTERM if isinstance(e, Terminated) else signal.SIGINT) from None
     return stats()
+
+
+def _cause(e: BaseException) -> str:
+    """An exception as a short reason for an error record."""
+    detail = " ".join(str(e).split())[:200]
+    return f"{type(e).__name__}: {detail}" if detail else type(e).__name__
+
+
+def _parse_one(parse, raw, line: int) -> tuple:
+    """`parse`, with any failure (MemoryError, RecursionError ...) turned into the record's error."""
+    try:
+        return parse(raw, line)
+    except Exception as e:
+        return line, None, None, f"cannot be read ({_cause(e)})"
+
+
+def _classify(classifier: Classifier, formatter, parsed: list) -> tuple[bytes, int]:
+    """Output bytes of a batch and its error count; a non-finite answer becomes that record's error."""
+    texts = [p[1] for p in parsed if p[3] is None]
+    _, probs, known = classifier.predict_known(texts) if texts else (None, None, None)  # (N, C), (N,)
+    if probs is not None:
+        finite = np.isfinite(probs).all(axis=1)  # (N,)
+        if not finite.all():
+            bad = iter((~finite).tolist())
+            parsed = [p if p[3] is not None or not next(bad) else
+                      (p[0], None, p[2], "the model returned a non-finite probability (NaN or Inf); "
+                                         "the bundle is damaged or crafted") for p in parsed]
+            probs, known = probs[finite], known[finite]
+            if not len(probs):
+                probs = known = None
+    failed = sum(p[3] is not None and not isinstance(p[3], Skipped) for p in parsed)
+    return formatter.format(parsed, probs, known), failed
+
+
+def answer_batch(classifier: Classifier, formatter, parsed: list) -> tuple[bytes, int]:
+    """One output record per parsed record, in order, whatever fails: when the batch fails as a whole, each record
+    is answered alone, and one that still fails (a backend exception, an encoding error, recursion, memory) gets an
+    error record naming the cause. Returns (bytes, error records)."""
+    try:
+        return _classify(classifier, formatter, parsed)
+    except Exception as e:
+        if len(parsed) == 1:
+            return _error_record(formatter, parsed[0], e), int(not isinstance(parsed[0][3], Skipped))
+    out, errors = [], 0
+    for record in parsed:
+        try:
+            data, failed = _classify(classifier, formatter, [record])
+        except Exception as e:
+            data, failed = _error_record(formatter, record, e), int(not isinstance(record[3], Skipped))
+        out.append(data)
+        errors += failed
+    return b"".join(out), errors
+
+
+def _error_record(formatter, record: tuple, e: BaseException) -> bytes:
+    line, _text, extra, error = record
+    if isinstance(error, Skipped):
+        return formatter.format([record], None)
+    reason = error or f"cannot be classified ({_cause(e)})"
+    try:
+        return formatter.format([(line, None, extra, reason)], None)
+    except Exception:  # the passthrough fields themselves cannot be written
+        return formatter.format([(line, None, None, f"{reason}; its other fields cannot be written")], None)
 
 
 # --- command line --------------------------------------------------------------------------------

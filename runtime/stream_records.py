@@ -10,10 +10,12 @@ from __future__ import annotations
 import json
 import math
 import operator
+import re
 from collections.abc import Callable, Sequence
 
 import numpy as np
 
+from .safe_text import escape_text
 from .stream_lines import OVERLONG
 
 EMPTY = "empty line"
@@ -22,6 +24,9 @@ BOM = b"\xef\xbb\xbf"  # UTF-8 byte order mark some editors put at the start of 
 RESERVED = frozenset(("line", "label", "probs", "known_tokens", "no_known_token", "error", "skipped"))
 JSON_TYPES = {dict: "an object", list: "an array", str: "a string", int: "a number", float: "a number",
               bool: "a boolean", type(None): "null"}
+# JSON nesting deeper than this is an error record before decoding: well below the ~1,000 levels at which Python's
+# decoder or encoder (json.dumps of the passthrough fields) raises RecursionError.
+MAX_JSON_DEPTH = 100
 MAX_INT_DIGITS = 4000  # longer JSON integers are refused (Python's own int() stops at 4300 digits)
 TSV_ESCAPES = str.maketrans({"\\": "\\\\", "\t": "\\t", "\n": "\\n", "\r": "\\r"})  # common practice for TSV
 
@@ -54,6 +59,22 @@ def _bounded_int(text: str) -> int:
 # Strict JSON: NaN / Infinity and numbers that overflow to inf would not survive being written back out.
 _decode_json = json.JSONDecoder(parse_constant=_reject_constant, parse_float=_finite_float,
                                 parse_int=_bounded_int).decode
+
+
+_JSON_STRING = re.compile(r'"[^"\\]*(?:\\.[^"\\]*)*"')  # a JSON string literal (its brackets are text)
+_BRACKET = re.compile(r"[\[\]{}]")
+
+
+def nests_deeper(doc: str, limit: int = MAX_JSON_DEPTH) -> bool:
+    """Whether the JSON text `doc` opens more than `limit` arrays/objects inside one another (linear time)."""
+    if doc.count("[") + doc.count("{") <= limit:  # the common case: cannot be that deep
+        return False
+    depth = 0
+    for m in _BRACKET.finditer(_JSON_STRING.sub("", doc)):
+        depth += 1 if m.group() in "[{" else -1
+        if depth > limit:
+            return True
+    return False
 
 
 def _check_bytes(raw, line: int, limit: int, allow_empty: bool) -> tuple[str | None, str | None]:
@@ -92,6 +113,8 @@ def make_parser(jsonl: bool, text_field: str, limit: int, classify_empty: bool,
             return line, None, None, Skipped(EMPTY)
         if error is not None:
             return line, None, None, error
+        if nests_deeper(doc):
+            return line, None, None, f"invalid JSON: nested deeper than {MAX_JSON_DEPTH} levels"
         try:
             obj = _decode_json(doc)
         except json.JSONDecodeError as e:
@@ -120,7 +143,7 @@ def _extra_json(extra: dict) -> str:
         return ""
     if not RESERVED.isdisjoint(extra):  # rename in place, keeping the input's key order
         extra = {_renamed(key, extra): value for key, value in extra.items()}
-    return "," + json.dumps(extra, ensure_ascii=False, separators=(",", ":"))[1:-1]
+    return "," + escape_text(json.dumps(extra, ensure_ascii=False, separators=(",", ":"))[1:-1])
 
 
 def _renamed(key: str, extra: dict) -> str:
@@ -135,7 +158,7 @@ def _tsv_value(value) -> str:
     if value is None:
         return ""
     text = value if isinstance(value, str) else json.dumps(value, ensure_ascii=False, separators=(",", ":"))
-    return text.translate(TSV_ESCAPES)
+    return escape_text(text.translate(TSV_ESCAPES))
 
 
 def _rank(probs: np.ndarray, top_k: int) -> list[list[int]]:
@@ -149,7 +172,7 @@ class JsonlFormatter:
     header = b""
 
     def __init__(self, labels: Sequence[str], top_k: int | None) -> None:
-        self.names = [json.dumps(label, ensure_ascii=False) for label in labels]
+        self.names = [escape_text(json.dumps(label, ensure_ascii=False)) for label in labels]
         self.keys = [name + ":" for name in self.names]
         self.top_k = top_k
 
@@ -168,7 +191,7 @@ class JsonlFormatter:
             head = f'{{"line":{line}{_extra_json(extra) if extra else ""}'
             if error is not None:
                 kind = "skipped" if isinstance(error, Skipped) else "error"
-                out.append(f'{head},"{kind}":{json.dumps(error, ensure_ascii=False)}}}\n')
+                out.append(f'{head},"{kind}":{escape_text(json.dumps(error, ensure_ascii=False))}}}\n')
                 continue
             row = strs[j]
             if order is None:
@@ -187,10 +210,10 @@ class TsvFormatter:
     """Tab-separated: line, [id], label, probability (k pairs with top-k), error; values escaped (\\t \\n \\r \\\\)."""
 
     def __init__(self, labels: Sequence[str], top_k: int | None, id_field: str | None, header: bool) -> None:
-        self.names = [label.translate(TSV_ESCAPES) for label in labels]
+        self.names = [escape_text(label.translate(TSV_ESCAPES)) for label in labels]
         self.k = top_k or 1
         self.id_field = id_field
-        columns = ["line"] + ([id_field.translate(TSV_ESCAPES)] if id_field is not None else [])
+        columns = ["line"] + ([escape_text(id_field.translate(TSV_ESCAPES))] if id_field is not None else [])
         columns += ["label", "probability"]
         for i in range(2, self.k + 1):
             columns += [f"label_{i}", f"probability_{i}"]
@@ -212,7 +235,7 @@ class TsvFormatter:
             head = str(line) if id_field is None else f"{line}\t{_tsv_value(extra.get(id_field)) if extra else ''}"
             if error is not None:
                 reason = f"skipped: {error}" if isinstance(error, Skipped) else error
-                out.append(f"{head}{self.blank}\t{reason.translate(TSV_ESCAPES)}\n")
+                out.append(f"{head}{self.blank}\t{escape_text(reason.translate(TSV_ESCAPES))}\n")
                 continue
             row = strs[j]
             cells = "\t".join([f"{names[c]}\t{row[c]}" for c in order[j]])

@@ -99,6 +99,99 @@ ASCII_PRESETS = {
     "wordpunct-v1": r"[0-9A-Za-z_]+|[!-/:-@\[-^`{-~\x00-\x08\x0e-\x1b\x7f]",
 }
 
+# Bounds on what a model folder or a bundle may ask of the tokenizer (README, "Tokenizer patterns").
+MAX_TOKENS_LIMIT = 1024  # tokens per text: a batch pads every text to its longest, so memory grows with this
+MAX_PATTERN_CHARS = 4096  # characters of a custom pattern (the presets are trusted constants)
+_CLASS_ESCAPES = frozenset("wWdDsS")  # \w \d \s and their complements
+_CHAR_ESCAPES = {"t": 0, "n": 0, "r": 0, "f": 0, "v": 0, "x": 2, "u": 4, "U": 8}  # escape -> hex digits after it
+_META = frozenset("()^$*+?{}|")  # not atoms in the grammar
+
+
+def _pattern_error(pattern: str, at: int, what: str) -> TokenizerError:
+    return TokenizerError(f"tokenizer pattern {pattern[:40]!r}: {what} at character {at + 1}, outside the "
+                          f"linear-time grammar (README, \"Tokenizer patterns\"); or use a preset")
+
+
+def _escape_end(pattern: str, i: int, in_class: bool) -> int:
+    """End of the escape starting at pattern[i] == "\\"."""
+    if i + 1 >= len(pattern):
+        raise _pattern_error(pattern, i, "a lone backslash")
+    c = pattern[i + 1]
+    if c in _CLASS_ESCAPES:
+        return i + 2
+    if c in _CHAR_ESCAPES:
+        digits = _CHAR_ESCAPES[c]
+        hex_part = pattern[i + 2 : i + 2 + digits]
+        if len(hex_part) != digits or not all(h in "0123456789abcdefABCDEF" for h in hex_part):
+            raise _pattern_error(pattern, i, f"\\{c} needs {digits} hex digits")
+        return i + 2 + digits
+    if c.isalnum() or c == "_":  # \b \B \A \Z \1 \N ...: anchors, back-references, names
+        raise _pattern_error(pattern, i, f"the escape \\{c}{' inside a class' if in_class else ''} is not allowed")
+    return i + 2  # an escaped punctuation character or space: a literal
+
+
+def _atom_end(pattern: str, i: int) -> int:
+    """End of the atom starting at pattern[i]: ".", a literal, an escape, or a character class [...]."""
+    c = pattern[i]
+    if c == "\\":
+        return _escape_end(pattern, i, False)
+    if c != "[":
+        if c in _META or c == "]":
+            raise _pattern_error(pattern, i, f"{c!r} (groups, anchors and counted or nested repetition are not allowed)")
+        return i + 1
+    j = i + 1
+    if j < len(pattern) and pattern[j] == "^":
+        j += 1
+    start = j
+    while j < len(pattern) and (pattern[j] != "]" or j == start):
+        if pattern[j] == "\\":
+            j = _escape_end(pattern, j, True)
+        elif pattern[j] == "[":
+            raise _pattern_error(pattern, j, "'[' inside a class (nested sets are not allowed; escape it as \\[)")
+        else:
+            j += 1
+    if j >= len(pattern):
+        raise _pattern_error(pattern, i, "a class that is never closed")
+    return j + 1
+
+
+def check_pattern_grammar(pattern: str) -> None:
+    """Refuse a custom pattern outside the linear-time grammar (the presets are trusted constants and exempt).
+
+    pattern := branch ("|" branch)* ; branch := atom ["+"] (atom ("*" | "?"))* ;
+    atom := "." | literal | escape | "[" ["^"] class-items "]".
+    Every branch starts with one mandatory atom and whatever follows is optional, so `re` never backtracks
+    out of a match once its first atom matched: each match attempt costs its length plus a constant, and
+    splitting a text is linear in its length. (Nested or counted repetition, groups, look-arounds and
+    back-references can take exponential or quadratic time; a pattern such as (?:a+)+b does on "aaaa...c".)
+    """
+    if pattern in PRESETS:
+        return
+    i, n = 0, len(pattern)
+    while True:
+        atoms = 0
+        while i < n and pattern[i] != "|":
+            i = _atom_end(pattern, i)
+            q = pattern[i] if i < n else ""
+            if q in ("*", "+", "?", "{"):
+                if q == "{" or q not in ("+" if atoms == 0 else "*?"):
+                    first = "the first atom of a branch may only take '+'"
+                    later = "an atom after the first must take '*' or '?'"
+                    raise _pattern_error(pattern, i, f"{q!r} here ({first}; {later})")
+                i += 1
+                if i < n and pattern[i] in "*+?{":
+                    raise _pattern_error(pattern, i, f"{pattern[i]!r} after a quantifier (lazy, possessive or "
+                                                    "repeated quantifiers are not allowed)")
+            elif atoms > 0:
+                raise _pattern_error(pattern, i - 1, "an atom after the first of its branch without '*' or '?'")
+            atoms += 1
+        if atoms == 0:
+            raise _pattern_error(pattern, i, "an empty branch")
+        if i >= n:
+            return
+        i += 1
+
+
 NORMALIZATIONS = ("NFC", "NFKC", "NFD", "NFKD", "none")
 CASES = ("lower", "casefold", "keep")
 
@@ -119,10 +212,15 @@ class TokenizerSpec:
             )
         if self.case not in CASES:
             raise TokenizerError(f"tokenizer case {self.case!r} is not one of {CASES}")
-        if not isinstance(self.max_tokens, int) or isinstance(self.max_tokens, bool) or self.max_tokens < 1:
-            raise TokenizerError(f"tokenizer max_tokens must be an integer >= 1, found {self.max_tokens!r}")
+        if (not isinstance(self.max_tokens, int) or isinstance(self.max_tokens, bool)
+                or not 1 <= self.max_tokens <= MAX_TOKENS_LIMIT):
+            raise TokenizerError(f"tokenizer max_tokens must be an integer from 1 to {MAX_TOKENS_LIMIT}, "
+                                 f"found {self.max_tokens!r}")
         if not isinstance(self.pattern, str) or not self.pattern:
             raise TokenizerError("tokenizer pattern must be a non-empty string")
+        if len(self.pattern) > MAX_PATTERN_CHARS and self.pattern not in PRESETS:
+            raise TokenizerError(f"tokenizer pattern is {len(self.pattern)} characters long; a custom pattern may "
+                                 f"have at most {MAX_PATTERN_CHARS}")
         try:
             compiled = re.compile(self.regex)
         except (re.error, OverflowError, RecursionError, ValueError) as e:
@@ -134,6 +232,7 @@ class TokenizerSpec:
                 "tokenizer pattern must not contain capturing groups (use (?:...)); "
                 f"found {compiled.groups} in {self.pattern!r}"
             )
+        check_pattern_grammar(self.pattern)
 
     @property
     def regex(self) -> str:

@@ -100,7 +100,16 @@ def reencode(source: Path, out: Path, *, table=None, labels=None) -> Path:
     ids, counts = encode_batch(manifest["probe"]["ids"])
     probs = softmax(forward_logits(tensors["table"], layers, ids, counts, tensors.get("scales")))  # (P, C)
     manifest["probe"]["probs"] = probs.astype(np.float32).tolist()
-    out.write_bytes(encode_bundle(encode_payload(manifest, encode_vocab(list(b.vocab)), b.graph, tensors)))
+    from danpack.runtime.encode import Encoder
+    from danpack.runtime.graph import spec_from_tensors, write_graph
+    from danpack.runtime.tokenize import Tokenizer
+
+    ids, counts = Encoder(Tokenizer(b.tokenizer), b.vocab, b.oov_row).encode(manifest["probe"]["texts"])
+    probs = softmax(forward_logits(tensors["table"], layers, ids, counts, tensors.get("scales")))  # (S, C)
+    manifest["probe"]["text_probs"] = probs.astype(np.float32).tolist()
+    graph = write_graph(spec_from_tensors(len(manifest["labels"]), "scales" in tensors, manifest["layers"],
+                                          {n: t.shape for n, t in tensors.items()}))
+    out.write_bytes(encode_bundle(encode_payload(manifest, encode_vocab(list(b.vocab)), graph, tensors)))
     return out
 
 
@@ -553,3 +562,21 @@ def test_cli_outputs_are_checked_before_the_run(case, tmp_path):
         assert res.exit_code == 2 and needle in res.stderr, res.output
         assert "Traceback" not in res.output and "accuracy" not in res.stdout  # refused before any work
     assert eval_copy.read_bytes() == before
+
+
+def test_a_non_finite_answer_is_exit_2_never_a_crash(case, monkeypatch, tmp_path):
+    # the hostile-input trial: a NaN-producing graph made `danpack check` crash with exit 1 (its "gate failed"
+    # code); the reader now refuses such graphs, and a NaN that still came out of a backend is a plain error
+    from danpack.runtime.classifier import Classifier
+
+    real = Classifier.predict_proba
+
+    def nan_on_first(self, texts):
+        probs = real(self, texts)
+        probs[:1] = np.nan
+        return probs
+
+    monkeypatch.setattr(Classifier, "predict_proba", nan_on_first)
+    res = invoke(case.good, "--reference", case.model_dir, "--eval", case.eval_path, *NO_LATENCY)
+    assert res.exit_code == 2, res.output
+    assert "the bundle gives a non-finite probability (NaN or Inf) for text 1 of" in res.output

@@ -215,3 +215,38 @@ def test_the_reader_allows_exactly_the_operators_the_packer_writes(tmp_path_fact
         written |= {n.op_type for n in model.graph.node}
         assert {n.domain for n in model.graph.node} == {""}
     assert written == GRAPH_OPS
+
+
+@pytest.mark.parametrize("hidden, activation, quantize, fold", [c.values for c in CONFIGS], ids=[c.id for c in CONFIGS])
+def test_written_graph_passes_the_onnx_checker(tmp_path_factory, hidden, activation, quantize, fold):
+    # runtime.graph writes the protobuf bytes by hand; onnx.checker (the ONNX specification's validator, full
+    # check with shape inference) must accept them, and the embedded form must equal the export's.
+    from danpack.pack.graph import build_graph, check_graph
+    from danpack.runtime.graph import spec_from_tensors, write_graph
+
+    bundle = packed(tmp_path_factory, hidden, activation, quantize, fold)
+    model = onnx.ModelProto()
+    model.ParseFromString(bundle.graph)
+    check_graph(model)
+    spec = spec_from_tensors(len(bundle.labels), quantize, bundle.manifest["layers"],
+                             {n: t.shape for n, t in bundle.tensors.items()})
+    assert write_graph(spec) == bundle.graph
+    embedded = build_graph(spec, bundle.tensors)
+    onnx.checker.check_model(embedded, full_check=True)
+    assert embedded == export_onnx(bundle)
+
+
+def test_reader_names_the_first_node_that_differs(tmp_path_factory):
+    from danpack.runtime.graph import first_difference
+
+    bundle = packed(tmp_path_factory, "1", "relu", True, "no")
+    model = onnx.ModelProto()
+    model.ParseFromString(bundle.graph)
+    model.graph.node[2].op_type = "Identity"
+    assert first_difference(model.SerializeToString(), bundle.graph) == (
+        "node 3 is node Identity 'positions', expected node Range 'positions'")
+    model.ParseFromString(bundle.graph)
+    model.graph.node[-1].attribute[0].i = 0  # Softmax over axis 0: same operator and name, other attribute
+    assert first_difference(model.SerializeToString(), bundle.graph) == (
+        f"node {len(model.graph.node)} (node Softmax 'probs') differs in its inputs, attributes or contents")
+    assert first_difference(bundle.graph, bundle.graph) is None

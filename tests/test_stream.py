@@ -197,7 +197,10 @@ JSONL_BAD = {
     "long integer": (b'{"text": "w1", "x": ' + b"9" * 5000 + b"}",
                      "invalid JSON: an integer of 5000 digits is too long", None),
     "deep nesting": (b'{"text": "w1", "x": ' + b"[" * 100_000 + b"]" * 100_000 + b"}",
-                     "invalid JSON: nested too deeply", None),
+                     "invalid JSON: nested deeper than 100 levels", None),
+    # decodes under Python's ~1,000-level limit but json.dumps of the passthrough field would then recurse past it
+    "990 levels": (b'{"text": "w1", "x": ' + b"[" * 989 + b"]" * 989 + b"}",
+                   "invalid JSON: nested deeper than 100 levels", None),
     "utf-16 bom": (b'\xff\xfe{"text": "w1"}', "not valid UTF-8 (byte 1)", None),
     "latin-1": (b'{"text": "caf\xe9"}', "not valid UTF-8 (byte 14)", None),
 }
@@ -796,3 +799,91 @@ def test_closed_standard_stream_is_a_usage_error(bundle, tmp_path, closed):
     _, err = proc.communicate(timeout=CHILD_TIMEOUT)
     assert proc.returncode == 2
     assert f"standard {closed} is closed" in err.decode() and "Traceback" not in err.decode()
+
+
+# --- in = out whatever fails (issue: hostile inputs) --------------------------------------------------------------
+
+def test_brackets_inside_strings_do_not_count_as_nesting(clf):
+    from danpack.runtime.stream_records import nests_deeper
+
+    deep_text = "[" * 500 + '\\"{' * 50
+    record = json.dumps({"text": "w1", "note": deep_text}).encode()
+    records, stats, _ = run_stream(clf, lines_bytes([record]), jsonl=True)
+    assert records[0]["note"] == deep_text and "label" in records[0] and stats.errors == 0
+    assert nests_deeper("[" * 101 + "]" * 101) and not nests_deeper("[" * 100 + "]" * 100)
+    assert not nests_deeper('["' + "[" * 200 + '"]')
+
+
+def test_990_levels_among_2001_records_keep_in_equal_out(clf):
+    # the trial's attack: one record 990 levels deep in 2,001 lines (before: 960 records out, then a traceback)
+    good = b'{"text": "w1 w2"}'
+    deep = b'{"text": "w1", "x": ' + b"[" * 989 + b"]" * 989 + b"}"
+    lines = [good] * 1000 + [deep] + [good] * 1000
+    records, stats, _ = run_stream(clf, lines_bytes(lines), jsonl=True)
+    assert len(records) == stats.records == 2001 and stats.errors == 1
+    assert [r["line"] for r in records] == list(range(1, 2002))
+    assert records[1000]["error"] == "invalid JSON: nested deeper than 100 levels"
+
+
+class _FailingOn:
+    """A classifier whose backend raises for any batch holding `word` (as onnxruntime did for a crafted graph)."""
+
+    def __init__(self, clf, word: str, error: BaseException, nan_word: str | None = None) -> None:
+        self.clf, self.word, self.error, self.nan_word = clf, word, error, nan_word
+        self.labels = clf.labels
+
+    def predict_proba(self, texts):
+        if any(self.word in t for t in texts):
+            raise self.error
+        probs = self.clf.predict_proba(texts)
+        if self.nan_word is not None:
+            probs[[self.nan_word in t for t in texts]] = np.nan
+        return probs
+
+
+@pytest.mark.parametrize("error, cause", [
+    (RuntimeError("[ONNXRuntimeError] : 6 : RUNTIME_EXCEPTION : std::bad_alloc"), "RuntimeError: [ONNXRuntimeError]"),
+    (MemoryError(), "MemoryError"),
+    (RecursionError("maximum recursion depth exceeded"), "RecursionError: maximum recursion depth exceeded"),
+    (UnicodeEncodeError("utf-8", "\ud800", 0, 1, "surrogates not allowed"), "UnicodeEncodeError"),
+])
+@pytest.mark.parametrize("output", ["jsonl", "tsv"])
+def test_a_failing_record_gets_an_error_record_and_the_stream_goes_on(clf, error, cause, output):
+    # the trial's attack: a backend exception ended the stream (171 lines in, 70 records out, traceback)
+    lines = [f"w{i % 7} w{i % 5}".encode() for i in range(171)]
+    lines[70] = b"w1 boom w2"
+    failing = _FailingOn(clf, "boom", error)
+    out = io.BytesIO()
+    stats = classify_stream(failing, io.BytesIO(lines_bytes(lines)), out, StreamConfig(output=output))
+    rows = out.getvalue().decode("utf-8").split("\n")[:-1]
+    assert len(rows) == stats.records == 171 and stats.errors == 1
+    expected, _, _ = run_stream(clf, lines_bytes(lines[:70] + lines[71:]))
+    if output == "jsonl":
+        records = [json.loads(r) for r in rows]
+        assert records[70]["line"] == 71 and records[70]["error"].startswith(f"cannot be classified ({cause}")
+        assert [r.get("label") for r in records[:70] + records[71:]] == [r["label"] for r in expected]
+    else:
+        assert rows[70].split("\t")[0] == "71" and f"cannot be classified ({cause}" in rows[70].split("\t")[-1]
+
+
+def test_a_non_finite_answer_is_an_error_record_never_invalid_json(clf):
+    # the trial's attack: a NaN-producing graph made danpack-run write {"negative":nan,...} (not JSON)
+    failing = _FailingOn(clf, "\0never", RuntimeError(), nan_word="w3")
+    out = io.BytesIO()
+    stats = classify_stream(failing, io.BytesIO(lines_bytes([b"w1", b"w3 w4", b"w2"])), out, StreamConfig())
+    records = [json.loads(r) for r in out.getvalue().decode("utf-8").split("\n")[:-1]]  # every line valid JSON
+    assert stats.records == 3 and stats.errors == 1
+    assert records[1] == {"line": 2, "error": "the model returned a non-finite probability (NaN or Inf); "
+                                              "the bundle is damaged or crafted"}
+    assert "label" in records[0] and "label" in records[2]
+
+
+def test_escape_characters_in_ids_and_fields_never_reach_the_output_raw(clf):
+    # the trial's attack: a JSONL id holding ESC reached the TSV id column raw; JSON let U+009B and bidi through
+    record = json.dumps({"id": "a\x1b[2Jb\u009b\u202e", "text": "w1", "note": "\u2028x\U000e0001"}).encode()
+    tsv = run_stream_tsv(clf, lines_bytes([record]), jsonl=True, id_field="id")
+    assert tsv.split(b"\t")[1] == rb"a\u001b[2Jb\u009b\u202e"
+    records, _, raw = run_stream(clf, lines_bytes([record]), jsonl=True)
+    assert records[0]["id"] == "a\x1b[2Jb\u009b\u202e" and records[0]["note"] == "\u2028x\U000e0001"  # same data
+    text = raw.decode("utf-8")
+    assert not any(ch in text for ch in "\x1b\u009b\u202e\u2028\U000e0001")  # written as escapes only

@@ -805,6 +805,11 @@ def run_check(bundle_path: str | os.PathLike, model_dir: str | os.PathLike, eval
         probs_float = run_batched(model.predict_proba, texts, options.batch_size, steps, "float")  # (N, C)
     with steps.step(f"running the bundle ({options.backend})"):
         probs_packed = run_batched(clf.predict_proba, texts, options.batch_size, steps, "bundle")[:, order]  # (N, C)
+    for name, probs in (("float original", probs_float), ("bundle", probs_packed)):
+        if not np.isfinite(probs).all():  # no figure means anything then: refuse plainly (exit 2), never crash
+            row = int(np.argwhere(~np.isfinite(probs))[0][0])
+            raise CheckError(f"the {name} gives a non-finite probability (NaN or Inf) for text {row + 1} of "
+                             f"{eval_path}; the {'bundle' if name == 'bundle' else 'model'} is damaged or crafted")
     with steps.step("computing figures"):
         figures: dict = {"texts": len(texts)}
         figures.update({k: None for k in LABEL_KEYS})

@@ -19,6 +19,7 @@ from danpack import __version__
 from danpack.files import write_atomic
 from danpack.check.compare import CheckResult
 from danpack.check.verdict import Outcome, Verdict, format_value
+from danpack.runtime.safe_text import escape_text
 
 SCHEMA = "danpack-check-report"
 VERSION = 1
@@ -226,7 +227,7 @@ def render_table(report: dict) -> str:
     v = report["verdict"]
     gated = sum(1 for c in v["checks"] if c["status"] != "skip")
     out.append(f"\n{'PASS' if v['passed'] else 'FAIL'}: {gated - v['failures']} of {gated} gates hold")
-    return "\n".join(out) + "\n"
+    return escape_text("\n".join(out), keep="\n") + "\n"  # labels, texts and paths shown, never obeyed
 
 
 # ---- Markdown -----------------------------------------------------------------------------------
@@ -265,7 +266,7 @@ def render_markdown(report: dict) -> str:
         out += ["", "</details>"]
     if report["warnings"]:
         out += [""] + [f"> warning: {_md(w)}" for w in report["warnings"]]
-    return "\n".join(out) + "\n"
+    return escape_text("\n".join(out), keep="\n") + "\n"
 
 
 def write_markdown(path: str | os.PathLike, report: dict) -> Path:

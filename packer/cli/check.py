@@ -8,7 +8,7 @@ from typing import Optional
 import typer
 
 from danpack.check import BOOTSTRAP_SEED
-from danpack.cli.common import fail, interruptible
+from danpack.cli.common import echo, fail, interruptible
 from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
@@ -105,8 +105,8 @@ def check_command(
     except DanpackError as e:
         fail(str(e))
     for w in full["warnings"]:
-        typer.echo(f"danpack: warning: {w}", err=True)
-    typer.echo(render_table(full), nl=False)
+        echo(f"danpack: warning: {w}", err=True)
+    echo(render_table(full), nl=False)
     try:
         if report is not None:
             write_report(report, full)

@@ -12,9 +12,17 @@ from danpack.units import UnitError
 from danpack.units import parse_share as _parse_share
 
 
+def echo(text: str, err: bool = False, nl: bool = True) -> None:
+    """Print to the terminal through runtime.safe_text: control, format and bidi characters from a bundle, a model
+    folder or an input file are shown as \\uXXXX escapes, never sent raw (newlines stay)."""
+    from danpack.runtime.safe_text import escape_text
+
+    typer.echo(escape_text(text, keep="\n"), err=err, nl=nl)
+
+
 def fail(message: str, code: int = 2) -> NoReturn:
     """Print an error to stderr and exit (2: bad usage or unreadable input)."""
-    typer.echo(f"danpack: error: {message}", err=True)
+    echo(f"danpack: error: {message}", err=True)
     raise typer.Exit(code=code)
 
 
@@ -35,5 +43,5 @@ def interruptible(outcome: str) -> Iterator[None]:
     try:
         yield
     except KeyboardInterrupt:
-        typer.echo(f"\ndanpack: interrupted; {outcome}", err=True)
+        echo(f"\ndanpack: interrupted; {outcome}", err=True)
         raise typer.Exit(code=EXIT_INTERRUPTED) from None

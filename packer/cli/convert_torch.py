@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING, Optional
 
 import typer
 
-from danpack.cli.common import fail, interruptible
+from danpack.cli.common import echo, fail, interruptible
 from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 from danpack.units import format_bytes
@@ -115,5 +115,5 @@ def convert_torch(
     except DanpackError as e:
         fail(str(e))
     for note in report.warnings:
-        typer.echo(f"danpack: note: {note}", err=True)
-    typer.echo("\n".join(_describe(report)))
+        echo(f"danpack: note: {note}", err=True)
+    echo("\n".join(_describe(report)))

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import typer
 
-from danpack.cli.common import fail
+from danpack.cli.common import echo, fail
 from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
@@ -41,5 +41,5 @@ def demo_command(
     except DanpackError as e:
         fail(str(e))
     for line in describe_demo(result):
-        typer.echo(line)
+        echo(line)
     raise typer.Exit(code=result.exit_code)

@@ -8,7 +8,7 @@ from typing import Optional
 
 import typer
 
-from danpack.cli.common import fail, interruptible, parse_share
+from danpack.cli.common import echo, fail, interruptible, parse_share
 from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 from danpack.units import format_bytes
@@ -65,7 +65,7 @@ def pack_command(
              "drop --text-field, or give a .jsonl / .csv / .tsv corpus")
     for path in corpus:
         if path.is_file() and (warning := format_warning(path)):
-            typer.echo(f"danpack: warning: {warning}", err=True)
+            echo(f"danpack: warning: {warning}", err=True)
     try:
         check_outputs({"--output": output}, {**{f"model file {n}": p for n, p in model_files(model_dir).items()},
                                              **{f"--corpus {p}": p for p in corpus}, "--keep-words": keep_words,
@@ -105,31 +105,31 @@ def pack_command(
         "token_sample": None if sample is None else {"path": sample.path, "records": sample.records},
     }
     if json_out:
-        typer.echo(json.dumps(summary, indent=2, ensure_ascii=False))
+        echo(json.dumps(summary, indent=2, ensure_ascii=False))
         return
     if sample is not None:
-        typer.echo(sample.describe())
-    typer.echo(f"wrote {result.path}: {format_bytes(result.bytes)} "
+        echo(sample.describe())
+    echo(f"wrote {result.path}: {format_bytes(result.bytes)} "
                f"(float model {format_bytes(result.source_bytes)}, {summary['ratio']}x smaller)")
     if plan.has_corpus:
-        typer.echo(f"kept {plan.keep:,} of {result.source_rows:,} rows, covering {plan.coverage:.2%} of the "
+        echo(f"kept {plan.keep:,} of {result.source_rows:,} rows, covering {plan.coverage:.2%} of the "
                    f"{plan.known_tokens:,} known tokens in {plan.corpus_texts:,} selection texts "
                    f"({result.heldout_texts:,} more held out for measurement); chosen by {result.choice}")
         if result.heldout is not None:
             h = result.heldout
-            typer.echo(f"held-out: agreement with the float model {h.agreement:.2%}, mean |dp| {h.mean_abs_prob_diff:.4f}, "
+            echo(f"held-out: agreement with the float model {h.agreement:.2%}, mean |dp| {h.mean_abs_prob_diff:.4f}, "
                        f"certified {h.certified_share:.2%} of {h.texts:,} texts")
     else:
-        typer.echo(f"no corpus given: kept every reachable row ({plan.keep:,} of {result.source_rows:,}); "
+        echo(f"no corpus given: kept every reachable row ({plan.keep:,} of {result.source_rows:,}); "
                    "quantisation only — pass --corpus to prune to the deployment vocabulary")
     if plan.unreachable:
-        typer.echo(f"dropped {plan.unreachable:,} rows the tokenizer can never produce, e.g. "
+        echo(f"dropped {plan.unreachable:,} rows the tokenizer can never produce, e.g. "
                    + ", ".join(repr(t) for t in plan.unreachable_examples[:5]))
     if plan.unknown_keep_words:
-        typer.echo(f"keep-words the float model does not know (not added): {', '.join(plan.unknown_keep_words[:10])}")
-    typer.echo(f"table {result.rows:,} x {result.width} int8{' (first hidden layer folded in)' if result.folded else ''}; "
+        echo(f"keep-words the float model does not know (not added): {', '.join(plan.unknown_keep_words[:10])}")
+    echo(f"table {result.rows:,} x {result.width} int8{' (first hidden layer folded in)' if result.folded else ''}; "
                f"pruned tokens at run time: {result.policy}")
-    typer.echo("bytes: " + ", ".join(f"{k} {format_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
+    echo("bytes: " + ", ".join(f"{k} {format_bytes(v)} ({v / result.bytes:.1%})" for k, v in result.breakdown.items()))
 
 
 @app.command("inspect", cls=PlainCommand,
@@ -148,30 +148,30 @@ def inspect_command(
     except DanpackError as e:
         fail(str(e))
     if json_out:
-        typer.echo(json.dumps(info, indent=2, ensure_ascii=False))
+        echo(json.dumps(info, indent=2, ensure_ascii=False))
         return
     m = info["manifest"]
-    typer.echo(f"bundle   {bundle}")
-    typer.echo(f"sha256   {info['sha256']}")
-    typer.echo(f"size     {format_bytes(info['bytes'])} ({info['bytes']:,} bytes)")
-    typer.echo(f"labels   {', '.join(info['labels'])}")
+    echo(f"bundle   {bundle}")
+    echo(f"sha256   {info['sha256']}")
+    echo(f"size     {format_bytes(info['bytes'])} ({info['bytes']:,} bytes)")
+    echo(f"labels   {', '.join(info['labels'])}")
     t = m["table"]
-    typer.echo(f"table    {t['rows']:,} x {t['width']} {t['dtype']}, {info['tokens']:,} tokens"
+    echo(f"table    {t['rows']:,} x {t['width']} {t['dtype']}, {info['tokens']:,} tokens"
                f"{', first hidden layer folded in' if t['folded'] else ''}")
-    typer.echo("layers   " + " -> ".join(  # a folded layer lives in the table: the device skips its matrix product
+    echo("layers   " + " -> ".join(  # a folded layer lives in the table: the device skips its matrix product
         f"{'folded into the table' if not l['weight'] else 'dense'} + {l['activation'] or 'softmax'}" for l in m["layers"]))
-    typer.echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
+    echo(f"pruned   {m['oov']['policy']}; coverage {m['selection']['coverage']:.2%}")
     held = m["selection"].get("heldout")
     if isinstance(held, dict):
-        typer.echo(f"heldout  agreement {held['agreement']:.2%}, mean |dp| {held['mean_abs_prob_diff']:.4f}, certified "
+        echo(f"heldout  agreement {held['agreement']:.2%}, mean |dp| {held['mean_abs_prob_diff']:.4f}, certified "
                    f"{held['certified_share']:.2%} of {held['texts']:,} texts; chosen by {m['selection'].get('choice')}")
-    typer.echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
+    echo(f"source   {m['source']['rows']:,} rows x {m['source']['embedding_dim']}, "
                f"{format_bytes(m['source']['bytes'])}, sha256 {m['source']['sha256'][:16]}…")
-    typer.echo(f"packer   {m['packer']}")
-    typer.echo("bytes    " + ", ".join(f"{k} {format_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
+    echo(f"packer   {m['packer']}")
+    echo("bytes    " + ", ".join(f"{k} {format_bytes(v)} ({v / info['bytes']:.1%})" for k, v in info["breakdown"].items()))
     if "drift_bound" in info:
         for line in describe_bound(info["drift_bound"]):
-            typer.echo(f"bound    {line}")
+            echo(f"bound    {line}")
 
 
 @app.command("export-onnx", cls=PlainCommand,
@@ -195,4 +195,4 @@ def export_onnx_command(
             write_atomic(output, export_onnx(read_bundle(bundle)).SerializeToString())
     except DanpackError as e:
         fail(str(e))
-    typer.echo(f"wrote {output} ({format_bytes(output.stat().st_size)})")
+    echo(f"wrote {output} ({format_bytes(output.stat().st_size)})")

@@ -524,6 +524,21 @@ def read_vocab_source(path: str | os.PathLike) -> list[str] | dict[str, int]:
     return [line.removesuffix("\r") for line in lines]
 
 
+def _bounded_json(path: Path, text: str, **hooks):
+    """json.loads bounded as danpack bounds every JSON input (nesting, integer digits, NaN): a CheckpointError
+    naming the file instead of a RecursionError or ValueError traceback."""
+    from danpack.runtime.stream_records import MAX_JSON_DEPTH, _bounded_int, _reject_constant, nests_deeper
+
+    if nests_deeper(text):
+        raise CheckpointError(f"{path}: nests arrays or objects deeper than {MAX_JSON_DEPTH} levels")
+    try:
+        return json.loads(text, parse_int=_bounded_int, parse_constant=_reject_constant, **hooks)
+    except json.JSONDecodeError as e:
+        raise CheckpointError(f"{path}: is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
+    except (ValueError, RecursionError) as e:
+        raise CheckpointError(f"{path}: is not valid JSON ({e or 'nested too deeply'})") from e
+
+
 def _vocab_from_json(path: Path, text: str) -> list[str] | dict[str, int]:
     def no_duplicates(pairs):
         seen = set()
@@ -533,10 +548,7 @@ def _vocab_from_json(path: Path, text: str) -> list[str] | dict[str, int]:
             seen.add(k)
         return dict(pairs)
 
-    try:
-        obj = json.loads(text, object_pairs_hook=no_duplicates)
-    except json.JSONDecodeError as e:
-        raise CheckpointError(f"{path}: is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
+    obj = _bounded_json(path, text, object_pairs_hook=no_duplicates)
     if isinstance(obj, list):
         bad = [i for i, t in enumerate(obj) if not isinstance(t, str)]
         if bad:
@@ -559,10 +571,7 @@ def read_labels(spec: str) -> tuple[str, ...]:
         except (OSError, UnicodeDecodeError) as e:
             raise CheckpointError(f"{path}: labels cannot be read as UTF-8 text ({e})") from e
         if path.suffix.lower() == ".json":
-            try:
-                items = json.loads(text)
-            except json.JSONDecodeError as e:
-                raise CheckpointError(f"{path}: is not valid JSON ({e.msg})") from e
+            items = _bounded_json(path, text)
             if not isinstance(items, list) or not all(isinstance(x, str) for x in items):
                 raise CheckpointError(f"{path}: expected a JSON list of label strings")
         else:

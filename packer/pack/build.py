@@ -14,8 +14,10 @@ from pathlib import Path
 import numpy as np
 
 from danpack.runtime.bundle import decode_bundle
+from danpack.runtime.encode import Encoder
 from danpack.runtime.errors import DanpackError
 from danpack.runtime.forward import forward_logits, softmax
+from danpack.runtime.graph import GraphSpec, write_graph
 from danpack.runtime.tokenize import Tokenizer
 
 from danpack import __version__
@@ -23,7 +25,6 @@ from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
 from danpack.pack.envelope import unknown_envelope
 from danpack.files import file_sha256, write_atomic
 from danpack.pack.fold import fold_first_layer, should_fold
-from danpack.pack.graph import GraphSpec, build_graph, check_graph
 from danpack.model import FloatModel, load_model, model_bytes, model_digest
 from danpack.progress import Steps
 from danpack.pack.quantize import quantize_rows
@@ -39,6 +40,7 @@ PROBE_TEXTS = 8  # id sequences stored in the manifest, re-run by the runtime on
 DEFAULT_LOSS = 0.001  # measured default: the smallest bundle within 0.1 pt of every row's held-out agreement
 FALLBACK_COVERAGE = 0.995  # the cut when nothing can be measured (no held-out text)
 MIN_HELDOUT_TEXTS = 20  # fewer held-out texts (a corpus under about 130) measure nothing: the corpus is not split
+PROBE_SAMPLE = 32  # vocabulary tokens spread over the probe texts (5 texts of about 16 tokens)
 
 
 class PackError(DanpackError):
@@ -148,13 +150,30 @@ def read_corpora(paths: tuple[str, ...], text_field: str):
     return (r[text_field] for r in itertools.chain.from_iterable(iter_records(p, text_field) for p in paths))
 
 
-def _probe(table, scales, layers, rows: int, seed_ids: list[list[int]]) -> dict:
-    """A few id sequences and their expected outputs, re-run by the runtime on load."""
+def _probe(table, scales, layers, seed_ids: list[list[int]], texts: list[str], encoder: Encoder) -> dict:
+    """A few id sequences and texts with their expected outputs, re-run by the runtime on load."""
     from danpack.runtime.forward import encode_batch
 
     ids, counts = encode_batch(seed_ids)
     probs = softmax(forward_logits(table, layers, ids, counts, scales))  # (P, C)
-    return {"ids": [list(map(int, s)) for s in seed_ids], "probs": probs.astype(np.float32).tolist()}
+    text_ids, text_counts = encoder.encode(texts)  # (S, T), (S,)
+    text_probs = softmax(forward_logits(table, layers, text_ids, text_counts, scales))  # (S, C)
+    return {"ids": [list(map(int, s)) for s in seed_ids], "probs": probs.astype(np.float32).tolist(),
+            "texts": texts, "text_probs": text_probs.astype(np.float32).tolist()}
+
+
+def probe_texts(tokenizer: Tokenizer, vocab: list[str], sample: int = PROBE_SAMPLE) -> list[str]:
+    """Texts that run the bundle's whole path (tokenizer, vocabulary, graph) at load, so a permuted or edited
+    vocabulary or tokenizer is refused: up to `sample` reachable tokens (the most frequent half, then spread over
+    the rest), and text b holds the tokens whose 1-based sample index has bit b set. Any two sampled tokens differ
+    in some bit, so swapping them changes at least one text's ids."""
+    reachable = [row for row, token in enumerate(vocab) if tokenizer.is_reachable(token)]
+    head = reachable[: sample // 2]
+    rest = reachable[len(head):]
+    step = max(1, -(-len(rest) // max(sample - len(head), 1)))
+    rows = head + rest[::step][: sample - len(head)]
+    return [" ".join(vocab[row] for j, row in enumerate(rows) if (j + 1) >> bit & 1)
+            for bit in range(len(rows).bit_length())]
 
 
 def source_date_epoch() -> int | None:
@@ -206,10 +225,10 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
                            for layer in layers),
         classes=len(model.labels),
     )
-    graph = build_graph(spec)
-    check_graph(graph)
-    graph_bytes = graph.SerializeToString()
+    graph_bytes = write_graph(spec)  # onnx.checker runs on it in tests/test_graph.py, off the packing path
     probe_ids = [list(range(i, min(rows, i + 1 + 3 * i))) for i in range(min(PROBE_TEXTS, rows))]
+    tokenizer = Tokenizer(model.tokenizer)
+    texts = probe_texts(tokenizer, vocab)
     manifest = {
         "labels": list(model.labels),
         "tokenizer": model.tokenizer.to_dict(),
@@ -225,7 +244,8 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
         },
         "pack": options,
         "packer": f"danpack {__version__}",
-        "probe": _probe(tensors["table"], tensors.get("scales"), layers, rows, probe_ids),
+        "probe": _probe(tensors["table"], tensors.get("scales"), layers, probe_ids, texts,
+                        Encoder(tokenizer, vocab, oov_row)),
         "unknown": unknown_envelope(model, kept, folded),  # what a token the bundle does not know may have done
     }
     epoch = source_date_epoch()

@@ -31,7 +31,7 @@ from danpack.model import FloatModel, save_model  # noqa: E402
 from danpack.pack.build import PackOptions, pack_model  # noqa: E402
 from danpack.runtime.forward import Layer  # noqa: E402
 
-MAX_FILE = 4096  # each corpus file stays below this many bytes (commit-sized)
+MAX_FILE = 6144  # each corpus file stays below this many bytes (commit-sized)
 SOURCE = "{source}"  # stands for the file name or path in the recorded messages
 BACKENDS = ("onnxruntime", "numpy")
 TOKENS = (
@@ -204,6 +204,71 @@ def _add_loop(model: onnx.ModelProto) -> None:
     model.graph.initializer.extend([onnx.numpy_helper.from_array(np.array(2**62, np.int64), "trips"),
                                     onnx.numpy_helper.from_array(np.array(True), "go")])
     model.graph.node.append(onnx.helper.make_node("Loop", ["trips", "go"], [], body=body))
+
+
+def _insert_before_logits(model: onnx.ModelProto, nodes: list, inits: list, result: str) -> None:
+    """Insert `nodes` (reading the last layer's output `x`) before the logits Identity, which then reads `result`."""
+    identity = next(i for i, n in enumerate(model.graph.node) if n.name == "logits")
+    x = model.graph.node[identity].input[0]
+    for node in nodes:
+        node.input[:] = [x if i == "x" else i for i in node.input]
+    model.graph.node[identity].input[0] = result
+    for offset, node in enumerate(nodes):
+        model.graph.node.insert(identity + offset, node)
+    model.graph.initializer.extend(inits)
+
+
+def _back_door(model: onnx.ModelProto) -> None:
+    """+40 on the first logit for every text holding the token of row 5: allowed operators and one inline tensor."""
+    rows = next(t for t in model.graph.initializer if t.name == "table").dims[0]
+    spy = np.zeros((rows, len(LABELS)), np.float32)
+    spy[5, 0] = 40.0 * 24  # the mean divides by the token count; a long text still gets a large push
+    make = onnx.helper.make_node
+    _insert_before_logits(model, [
+        make("Gather", ["spy", "ids"], ["spy_rows"], name="spy_rows"),  # (B, T, C)
+        make("MatMul", ["token_weight3", "spy_rows"], ["spy3"], name="spy3"),  # (B, 1, C)
+        make("Squeeze", ["spy3", "axis_1"], ["spy_z"], name="spy_z"),  # (B, C)
+        make("Add", ["x", "spy_z"], ["spy_out"], name="spy_out"),
+    ], [onnx.numpy_helper.from_array(spy, "spy")], "spy_out")
+
+
+def _swap_small_batches(model: onnx.ModelProto) -> None:
+    """Logits reversed whenever fewer than 8 texts are in a batch (single answers wrong, batches right)."""
+    make = onnx.helper.make_node
+    _insert_before_logits(model, [
+        make("Shape", ["ids"], ["batch_n"], name="batch_n", start=0, end=1),  # (1,)
+        make("Less", ["batch_n", "eight"], ["small_b"], name="small_b"),
+        make("Cast", ["small_b"], ["small"], name="small", to=onnx.TensorProto.FLOAT),  # (1,)
+        make("Gather", ["x", "reverse"], ["swapped"], name="swapped", axis=1),  # (B, C)
+        make("Mul", ["x", "minus_one"], ["neg_x"], name="neg_x"),
+        make("Add", ["swapped", "neg_x"], ["delta"], name="delta"),
+        make("Mul", ["delta", "small"], ["delta_small"], name="delta_small"),
+        make("Add", ["x", "delta_small"], ["mixed"], name="mixed"),
+    ], [onnx.numpy_helper.from_array(np.array([8], np.int64), "eight"),
+        onnx.numpy_helper.from_array(np.arange(len(LABELS))[::-1].copy(), "reverse"),
+        onnx.numpy_helper.from_array(np.array(-1.0, np.float32), "minus_one")], "mixed")
+
+
+def _range_grows(model: onnx.ModelProto) -> None:
+    """Range's limit multiplied by an inline 10**6: memory grows with the text, past what the probe tries."""
+    make = onnx.helper.make_node
+    at = next(i for i, n in enumerate(model.graph.node) if n.name == "positions")
+    model.graph.node.insert(at, make("Mul", ["width_s", "million"], ["width_big"], name="width_big"))
+    model.graph.node[at + 1].input[1] = "width_big"
+    model.graph.initializer.append(onnx.numpy_helper.from_array(np.array(10**6, np.int64), "million"))
+
+
+def _set_constant(model: onnx.ModelProto, name: str, value: np.ndarray) -> None:
+    for i, init in enumerate(model.graph.initializer):
+        if init.name == name:
+            model.graph.initializer[i].CopyFrom(onnx.numpy_helper.from_array(value, name))
+
+
+def _swap_vocab(body: dict) -> None:
+    """Two words of the vocabulary swapped (rows 0 and 1); checksum, ids probe and graph all still valid."""
+    tokens = _vocab_bytes(body).decode("utf-8").split("\n")
+    tokens[0], tokens[1] = tokens[1], tokens[0]
+    body["vocab"] = encode_vocab(tokens)
 
 
 def _declare_spare(body: dict) -> None:
@@ -395,6 +460,47 @@ CASES: list[tuple[str, str, object]] = [
     ("graph_foreign_domain.bundle", "a node moved to another operator domain",
      lambda b: with_graph(b, lambda m: setattr(m.graph.node[0], "domain", "com.example"))),
     ("graph_declared_unused.bundle", "a tensor declared by the graph but read by no node", lambda b: with_body(b, _declare_spare)),
+    # graphs of allowed operators that compute something other than the tensors say (valid checksum)
+    ("graph_back_door.bundle", "extra Gather/MatMul/Squeeze/Add nodes and an inline tensor: +40 on one logit "
+     "for texts holding one word", lambda b: with_graph(b, _back_door)),
+    ("graph_swaps_small_batches.bundle", "extra nodes reverse the logits when fewer than 8 texts are in a batch",
+     lambda b: with_graph(b, _swap_small_batches)),
+    ("graph_range_grows.bundle", "Range's limit multiplied by an inline 10^6 (allocates on demand)",
+     lambda b: with_graph(b, _range_grows)),
+    ("graph_inline_constant.bundle", "an extra inline initializer of 256 floats nobody reads",
+     lambda b: with_graph(b, lambda m: m.graph.initializer.append(
+         onnx.numpy_helper.from_array(np.ones(256, np.float32), "ballast")))),
+    ("graph_inline_nan.bundle", "the writer's constant one_f set to NaN",
+     lambda b: with_graph(b, lambda m: _set_constant(m, "one_f", np.array(np.nan, np.float32)))),
+    ("graph_softmax_axis.bundle", "Softmax over axis 0 (the batch) instead of the labels",
+     lambda b: with_graph(b, lambda m: setattr(m.graph.node[-1].attribute[0], "i", 0))),
+    ("graph_producer_renamed.bundle", "the model's producer name changed",
+     lambda b: with_graph(b, lambda m: setattr(m, "producer_name", "other"))),
+    # vocabulary and strings
+    ("vocab_two_words_swapped.bundle", "two vocabulary words swapped (the probe texts catch it)",
+     lambda b: with_body(b, _swap_vocab)),
+    ("vocab_token_too_long.bundle", "a 300-character token",
+     lambda b: with_body(b, edit_vocab(lambda v: v.replace("charger", "c" * 300, 1)))),
+    ("labels_duplicate.bundle", "a label listed twice",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], LABELS[1], LABELS[0]]))),
+    ("labels_empty_string.bundle", "an empty label",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], "", LABELS[2]]))),
+    ("labels_escape_sequence.bundle", "a label holding a clear-screen escape sequence",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], "\x1b[2J\x1b[H", LABELS[2]]))),
+    ("labels_csi_c1.bundle", "a label holding U+009B (the one-character CSI)",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], "a\u009b2Jb", LABELS[2]]))),
+    ("labels_bidi_override.bundle", "a label holding a right-to-left override",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], "\u202etnemyap", LABELS[2]]))),
+    ("labels_too_long.bundle", "a label of 101 characters",
+     lambda b: with_body(b, edit_value(("manifest", "labels"), [LABELS[0], "x" * 101, LABELS[2]]))),
+    ("tokenizer_nested_quantifier.bundle", "pattern (?:a+)+b (exponential backtracking)",
+     lambda b: with_body(b, edit_value(("manifest", "tokenizer", "pattern"), "(?:a+)+b"))),
+    ("tokenizer_max_tokens_huge.bundle", "max_tokens 10^9",
+     lambda b: with_body(b, edit_value(("manifest", "tokenizer", "max_tokens"), 10**9))),
+    ("probe_texts_missing.bundle", "a probe without its texts",
+     lambda b: with_body(b, lambda d: (d["manifest"]["probe"].pop("texts"), d["manifest"]["probe"].pop("text_probs")))),
+    ("probe_text_probs_nan.bundle", "a NaN probability for a probe text",
+     lambda b: with_body(b, edit_value(("manifest", "probe", "text_probs", 0, 0), float("nan")))),
     # numbers that are each finite but together overflow, and a flag that contradicts the tensors
     ("scale_overflows_float32.bundle", "a row scale of 3e38: logits could overflow float32", lambda b: with_body(b, _huge_last_scale)),
     ("table_folded_flag_wrong.bundle", "manifest says the table is not folded, layer 0 has no weight",
@@ -465,7 +571,7 @@ def write_readme(out_dir: Path, table: dict[str, dict]) -> None:
     lines = [
         "# Adversarial corpus",
         "",
-        "Tiny crafted bad bundles (each under 4 KB), written by `make_corpus.py` from one real bundle packed from a",
+        "Tiny crafted bad bundles (each under 6 KB), written by `make_corpus.py` from one real bundle packed from a",
         "seeded 24-token model. `tests/test_hostile_bundles.py` opens every file with `runtime.decode_bundle` and",
         "`runtime.load` (onnxruntime and numpy backends) and asserts the exact `BundleError` message recorded in",
         "`expected.json`. `{source}` stands for the file name or path. Files marked *sealed* carry a valid sha256",
