@@ -139,7 +139,8 @@ def _config_field(config: dict, path: Path, key: str, check, expected: str):
         raise _fail(path, f"field {key!r} is missing", f"expected {expected}")
     value = config[key]
     if not check(value):
-        raise _fail(path, f"field {key!r} is {value!r}, expected {expected}")
+        shown = repr(value)  # repr escapes control characters; cut, whatever size the file gives
+        raise _fail(path, f"field {key!r} is {shown[:200] + '...' if len(shown) > 200 else shown}, expected {expected}")
     return value
 
 
@@ -282,11 +283,12 @@ def load_model(model_dir: str | os.PathLike) -> FloatModel:
     config_path = root / "dan.json"
     config = _read_config(config_path)
     labels = _config_field(config, config_path, "labels",
-                           lambda v: isinstance(v, list) and len(v) >= 2 and all(isinstance(x, str) and x for x in v),
+                           lambda v: isinstance(v, list) and all(isinstance(x, str) for x in v),
                            "a list of at least 2 non-empty label strings")
     problem = labels_problem(labels)
     if problem is not None:
-        raise _fail(config_path, f"field 'labels' {problem}")
+        raise _fail(config_path, f"field 'labels' {problem}",
+                    "expected a list of at least 2 non-empty, unique, printable label strings")
     dim = _config_field(config, config_path, "embedding_dim", _is_int, "a positive integer")
     hidden_sizes = _config_field(config, config_path, "hidden_sizes",
                                  lambda v: isinstance(v, list) and all(_is_int(x) for x in v),

@@ -793,3 +793,107 @@ def test_logit_reach_sees_int8_minus_128():
     tensors = {"table": np.array([[-128, 1]], np.int8), "scales": np.array([1e29], np.float32),
                "layer.0.bias": np.zeros(2, np.float32)}
     assert rb._logit_reach(tensors, [{"activation": None, "weight": False}]) == pytest.approx(128e29, rel=1e-6)
+
+
+# --- graph mutations, node by node, with a valid checksum ------------------------------------------------------
+
+GRAPH_EXAMPLES = 600
+GRAPH_MUTATIONS = ("op_type", "attribute", "add_attribute", "input", "output", "delete_node", "duplicate_node",
+                   "swap_nodes", "insert_identity", "constant_value", "constant_dims", "inline_initializer",
+                   "external_to_inline", "io_dims", "same")
+
+
+def _mutate_graph(data: bytes, rnd: np.random.Generator) -> tuple[bytes, str]:
+    """One change to the parsed ONNX graph (an operator, attribute, input, node or initializer), re-sealed."""
+    from danpack.runtime.bundle import GRAPH_OPS
+
+    kind = GRAPH_MUTATIONS[int(rnd.integers(0, len(GRAPH_MUTATIONS)))]
+    body = corpus.split(data)[1]
+    model = onnx.ModelProto()
+    model.ParseFromString(body["graph"])
+    nodes, inits = model.graph.node, model.graph.initializer
+    node = nodes[int(rnd.integers(0, len(nodes)))]
+    names = sorted({o for n in nodes for o in n.output} | {t.name for t in inits} | {"ids", "counts"})
+    inline = [t for t in inits if t.data_location != onnx.TensorProto.EXTERNAL]
+    if kind == "op_type":
+        node.op_type = sorted(GRAPH_OPS)[int(rnd.integers(0, len(GRAPH_OPS)))]
+    elif kind == "attribute" and node.attribute:
+        attr = node.attribute[int(rnd.integers(0, len(node.attribute)))]
+        attr.i = int(rnd.choice([attr.i + 1, attr.i - 1, 0, -1, 2**40]))
+    elif kind == "add_attribute":
+        node.attribute.append(onnx.helper.make_attribute(["axis", "to", "transB", "start"][int(rnd.integers(0, 4))],
+                                                         int(rnd.integers(-2, 3))))
+    elif kind == "input" and node.input:
+        node.input[int(rnd.integers(0, len(node.input)))] = names[int(rnd.integers(0, len(names)))]
+    elif kind == "output":
+        node.output[0] = names[int(rnd.integers(0, len(names)))]
+    elif kind == "delete_node":
+        nodes.remove(node)
+    elif kind == "duplicate_node":
+        nodes.insert(int(rnd.integers(0, len(nodes))), copy.deepcopy(node))
+    elif kind == "swap_nodes":
+        i, j = (int(x) for x in rnd.integers(0, len(nodes), 2))
+        a, b = copy.deepcopy(nodes[i]), copy.deepcopy(nodes[j])
+        nodes[i].CopyFrom(b)
+        nodes[j].CopyFrom(a)
+    elif kind == "insert_identity":
+        at = int(rnd.integers(0, len(nodes)))
+        out = nodes[at].output[0]
+        nodes[at].output[0] = out + "_pre"
+        nodes.insert(at + 1, onnx.helper.make_node("Identity", [out + "_pre"], [out], name=out + "_id"))
+    elif kind == "constant_value" and inline:
+        t = inline[int(rnd.integers(0, len(inline)))]
+        value = onnx.numpy_helper.to_array(t).copy()
+        value.flat[0] = rnd.choice([0, 2, -1, 10**6]) if value.dtype.kind == "i" else rnd.choice([0.0, 2.0, np.nan, 1e30])
+        t.CopyFrom(onnx.numpy_helper.from_array(value, t.name))
+    elif kind == "constant_dims":
+        t = inits[int(rnd.integers(0, len(inits)))]
+        t.dims.append(1)
+    elif kind == "inline_initializer":
+        inits.append(onnx.numpy_helper.from_array(rnd.normal(size=int(rnd.integers(1, 9))).astype(np.float32),
+                                                  f"extra{int(rnd.integers(0, 9))}"))
+    elif kind == "external_to_inline":
+        external = [t for t in inits if t.data_location == onnx.TensorProto.EXTERNAL]
+        t = external[int(rnd.integers(0, len(external)))]
+        array = np.frombuffer(body["tensors"][t.name]["data"], "<f4" if t.data_type == 1 else "i1")
+        t.CopyFrom(onnx.numpy_helper.from_array(array.reshape(tuple(t.dims)).copy(), t.name))
+    elif kind == "io_dims":
+        dim = model.graph.output[int(rnd.integers(0, 2))].type.tensor_type.shape.dim[1]
+        dim.dim_value += 1
+    body["graph"] = model.SerializeToString()  # kind "same" (or an edit that did not apply): onnx's own encoding
+    return corpus.seal(body), kind
+
+
+@pytest.fixture(scope="module")
+def thousand_texts() -> list[str]:
+    rng = np.random.default_rng(15)
+    words = list(corpus.TOKENS) + ["zzz", "Charger!", "<unk>"]
+    return [" ".join(words[int(i)] for i in rng.integers(0, len(words), int(rng.integers(0, 12)))) for _ in range(1000)]
+
+
+def test_property_graph_mutations_refused_or_bit_identical(bases, references, thousand_texts):
+    # Every mutant of the graph (valid checksum) is refused by the reader, or computes bit-identical answers on
+    # the probe (it loads) and on 1,000 texts on both backends.
+    seen, runs = Counter(), [0]
+    answers = [{b: Classifier(decode_bundle(data), b).predict_proba(thousand_texts) for b in BACKENDS} for data in bases]
+
+    @settings(max_examples=GRAPH_EXAMPLES, deadline=None, database=None,
+              suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+    @given(which=st.integers(0, len(bases) - 1), seed=st.integers(0, 2**32 - 1))
+    def check(which, seed):
+        runs[0] += 1
+        data, kind = _mutate_graph(bases[which], np.random.default_rng(seed))
+        try:
+            bundle = decode_bundle(data, "mutated")
+        except BundleError as e:
+            assert str(e).startswith("mutated: graph "), str(e)
+            seen[kind, "refused"] += 1
+            return
+        for backend in BACKENDS:
+            assert np.array_equal(Classifier(bundle, backend).predict_proba(thousand_texts), answers[which][backend])
+        seen[kind, "same"] += 1
+
+    check()
+    print(f"\ngraph mutations run: {runs[0]}; outcomes: {dict(sorted(seen.items()))}", file=sys.stderr)
+    assert runs[0] >= GRAPH_EXAMPLES
+    assert sum(n for (kind, outcome), n in seen.items() if outcome == "refused") > GRAPH_EXAMPLES // 2

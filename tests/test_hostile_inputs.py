@@ -1,0 +1,248 @@
+"""Hostile inputs on the packing side and in what danpack shows: model folders, JSON files, weights, temporary files,
+terminal and report output (the hostile-input trial of issue 15).
+
+External references: the zip format's central directory (PKWARE APPNOTE, through Python's zipfile) and the .npy
+format (numpy.lib.format) to craft weights; Linux /proc/self/status (proc(5)) for peak memory; ECMA-48 for the
+escape sequences (ESC [ 2 J clears a terminal, OSC 0 sets a window title, U+009B is the one-byte CSI).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from typer.testing import CliRunner
+
+from danpack.cli import app
+from danpack.files import remove_stale_partials, write_atomic
+from danpack.model import load_model, save_model
+from danpack.pack.build import PackOptions, pack_model
+from danpack.runtime.errors import DanpackError, ModelError
+from danpack.runtime.safe_text import escape_text, is_clean
+from tests.helpers import make_float_model
+
+RUNNER = CliRunner()
+HOSTILE = "\x1b[2J\x1b[H\x1b]0;owned\x07\u009b31m\u202e\u2028\U000e0001"  # clear, home, title, CSI, bidi, LS, tag
+
+
+@pytest.fixture
+def model_dir(tmp_path: Path) -> Path:
+    return save_model(make_float_model(vocab_size=40, dim=8, hidden=(4,)), tmp_path / "model")
+
+
+def edit_config(model_dir: Path, change) -> None:
+    path = model_dir / "dan.json"
+    config = json.loads(path.read_text(encoding="utf-8"))
+    change(config)
+    path.write_text(json.dumps(config), encoding="utf-8")
+
+
+def load_error(model_dir: Path) -> str:
+    with pytest.raises(ModelError) as info:
+        load_model(model_dir)
+    return str(info.value)
+
+
+# --- strings: one escaping helper, and labels that cannot carry escapes ------------------------------------------
+
+def test_escape_text_leaves_nothing_a_terminal_obeys():
+    shown = escape_text(HOSTILE)
+    assert is_clean(shown) and shown.isascii()
+    assert shown == ("\\u001b[2J\\u001b[H\\u001b]0;owned\\u0007\\u009b31m\\u202e\\u2028\\udb40\\udc01")
+    assert json.loads(f'"{shown}"') == HOSTILE  # the same escapes are valid inside a JSON string
+    assert escape_text("a\nb\tc", keep="\n") == "a\nb\\u0009c"
+    assert escape_text("plain café ☕ 中文") == "plain café ☕ 中文"
+
+
+@pytest.mark.parametrize("labels, fragment", [
+    (["ok", "\x1b[2Jbad"], "holds U+001B (Cc)"),
+    (["ok", "a\u009bb"], "holds U+009B (Cc)"),
+    (["ok", "\u202eevil"], "holds U+202E (Cf)"),
+    (["ok", "a\u2028b"], "holds U+2028 (Zl)"),
+    (["ok", ""], "label 2 is empty"),
+    (["ok", "ok"], "repeats the label 'ok'"),
+    (["ok", "x" * 101], "101 characters long, at most 100"),
+    ([f"l{i}" for i in range(1025)], "holds 1025 labels, expected 2 to 1024"),
+])
+def test_labels_are_refused_at_pack(model_dir, labels, fragment):
+    edit_config(model_dir, lambda c: c.update(labels=labels))
+    message = load_error(model_dir)
+    assert "dan.json: field 'labels'" in message and fragment in message
+    assert "\x1b" not in message and "\u202e" not in message  # the message itself shows escapes
+
+
+def test_overlong_token_is_refused_at_pack(model_dir):
+    tokens = (model_dir / "tokens.txt").read_text(encoding="utf-8").split("\n")
+    tokens[3] = "w" * 257
+    (model_dir / "tokens.txt").write_text("\n".join(tokens), encoding="utf-8")
+    assert "token 4 ('wwwwwwwwwwwwwwwwwwww'...) is 257 characters long, at most 256 allowed" in load_error(model_dir)
+
+
+def test_inspect_escapes_manifest_strings(model_dir, tmp_path):
+    # a bundle whose descriptive field holds escape sequences (valid checksum): inspect shows, never obeys
+    import msgpack
+
+    from danpack.pack.bundle import encode_bundle
+
+    data = pack_model(model_dir, None).data
+    body = msgpack.unpackb(msgpack.unpackb(data)["payload"])
+    body["manifest"]["packer"] = "danpack " + HOSTILE
+    path = tmp_path / "hostile.bundle"
+    path.write_bytes(encode_bundle(msgpack.packb(body, use_bin_type=True)))
+    for args in (["inspect", str(path)], ["inspect", str(path), "--json"]):
+        res = RUNNER.invoke(app, args)
+        assert res.exit_code == 0, res.output
+        assert is_clean(res.output.replace("\n", "")), repr(res.output)
+        assert "\\u001b[2J" in res.output
+
+
+# --- tokenizer patterns and max_tokens from a model folder --------------------------------------------------------
+
+@pytest.mark.parametrize("tokenizer, fragment", [
+    ({"pattern": "(?:[a-z]+)+!"}, "outside the linear-time grammar"),
+    ({"pattern": "(?:a|aa)*b"}, "outside the linear-time grammar"),
+    ({"pattern": "[a-z]+x"}, "an atom after the first of its branch without '*' or '?'"),
+    ({"max_tokens": 10**9}, "max_tokens must be an integer from 1 to 1024"),
+])
+def test_tokenizer_that_can_explode_is_refused_at_pack(model_dir, tokenizer, fragment):
+    edit_config(model_dir, lambda c: c["tokenizer"].update(tokenizer))
+    message = load_error(model_dir)
+    assert "dan.json: field 'tokenizer'" in message and fragment in message
+
+
+def test_patterns_in_the_grammar_split_a_long_word_in_linear_time():
+    # the trial's pattern with nested quantifiers took > 60 s on a 1 KB word; a grammar pattern splits 1 MB
+    from danpack.runtime.tokenize import PRESETS, Tokenizer, TokenizerSpec
+
+    word = "a" * (1 << 20)
+    for pattern in [r"[a-z]+[0-9]*'?", r"\w+|[^\w\s]", *PRESETS]:
+        tokens = Tokenizer(TokenizerSpec(pattern=pattern)).tokenize(word + "!")
+        assert 1 <= len(tokens) <= 2
+
+
+# --- JSON files: depth, huge integers, constants ------------------------------------------------------------------
+
+@pytest.mark.parametrize("text, fragment", [
+    ("[" * 100_000 + "]" * 100_000, "nests arrays or objects deeper than 100 levels"),
+    ('{"format": "danpack-float", "version": ' + "9" * 5000 + "}", "an integer of 5000 digits is too long"),
+    ('{"format": "danpack-float", "version": NaN}', "NaN is not a JSON number"),
+])
+def test_malformed_config_is_a_model_error(model_dir, text, fragment):
+    (model_dir / "dan.json").write_text(text, encoding="utf-8")
+    message = load_error(model_dir)
+    assert "dan.json" in message and fragment in message
+
+
+@pytest.mark.parametrize("suffix", ["vocab.json", "labels.json"])
+@pytest.mark.parametrize("text", ["[" * 100_000 + "]" * 100_000, "[" + "1" * 5000 + "]"])
+def test_malformed_json_vocab_and_labels_exit_2(tmp_path, suffix, text):
+    from danpack.convert.from_torch import CheckpointError, read_labels
+
+    path = tmp_path / suffix
+    path.write_text(text, encoding="utf-8")
+    if suffix == "labels.json":
+        with pytest.raises(CheckpointError, match="labels.json: "):
+            read_labels(str(path))
+    else:
+        from danpack.convert.from_torch import _vocab_from_json
+
+        with pytest.raises(CheckpointError, match="vocab.json: "):
+            _vocab_from_json(path, text)
+
+
+# --- weights sized before they are inflated ------------------------------------------------------------------------
+
+def _peak_rss_kib() -> int:
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1])
+    return 0
+
+
+def test_unexpected_npz_member_is_never_inflated(model_dir):
+    # the trial's attack: a 6.5 MB npz whose extra deflated member inflated to 6.2 GB before the refusal;
+    # here 64 MiB of zeros deflate to ~64 KB and must never be inflated
+    with zipfile.ZipFile(model_dir / "weights.npz", "a", compression=zipfile.ZIP_DEFLATED) as archive:
+        with archive.open("ballast.npy", "w", force_zip64=True) as f:
+            np.lib.format.write_array_header_1_0(f, {"descr": "<f4", "fortran_order": False, "shape": (1 << 24,)})
+            for _ in range(64):
+                f.write(bytes(1 << 20))
+    before = _peak_rss_kib()
+    message = load_error(model_dir)
+    assert "unexpected tensors ['ballast']" in message
+    assert _peak_rss_kib() - before < 32 * 1024  # far below the 64 MiB the member would inflate to
+
+
+def test_npz_member_larger_than_its_declared_shape_is_refused_unread(model_dir):
+    arrays = dict(np.load(model_dir / "weights.npz"))
+    arrays["embedding"] = np.zeros((4000, 8), np.float32)  # tokens.txt and dan.json declare 40 x 8
+    np.savez_compressed(model_dir / "weights.npz", **arrays)
+    assert "tensor 'embedding' inflates to 128,128 bytes, far more than its declared shape needs (320 elements)" \
+        in load_error(model_dir)
+
+
+@settings(max_examples=150, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(which=st.sampled_from(["dan.json", "tokens.txt", "weights.npz"]), data=st.data())
+def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which, data):
+    # any bytes cut, flipped or spliced into one file of a model folder: a ModelError, never another exception
+    root = tmp_path_factory.mktemp("fuzz")
+    folder = save_model(make_float_model(vocab_size=12, dim=4, hidden=(3,)), root / "model")
+    path = folder / which
+    raw = bytearray(path.read_bytes())
+    kind = data.draw(st.sampled_from(["cut", "flip", "splice", "nest", "digits"]))
+    at = data.draw(st.integers(0, max(len(raw) - 1, 0)))
+    if kind == "cut":
+        raw = raw[:at]
+    elif kind == "flip":
+        raw[at] ^= data.draw(st.integers(1, 255))
+    elif kind == "splice":
+        raw[at:at] = data.draw(st.binary(min_size=1, max_size=64))
+    elif kind == "nest":
+        raw[at:at] = b"[" * 5000
+    else:
+        raw[at:at] = b"9" * 5000
+    path.write_bytes(bytes(raw))
+    try:
+        load_model(folder)
+    except DanpackError:
+        pass
+
+
+# --- no litter ----------------------------------------------------------------------------------------------------
+
+def test_stale_partial_files_of_a_killed_pack_are_removed(tmp_path):
+    # the trial: kill -9 of pack while its temporary file existed left .NAME.XXXX.partial behind (19 of 20 kills)
+    out = tmp_path / "model.dpk"
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # a process id that no longer runs
+    stale = tmp_path / f".model.dpk.{dead.pid}.abc123.partial"
+    stale.write_bytes(b"half a bundle")
+    alive = tmp_path / f".model.dpk.{os.getpid() + 0}.zzz.partial"  # this process: a writer still at work
+    alive.write_bytes(b"in progress")
+    other = tmp_path / f".other.dpk.{dead.pid}.abc.partial"  # another output's file
+    other.write_bytes(b"x")
+    write_atomic(out, b"bundle")
+    assert not stale.exists() and alive.exists() and other.exists() and out.read_bytes() == b"bundle"
+    assert remove_stale_partials(out) == []
+
+
+def test_a_killed_pack_leaves_nothing_after_the_next_pack(model_dir, tmp_path):
+    out = tmp_path / "out" / "model.dpk"
+    code = ("import os, signal, sys; import danpack.files as f; real = f.os.replace\n"
+            "def die(a, b): os.kill(os.getpid(), signal.SIGKILL)\n"
+            "f.os.replace = die\n"
+            "from danpack.pack.build import pack_model; pack_model(sys.argv[1], sys.argv[2])\n")
+    child = subprocess.run([sys.executable, "-c", code, str(model_dir), str(out)], timeout=120)
+    assert child.returncode == -signal.SIGKILL
+    assert len(list(out.parent.glob(".model.dpk.*.partial"))) == 1  # killed between write and rename
+    pack_model(model_dir, out)
+    assert sorted(p.name for p in out.parent.iterdir()) == ["model.dpk"]
