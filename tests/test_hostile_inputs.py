@@ -246,3 +246,34 @@ def test_a_killed_pack_leaves_nothing_after_the_next_pack(model_dir, tmp_path):
     assert len(list(out.parent.glob(".model.dpk.*.partial"))) == 1  # killed between write and rename
     pack_model(model_dir, out)
     assert sorted(p.name for p in out.parent.iterdir()) == ["model.dpk"]
+
+
+# --- PyTorch checkpoints: views sized from shape and strides, bounded layout search ------------------------------
+
+def test_stride_zero_view_is_refused_before_it_is_materialised(tmp_path):
+    # the trial: a 2.6 KB .pt with a stride-0 30000x30000 tensor took 3.7 GB before refusal (100000^2: MemoryError)
+    torch = pytest.importorskip("torch")
+    from danpack.convert.from_torch import CheckpointError, read_checkpoint
+
+    path = tmp_path / "a.pt"
+    torch.save({"emb.weight": torch.zeros(1).expand(100_000, 100_000), "out.weight": torch.randn(3, 4)}, path)
+    assert path.stat().st_size < 4096
+    before = _peak_rss_kib()
+    with pytest.raises(CheckpointError, match=r"tensor 'emb.weight' of shape \(100000, 100000\) \(strides \(0, 0\)\) "
+                                              r"claims 40,000,000,000 bytes over a storage of 4"):
+        read_checkpoint(path)
+    assert _peak_rss_kib() - before < 64 * 1024
+
+
+def test_layout_search_is_bounded_and_points_at_layer_keys(tmp_path):
+    # the trial: 12 interchangeable 2x2 layers in a 7.8 KB file kept the search running past 240 s
+    torch = pytest.importorskip("torch")
+    from danpack.convert.from_torch import CheckpointError, find_layout, read_checkpoint
+
+    state = {"emb.weight": torch.randn(10, 2)}
+    for i in range(12):
+        state[f"l{i}.weight"], state[f"l{i}.bias"] = torch.randn(2, 2), torch.randn(2)
+    path = tmp_path / "a.pt"
+    torch.save(state, path)
+    with pytest.raises(CheckpointError, match="chained in too many orders to search .* name the order with --layer-keys"):
+        find_layout(read_checkpoint(path), n_labels=3)

@@ -33,6 +33,7 @@ PAD_TOKENS = frozenset({"<pad>", "<PAD>", "[PAD]", "[pad]", "<padding>", "__pad_
 # Last name component that marks the classifier layer (common practice in module names; from memory).
 OUTPUT_NAMES = frozenset({"out", "output", "head", "classifier", "logits", "fc_out"})
 MAX_ORDERINGS = 200  # stop enumerating layer orders past this many (a DAN has a handful of layers)
+MAX_LAYOUT_STATES = 200_000  # partial orders the layout search may try (about a second), then --layer-keys
 SHOWN_CANDIDATES = 6  # orderings or tables listed in an ambiguity error
 
 
@@ -261,8 +262,23 @@ def _all_tensors(d: dict, torch) -> bool:
 
 def _from_torch_dict(path: Path, kind: str, state: dict, torch, key_order_kept: bool) -> Checkpoint:
     tensors, dtypes, shapes = {}, {}, {}
+    budget = 4 * path.stat().st_size + (1 << 20)  # float32 copies of what the file holds, plus a little
     for key, t in state.items():
         t = t.detach()
+        if t.layout == torch.strided and t.numel():
+            # a view may claim far more elements than its storage holds (stride 0 repeats one value): size it
+            # from shape and strides before anything is made contiguous
+            reach = (1 + sum((n - 1) * abs(st) for n, st in zip(t.shape, t.stride()))) * t.element_size()
+            stored = t.untyped_storage().nbytes() - t.storage_offset() * t.element_size()
+            if t.numel() * t.element_size() > stored or reach > stored:
+                raise CheckpointError(
+                    f"{path}: tensor {key!r} of shape {tuple(t.shape)} (strides {tuple(t.stride())}) claims "
+                    f"{t.numel() * t.element_size():,} bytes over a storage of {stored:,}: a view that repeats or "
+                    "overlaps data, never a trained weight; save real tensors (tensor.contiguous()) in the state_dict")
+        budget -= 4 * t.numel() if t.is_floating_point() else 0
+        if budget < 0:
+            raise CheckpointError(f"{path}: its tensors would take more than 4 times the file's {path.stat().st_size:,} "
+                                  "bytes as float32 (tensors that share one storage); save each weight once")
         dtypes[key] = str(t.dtype).removeprefix("torch.")
         shapes[key] = tuple(int(s) for s in t.shape)
         if t.is_floating_point():
@@ -323,13 +339,21 @@ def _linear_slots(ck: Checkpoint, keys: list[str]) -> dict[str, LinearSlot]:
     return slots
 
 
-def _chains(slots: list[LinearSlot], width: int, n_out: int) -> list[tuple[LinearSlot, ...]]:
+def _chains(slots: list[LinearSlot], width: int, n_out: int, where: object = "checkpoint") -> list[tuple[LinearSlot, ...]]:
     """Every order of all `slots` whose shapes chain width -> ... -> n_out (up to MAX_ORDERINGS)."""
     found: list[tuple[LinearSlot, ...]] = []
+    states = [0]
 
     def walk(path: list[LinearSlot], left: list[LinearSlot], w: int) -> None:
         if len(found) >= MAX_ORDERINGS:
             return
+        states[0] += 1
+        if states[0] > MAX_LAYOUT_STATES:  # interchangeable layers make the orders factorial: stop, say how to name them
+            raise CheckpointError(
+                f"{where}: {len(slots)} Linear layers can be chained in too many orders to search (more than "
+                f"{MAX_LAYOUT_STATES:,} partial orders tried; layers of equal shapes are interchangeable): name the "
+                "order with --layer-keys (hidden layers first, output last), or --ignore-key tensors the model "
+                "does not use")
         if not left:
             if w == n_out and path:
                 found.append(tuple(path))
@@ -410,7 +434,7 @@ def find_layout(ck: Checkpoint, n_labels: int, options: ConvertOptions = Convert
                 continue
             solutions.append((table, [chain]))
             continue
-        chains = _chains(list(rest.values()), ck.shapes[table][1], n_labels)
+        chains = _chains(list(rest.values()), ck.shapes[table][1], n_labels, ck.path)
         if chains:
             solutions.append((table, chains))
 
@@ -493,7 +517,7 @@ def _no_chain_message(ck: Checkpoint, tables: list[str], slots: dict[str, Linear
     if not any(s.in_dim == width for s in layers):
         return head + f"no layer takes the table width {width} (table {table}); layers: {listed}"
     spare = [s for s in layers if s.bias_key is None]  # other tables, or Linear(bias=False)
-    if spare and _chains([s for s in layers if s.bias_key is not None], width, n_labels):
+    if spare and _chains([s for s in layers if s.bias_key is not None], width, n_labels, ck.path):
         return (head + f"tensors with no place in a DAN: {[_tensor_line(ck, s.weight_key) for s in spare]} "
                 f"(the layers with biases already chain {width} -> ... -> {n_labels}); "
                 "if the model does not use them, pass --ignore-key for each")
