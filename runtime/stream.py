@@ -270,10 +270,13 @@ output records (--format tsv):
 error records, one per bad input line:
   empty line; line longer than --max-line-bytes (skipped without being held in memory); a NUL byte
   (binary data, never a comment); bytes that are not UTF-8; and with --jsonl: invalid JSON (also
-  NaN / Infinity, numbers out of range, nesting too deep), a JSON value that is not an object, a
-  missing text field, a text field that is not a string or holds U+0000. Lines end at LF; one CR
-  before it is dropped (CRLF files); a UTF-8 byte order mark at the start of the input is dropped.
-  A line of spaces is classified (it has no tokens), and so is an empty JSONL text "".
+  NaN / Infinity, numbers out of range, nesting deeper than 100 levels), a JSON value that is not an
+  object, a missing text field, a text field that is not a string or holds U+0000; and whatever fails
+  while answering one record (a backend exception, recursion, memory, a non-finite probability):
+  "cannot be classified (cause)". Lines end at LF; one CR before it is dropped (CRLF files); a UTF-8
+  byte order mark at the start of the input is dropped. A line of spaces is classified (it has no
+  tokens), and so is an empty JSONL text "". Control, format and bidi characters in any output value
+  are written as \\uXXXX escapes.
 
 exit status:
   0 every record was classified (or --lenient); 1 some record got an error record;
