@@ -237,6 +237,7 @@ def test_stale_partial_files_of_a_killed_pack_are_removed(tmp_path):
 
 def test_a_killed_pack_leaves_nothing_after_the_next_pack(model_dir, tmp_path):
     out = tmp_path / "out" / "model.dpk"
+    out.parent.mkdir()
     code = ("import os, signal, sys; import danpack.files as f; real = f.os.replace\n"
             "def die(a, b): os.kill(os.getpid(), signal.SIGKILL)\n"
             "f.os.replace = die\n"

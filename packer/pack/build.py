@@ -167,11 +167,13 @@ def probe_texts(tokenizer: Tokenizer, vocab: list[str], sample: int = PROBE_SAMP
     vocabulary or tokenizer is refused: up to `sample` reachable tokens (the most frequent half, then spread over
     the rest), and text b holds the tokens whose 1-based sample index has bit b set. Any two sampled tokens differ
     in some bit, so swapping them changes at least one text's ids."""
-    reachable = [row for row, token in enumerate(vocab) if tokenizer.is_reachable(token)]
-    head = reachable[: sample // 2]
-    rest = reachable[len(head):]
-    step = max(1, -(-len(rest) // max(sample - len(head), 1)))
-    rows = head + rest[::step][: sample - len(head)]
+    def reachable(candidates, k: int) -> list[int]:  # checked lazily: a 400k vocabulary costs no more than 32 rows
+        return list(itertools.islice((r for r in candidates if tokenizer.is_reachable(vocab[r])), k))
+
+    head = reachable(range(len(vocab)), sample // 2)
+    start = head[-1] + 1 if head else len(vocab)
+    step = max(1, (len(vocab) - start) // max(sample - len(head), 1))
+    rows = head + reachable(range(start, len(vocab), step), sample - len(head))
     return [" ".join(vocab[row] for j, row in enumerate(rows) if (j + 1) >> bit & 1)
             for bit in range(len(rows).bit_length())]
 
