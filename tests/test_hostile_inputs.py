@@ -190,14 +190,8 @@ def test_npz_member_larger_than_its_declared_shape_is_refused_unread(model_dir):
         in load_error(model_dir)
 
 
-@settings(max_examples=150, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
-@given(which=st.sampled_from(["dan.json", "tokens.txt", "weights.npz"]), data=st.data())
-def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which, data):
-    # any bytes cut, flipped or spliced into one file of a model folder: a ModelError, never another exception
-    root = tmp_path_factory.mktemp("fuzz")
-    folder = save_model(make_float_model(vocab_size=12, dim=4, hidden=(3,)), root / "model")
-    path = folder / which
-    raw = bytearray(path.read_bytes())
+def _damage(raw: bytearray, data) -> bytearray:
+    """One hostile edit drawn by hypothesis: a cut, a flipped byte, spliced bytes, deep nesting or a huge number."""
     kind = data.draw(st.sampled_from(["cut", "flip", "splice", "nest", "digits"]))
     at = data.draw(st.integers(0, max(len(raw) - 1, 0)))
     if kind == "cut":
@@ -210,11 +204,50 @@ def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which,
         raw[at:at] = b"[" * 5000
     else:
         raw[at:at] = b"9" * 5000
-    path.write_bytes(bytes(raw))
+    return raw
+
+
+FUZZ_PEAK_KIB = 256 * 1024  # peak RSS growth allowed over a whole fuzz run of files of a few KB
+
+
+@settings(max_examples=80, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(which=st.sampled_from(["dan.json", "tokens.txt", "weights.npz", "weights.safetensors"]), data=st.data())
+def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which, data):
+    # any bytes cut, flipped or spliced into one file of a model folder: a ModelError, never another exception,
+    # and never more memory than a small multiple of the files (the peak is checked over the whole run)
+    root = tmp_path_factory.mktemp("fuzz")
+    fmt = "safetensors" if which.endswith("safetensors") else "npz"
+    folder = save_model(make_float_model(vocab_size=12, dim=4, hidden=(3,)), root / "model", weights_format=fmt)
+    path = folder / which
+    path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
+    before = _peak_rss_kib()
     try:
         load_model(folder)
     except DanpackError:
         pass
+    assert _peak_rss_kib() - before < FUZZ_PEAK_KIB
+
+
+@settings(max_examples=30, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(which=st.sampled_from(["pt", "vocab.json", "labels.json"]), data=st.data())
+def test_property_damaged_checkpoint_vocab_and_labels_are_checkpoint_errors(tmp_path_factory, which, data):
+    torch = pytest.importorskip("torch")
+    from danpack.convert.from_torch import CheckpointError, read_checkpoint, read_labels, read_vocab_source
+
+    root = tmp_path_factory.mktemp("fuzz")
+    path = root / ("a.pt" if which == "pt" else which)
+    if which == "pt":
+        torch.save({"emb.weight": torch.randn(12, 4), "out.weight": torch.randn(3, 4), "out.bias": torch.randn(3)}, path)
+    else:
+        path.write_text(json.dumps([f"w{i}" for i in range(12)]), encoding="utf-8")
+    path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
+    before = _peak_rss_kib()
+    try:
+        {"pt": read_checkpoint, "vocab.json": read_vocab_source, "labels.json": read_labels}[which](
+            path if which != "labels.json" else str(path))
+    except (CheckpointError, DanpackError):
+        pass
+    assert _peak_rss_kib() - before < FUZZ_PEAK_KIB
 
 
 # --- no litter ----------------------------------------------------------------------------------------------------

@@ -107,6 +107,18 @@ def test_markdown_escapes_pipes_in_texts(heavy_report):
     assert "slow \\| broken 'cable'" in md and "a \\| b" in md
 
 
+def test_markdown_and_table_escape_control_and_bidi_characters(heavy_report):
+    # hostile-input trial: eval texts, ids and paths reached the check table and the --markdown file raw
+    from danpack.runtime.safe_text import is_clean
+
+    report = json.loads(json.dumps(heavy_report))
+    report["disagreements"][0]["text"] = "slow \x1b[2J\x1b]0;title\x07 \u009b31m \u202eevil"
+    report["warnings"] = ["path \u2028 with a line separator"]
+    for text in (render_markdown(report), render_table(report)):
+        assert all(is_clean(line) for line in text.splitlines()), text
+        assert "\\u202e" in text
+
+
 def test_table_shows_figures_and_verdict(heavy_report):
     text = render_table(heavy_report)
     assert "agreement" in text and "McNemar exact p" in text and "where they disagree (top 3 of" in text
