@@ -832,13 +832,13 @@ class _FailingOn:
         self.clf, self.word, self.error, self.nan_word = clf, word, error, nan_word
         self.labels = clf.labels
 
-    def predict_proba(self, texts):
+    def predict_known(self, texts):
         if any(self.word in t for t in texts):
             raise self.error
-        probs = self.clf.predict_proba(texts)
+        labels, probs, known = self.clf.predict_known(texts)
         if self.nan_word is not None:
             probs[[self.nan_word in t for t in texts]] = np.nan
-        return probs
+        return labels, probs, known
 
 
 @pytest.mark.parametrize("error, cause", [
