@@ -530,15 +530,15 @@ def test_lazy_split_of_long_texts_equals_the_full_split(text, cap, pattern):
 @given(st.one_of(tricky_text, any_text))
 def test_wordpunct_preset_is_the_common_training_split(text):
     # source: Python's re, as a PyTorch training script calls it: re.findall(r"\w+|[^\w\s]", text.lower())
-    tok = Tokenizer(TokenizerSpec(pattern="wordpunct-v1", normalization="none", case="lower", max_tokens=10**6))
-    assert tok.tokenize(text) == re.findall(r"\w+|[^\w\s]", text.lower())
+    tok = Tokenizer(TokenizerSpec(pattern="wordpunct-v1", normalization="none", case="lower", max_tokens=1024))
+    assert tok.tokenize(text) == re.findall(r"\w+|[^\w\s]", text.lower())[:1024]  # 1024: the max_tokens cap
 
 
 @FAST
 @given(st.one_of(tricky_text, any_text))
 def test_spaces_preset_is_str_split(text):
-    tok = Tokenizer(TokenizerSpec(pattern="spaces-v1", normalization="none", case="keep", max_tokens=10**6))
-    assert tok.tokenize(text) == text.split()
+    tok = Tokenizer(TokenizerSpec(pattern="spaces-v1", normalization="none", case="keep", max_tokens=1024))
+    assert tok.tokenize(text) == text.split()[:1024]  # 1024: the max_tokens cap
 
 
 @pytest.mark.parametrize("pattern, text, tokens", [
