@@ -228,6 +228,7 @@ def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which,
     assert _peak_rss_kib() - before < FUZZ_PEAK_KIB
 
 
+@pytest.mark.filterwarnings("ignore:Detected pickle protocol:UserWarning")  # torch on a damaged file's header
 @settings(max_examples=30, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(which=st.sampled_from(["pt", "vocab.json", "labels.json"]), data=st.data())
 def test_property_damaged_checkpoint_vocab_and_labels_are_checkpoint_errors(tmp_path_factory, which, data):
