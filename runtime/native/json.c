@@ -350,13 +350,22 @@ void sb_json_utf8(sbuf *b, const char *s, size_t n) {
 
 /* shortest digits of v that read back as v (float32 when single): digits (no dot) and decimal exponent of the
  * first digit */
+static int round_trips(double v, int single, int prec, char *buf, size_t cap) {
+    snprintf(buf, cap, "%.*e", prec - 1, v);
+    return single ? strtof(buf, NULL) == (float)v : strtod(buf, NULL) == v;
+}
+
 static void shortest(double v, int single, char *digits, int *exp10) {
+    /* the nearest p-digit decimal reads back as v for every p from the shortest one up (it is never farther from v
+     * than the shorter one padded with zeros), so the shortest p is found by bisection */
     char buf[40];
-    for (int prec = 1; prec <= 17; prec++) {
-        snprintf(buf, sizeof(buf), "%.*e", prec - 1, v);
-        int same = single ? strtof(buf, NULL) == (float)v : strtod(buf, NULL) == v;
-        if (same || prec == 17) break;
+    int lo = 1, hi = single ? 9 : 17;
+    while (lo < hi) {
+        int mid = (lo + hi) / 2;
+        if (round_trips(v, single, mid, buf, sizeof(buf))) hi = mid;
+        else lo = mid + 1;
     }
+    round_trips(v, single, lo, buf, sizeof(buf));
     const char *s = buf;
     if (*s == '-') s++;
     size_t k = 0;

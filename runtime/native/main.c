@@ -534,6 +534,18 @@ done:
     return rc;
 }
 
+/* Peak resident memory in kB (Linux /proc/self/status VmHWM), 0 when unknown: the --verbose summary shows it. */
+static long peak_resident_kb(void) {
+    FILE *f = fopen("/proc/self/status", "r");
+    char row[256];
+    long kb = 0;
+    if (!f) return 0;
+    while (fgets(row, sizeof(row), f))
+        if (!strncmp(row, "VmHWM:", 6)) kb = strtol(row + 6, NULL, 10);
+    fclose(f);
+    return kb;
+}
+
 /* ---- the stream ---- */
 
 static int run_stream(runner *r, int fd) {
@@ -806,8 +818,8 @@ int main(int argc, char **argv) {
     if (o->verbose) {
         clock_gettime(CLOCK_MONOTONIC, &t1);
         double secs = (double)(t1.tv_sec - t0.tv_sec) + (double)(t1.tv_nsec - t0.tv_nsec) / 1e9;
-        fprintf(stderr, "%s: %zu records, %zu errors, %.2f s, %.0f lines/s%s\n", PROG, r.records, r.errors, secs,
-                secs > 0 ? (double)r.records / secs : 0.0,
+        fprintf(stderr, "%s: %zu records, %zu errors, %.2f s, %.0f lines/s, peak resident %ld kB%s\n", PROG, r.records,
+                r.errors, secs, secs > 0 ? (double)r.records / secs : 0.0, peak_resident_kb(),
                 stop_signal ? (stop_signal == SIGTERM ? " (terminated)" : " (interrupted)") : "");
     }
 end:
