@@ -103,14 +103,19 @@ def main() -> None:
            f"{unicodedata.unidata_version}; do not edit.\n   Regenerate: python runtime/native/gen_tables.py > "
            "runtime/native/unicode_tables.h */",
            f'#define DP_UNICODE_VERSION "{UNICODE_VERSION}"', f"#define DP_BLOCK_SHIFT {BLOCK.bit_length() - 1}"]
-    out += two_stage("dp_props", props, "uint16_t")
+    out += two_stage("dp_cls", [p & 0xFF for p in props], "uint8_t")  # the character classes
+    out += two_stage("dp_flags", [p >> 8 for p in props], "uint8_t")  # unassigned, has a normal form / case change
     out += two_stage("dp_ccc", ccc, "uint8_t")
     pool: list[int] = []
 
     def put(text: str) -> tuple[int, int]:
-        seq = [ord(c) for c in text]
+        """`text` into the pool as UTF-16 code units (half the bytes of code points); (offset, units)."""
+        seq = []
+        for c in map(ord, text):
+            seq += [c] if c < 0x10000 else [0xD800 + ((c - 0x10000) >> 10), 0xDC00 + ((c - 0x10000) & 0x3FF)]
         off = len(pool)
         pool.extend(seq)
+        assert off + len(seq) < 65536 and len(seq) < 32
         return off, len(seq)
 
     rows = []
@@ -118,15 +123,19 @@ def main() -> None:
         nfd, nfkd = decomp[cp]
         a = put(nfd)
         b = a if nfkd == nfd else put(nfkd)
-        rows.append((cp, *a, *b))
+        rows.append((cp | a[1] << 21 | b[1] << 26, a[0], b[0]))  # code point, then both lengths, in one key
     out.append(f"#define DP_DECOMP_COUNT {len(rows)}")
-    out.append("static const dp_decomp_row dp_decomp[] = {" + ",".join("{%d,%d,%d,%d,%d}" % r for r in rows) + "};")
+    out.append("static const dp_decomp_row dp_decomp[] = {" + ",".join("{%du,%d,%d}" % r for r in rows) + "};")
     for name, table in (("lower", lower), ("fold", fold)):
-        rows = [(cp, *put(table[cp])) for cp in sorted(table)]
+        rows = []
+        for cp in sorted(table):
+            off, units = put(table[cp])
+            rows.append((cp | units << 21, off))
         out.append(f"#define DP_{name.upper()}_COUNT {len(rows)}")
-        out.append(f"static const dp_case_row dp_{name}[] = {{" + ",".join("{%d,%d,%d}" % r for r in rows) + "};")
+        out.append(f"static const uint32_t dp_{name}_key[] = {{" + ",".join("%du" % r[0] for r in rows) + "};")
+        out.append(f"static const uint16_t dp_{name}_off[] = {{" + ",".join("%d" % r[1] for r in rows) + "};")
     out.append(f"#define DP_POOL_COUNT {len(pool)}")
-    out.append("static const uint32_t dp_pool[] = {" + ",".join(map(str, pool)) + "};")
+    out.append("static const uint16_t dp_pool[] = {" + ",".join(map(str, pool)) + "};")
     pairs.sort()
     out.append(f"#define DP_COMPOSE_COUNT {len(pairs)}")
     out.append("static const dp_compose_row dp_compose[] = {" + ",".join("{%d,%d,%d}" % r for r in pairs) + "};")

@@ -5,18 +5,11 @@
 
 #include "internal.h"
 
+/* key: code point (bits 0-20), then the UTF-16 lengths in the pool (NFD bits 21-25, NFKD 26-30) */
 typedef struct {
-    uint32_t cp;
-    uint16_t nfd_off;
-    uint8_t nfd_len;
-    uint16_t nfkd_off;
-    uint8_t nfkd_len;
+    uint32_t key;
+    uint16_t nfd_off, nfkd_off;
 } dp_decomp_row;
-typedef struct {
-    uint32_t cp;
-    uint16_t off;
-    uint8_t len;
-} dp_case_row;
 typedef struct {
     uint32_t first, second, composite;
 } dp_compose_row;
@@ -24,6 +17,7 @@ typedef struct {
 #include "unicode_tables.h"
 
 #define BLOCK_MASK ((1u << DP_BLOCK_SHIFT) - 1u)
+#define CP_MASK 0x1FFFFFu
 #define HANGUL_S 0xAC00u
 #define HANGUL_L 0x1100u
 #define HANGUL_V 0x1161u
@@ -34,7 +28,9 @@ const char *dp_unicode_version(void) { return DP_UNICODE_VERSION; }
 
 uint16_t dp_props(uint32_t c) {
     if (c > 0x10FFFF) return 0;
-    return dp_props_blocks[((uint32_t)dp_props_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + (c & BLOCK_MASK)];
+    uint32_t at = c & BLOCK_MASK;
+    return (uint16_t)(dp_cls_blocks[((uint32_t)dp_cls_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] |
+                      dp_flags_blocks[((uint32_t)dp_flags_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] << 8);
 }
 
 static uint8_t ccc(uint32_t c) {
@@ -66,6 +62,20 @@ static int push_seq(dp_u32buf *b, const uint32_t *s, size_t n) {
     if (dp_u32_reserve(b, b->n + n)) return -1;
     memcpy(b->v + b->n, s, n * sizeof(uint32_t));
     b->n += n;
+    return 0;
+}
+
+/* n UTF-16 units of the pool from off, as code points */
+static int push_pool(dp_u32buf *b, size_t off, size_t n) {
+    if (dp_u32_reserve(b, b->n + n)) return -1;
+    for (size_t i = 0; i < n; i++) {
+        uint32_t u = dp_pool[off + i];
+        if (u >= 0xD800 && u < 0xDC00 && i + 1 < n) {
+            u = 0x10000 + ((u - 0xD800) << 10) + (dp_pool[off + i + 1] - 0xDC00u);
+            i++;
+        }
+        b->v[b->n++] = u;
+    }
     return 0;
 }
 
@@ -177,20 +187,21 @@ static const dp_decomp_row *find_decomp(uint32_t c) {
     size_t lo = 0, hi = DP_DECOMP_COUNT;
     while (lo < hi) {
         size_t mid = lo + (hi - lo) / 2;
-        if (dp_decomp[mid].cp < c) lo = mid + 1;
+        if ((dp_decomp[mid].key & CP_MASK) < c) lo = mid + 1;
         else hi = mid;
     }
-    return lo < DP_DECOMP_COUNT && dp_decomp[lo].cp == c ? &dp_decomp[lo] : NULL;
+    return lo < DP_DECOMP_COUNT && (dp_decomp[lo].key & CP_MASK) == c ? &dp_decomp[lo] : NULL;
 }
 
-static const dp_case_row *find_case(const dp_case_row *rows, size_t count, uint32_t c) {
+/* case maps: keys hold the code point (bits 0-20) and the UTF-16 length of its mapping (bits 21-25); index or -1 */
+static long find_case(const uint32_t *keys, size_t count, uint32_t c) {
     size_t lo = 0, hi = count;
     while (lo < hi) {
         size_t mid = lo + (hi - lo) / 2;
-        if (rows[mid].cp < c) lo = mid + 1;
+        if ((keys[mid] & CP_MASK) < c) lo = mid + 1;
         else hi = mid;
     }
-    return lo < count && rows[lo].cp == c ? &rows[lo] : NULL;
+    return lo < count && (keys[lo] & CP_MASK) == c ? (long)lo : -1;
 }
 
 static uint32_t compose_pair(uint32_t a, uint32_t b) {
@@ -226,8 +237,8 @@ static int decompose(const uint32_t *in, size_t n, int compat, dp_u32buf *out) {
             if (!r) {
                 if (dp_u32_push(out, c)) return -1;
             } else if (compat) {
-                if (push_seq(out, dp_pool + r->nfkd_off, r->nfkd_len)) return -1;
-            } else if (push_seq(out, dp_pool + r->nfd_off, r->nfd_len)) {
+                if (push_pool(out, r->nfkd_off, (r->key >> 26) & 31u)) return -1;
+            } else if (push_pool(out, r->nfd_off, (r->key >> 21) & 31u)) {
                 return -1;
             }
         }
@@ -309,11 +320,12 @@ static int change_case(const uint32_t *in, size_t n, int kase, dp_u32buf *out) {
             if (dp_u32_push(out, final_sigma(in, n, i) ? 0x3C2 : 0x3C3)) return -1;
             continue;
         }
-        const dp_case_row *r = kase == DP_CASE_LOWER ? find_case(dp_lower, DP_LOWER_COUNT, c)
-                                                     : find_case(dp_fold, DP_FOLD_COUNT, c);
-        if (!r) {
+        int lower = kase == DP_CASE_LOWER;
+        long r = lower ? find_case(dp_lower_key, DP_LOWER_COUNT, c) : find_case(dp_fold_key, DP_FOLD_COUNT, c);
+        if (r < 0) {
             if (dp_u32_push(out, c)) return -1;
-        } else if (push_seq(out, dp_pool + r->off, r->len)) {
+        } else if (push_pool(out, lower ? dp_lower_off[r] : dp_fold_off[r],
+                             ((lower ? dp_lower_key[r] : dp_fold_key[r]) >> 21) & 31u)) {
             return -1;
         }
     }
