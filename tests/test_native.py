@@ -215,3 +215,49 @@ def test_random_unicode_tokens_match_python(program, texts, form, case):
         assert run.returncode == 0, run.stderr
         got = [json.loads(line)["tokens"] for line in run.stdout.decode().splitlines()]
         assert got == _python_tokens(texts, form, case, preset), (form, case, preset)
+
+
+# --- the Python runtime's fast path (runtime/fastpath.py): the native library through ctypes ---------------------
+
+needs_fast_path = pytest.mark.skipif(
+    importlib.util.find_spec("danpack.runtime._native") is None or os.environ.get("DANPACK_NATIVE") == "0",
+    reason="the native library was not built by pip install (no C compiler) or DANPACK_NATIVE=0")
+
+
+@needs_fast_path
+def test_fast_path_is_used_and_described(bundles):
+    clf = load(bundles[0], backend="numpy")
+    assert clf.describe()["encoder"] == "native" and clf.native is not None
+
+
+def test_fast_path_off_or_refused_falls_back_silently(tmp_path):
+    code = ("import sys; from danpack.runtime import load; c = load(sys.argv[1], backend='numpy'); "
+            "print(c.describe()['encoder']); print(c.predict(['great fast charger']))")
+    from danpack.model import save_model
+    from danpack.pack.build import PackOptions, pack_model
+
+    maker = _load_module(NATIVE / "tests" / "make_test_bundles.py", "make_test_bundles")
+    save_model(maker.seeded_model(5, tokenizer=TokenizerSpec(pattern=r"[a-z]+")), tmp_path / "m")
+    bundle = tmp_path / "custom.bundle"
+    pack_model(tmp_path / "m", bundle, PackOptions())
+    env = {**os.environ, "DANPACK_NATIVE": "0"}
+    off = subprocess.run([sys.executable, "-c", code, str(bundle)], capture_output=True, text=True, env=env)
+    assert off.returncode == 0 and off.stdout.startswith("python (the native library is not built"), off.stderr
+    refused = load(bundle, backend="numpy")  # the native runtime does not run custom patterns: Python does
+    assert refused.native is None and refused.describe()["encoder"].startswith("python")
+    if importlib.util.find_spec("danpack.runtime._native") is not None and os.environ.get("DANPACK_NATIVE") != "0":
+        assert "custom pattern" in refused.describe()["encoder"]
+
+
+@needs_fast_path
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(texts=st.lists(st.text(alphabet=st.characters(blacklist_categories=()), max_size=60), min_size=1, max_size=20),
+       which=st.integers(0, 100))
+def test_fast_path_gives_identical_ids_and_answers(bundles, texts, which):
+    clf = load(bundles[which % len(bundles)], backend="numpy")
+    fast_ids, fast_counts = clf._encode(texts)  # native unless a text holds a lone surrogate
+    ids, counts = clf.encoder.encode(texts)
+    assert np.array_equal(fast_ids, ids) and np.array_equal(fast_counts, counts) and fast_ids.dtype == ids.dtype
+    fast = clf.predict_proba(texts)
+    clf.native = None
+    assert np.array_equal(fast, clf.predict_proba(texts))

@@ -46,6 +46,12 @@ int dp_classify(const dp_bundle *bundle, dp_scratch *scratch, const char *text, 
 int dp_classify_batch(const dp_bundle *bundle, dp_scratch *scratch, const char *const *texts, const size_t *lens,
                       size_t n, float *probs, dp_error *err);
 
+/* n texts, text i being the UTF-8 bytes data[offsets[i] .. offsets[i + 1]), -> their row ids (after the unknown-word
+ * policy) one text after another into ids (room for cap) and each text's id count into counts. Returns the number of
+ * ids of all texts: when it exceeds cap, only cap were written (call again with that much room); -1 on failure. */
+long long dp_encode_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets,
+                         size_t n, int64_t *ids, size_t cap, int64_t *counts, dp_error *err);
+
 /* Tokens and ids of one text, for tests and tools: calls `emit` per token (UTF-8 bytes, row id or -1 when the
  * token is unknown and left out by the 'skip' policy). */
 typedef void (*dp_token_fn)(void *ctx, const char *token, size_t len, long id);

@@ -156,3 +156,30 @@ int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *text
     dp_scratch_free(own);
     return rc;
 }
+
+long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                         int64_t *ids, size_t cap, int64_t *counts, dp_error *err) {
+    dp_scratch *own = NULL;
+    if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
+    size_t total = 0;
+    long long rc = 0;
+    for (size_t i = 0; i < n; i++) {
+        if (offsets[i] < 0 || offsets[i + 1] < offsets[i]) {
+            dp_fail(err, "text %zu: offsets out of order", i);
+            rc = -1;
+            break;
+        }
+        size_t count;
+        if (dp_utf8_decode((const uint8_t *)data + offsets[i], (size_t)(offsets[i + 1] - offsets[i]), &s->tok.cps) ||
+            encode(b, s, s->tok.cps.v, s->tok.cps.n, &count, NULL, NULL, err)) {
+            dp_fail(err, "out of memory");
+            rc = -1;
+            break;
+        }
+        counts[i] = (int64_t)count;
+        for (size_t k = 0; k < count; k++, total++)
+            if (total < cap) ids[total] = (int64_t)s->ids[k];
+    }
+    dp_scratch_free(own);
+    return rc < 0 ? rc : (long long)total;
+}
