@@ -64,6 +64,14 @@ class Classifier:
                 return encoded
         return self.encoder.encode(texts)
 
+    def _encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """As _encode, with each text's count of tokens the bundle knows (Encoder.encode_known)."""
+        if self.native is not None:
+            encoded = self.native.encode_known(texts)
+            if encoded is not None:
+                return encoded
+        return self.encoder.encode_known(texts)
+
     def _check_probe(self) -> None:
         """Re-run the packer's probe sequences: a backend that computes differently is refused at load."""
         probe = self.bundle.manifest["probe"]
@@ -114,7 +122,7 @@ class Classifier:
         texts = as_texts(texts)
         probs_parts, known_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
-            ids, counts, known = self.encoder.encode_known(texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            ids, counts, known = self._encode_known(texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
             probs_parts.append(self.backend.run(ids, counts)[0])  # (b, C)
             known_parts.append(known)
         probs, known = np.concatenate(probs_parts), np.concatenate(known_parts)  # (B, C), (B,)

@@ -50,7 +50,7 @@ def _open_library() -> ctypes.CDLL | None:
     lib.dp_scratch_new.restype, lib.dp_scratch_new.argtypes = p, [p]
     lib.dp_scratch_free.restype, lib.dp_scratch_free.argtypes = None, [p]
     lib.dp_encode_flat.restype = ctypes.c_longlong
-    lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, ctypes.POINTER(_Error)]
+    lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, ctypes.POINTER(_Error)]
     return lib
 
 
@@ -79,6 +79,11 @@ class NativeEncoder:
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray] | None:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts; None when a text is not UTF-8-encodable."""
+        encoded = self.encode_known(texts)
+        return None if encoded is None else encoded[:2]
+
+    def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode."""
         try:
             parts = [t.encode("utf-8") for t in texts]
         except UnicodeEncodeError:  # a lone surrogate: the Python encoder takes it
@@ -88,6 +93,7 @@ class NativeEncoder:
         np.cumsum(lengths, out=offsets[1:])
         data = b"".join(parts)
         counts = np.zeros(len(parts), dtype=np.int64)  # (B,)
+        known = np.zeros(len(parts), dtype=np.int64)  # (B,)
         flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
         err = _Error()
         scratch = self._lib.dp_scratch_new(self._handle)  # one per call: callers may share the classifier
@@ -98,7 +104,7 @@ class NativeEncoder:
             while True:
                 total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data_as(i64), len(parts),
                                                  flat.ctypes.data_as(i64), flat.size, counts.ctypes.data_as(i64),
-                                                 ctypes.byref(err))
+                                                 known.ctypes.data_as(i64), ctypes.byref(err))
                 if total < 0:
                     raise MemoryError(err.message.decode("utf-8", "replace"))
                 if total <= flat.size:
@@ -106,7 +112,7 @@ class NativeEncoder:
                 flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
         finally:
             self._lib.dp_scratch_free(scratch)
-        return pad(flat[:total], counts)
+        return (*pad(flat[:total], counts), known)
 
 
 def pad(flat: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -151,13 +151,27 @@ def _compare_streams(native: bytes, python: bytes) -> None:
 
 @pytest.mark.parametrize("args", [["--jsonl"], ["--jsonl", "--format", "tsv", "--header", "--top-k", "2"],
                                   ["--jsonl", "--top-k", "1", "--text-field", "t"], ["--classify-empty"],
-                                  ["--format", "tsv", "--max-line-bytes", "40"], ["--jsonl", "--lenient"]])
+                                  ["--format", "tsv", "--max-line-bytes", "40"], ["--jsonl", "--lenient"],
+                                  ["--jsonl", "--skip-empty"], ["--skip-empty", "--format", "tsv", "--header"]])
 def test_stream_records_match_danpack_run(program, bundles, args):
     bundle = next(p for p in bundles if p.name == "demo_topic.bundle")
     native = run_native(program, [bundle, *args], STREAM_INPUT)
     python = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), *args, "--backend", "numpy"],
                             input=STREAM_INPUT, capture_output=True, timeout=120)
     assert native.returncode == python.returncode, (native.stderr, python.stderr)
+    _compare_streams(native.stdout, python.stdout)
+
+
+@pytest.mark.parametrize("name", ["records.jsonl", "records.txt", "records", "records.csv"])
+def test_input_format_from_the_file_name_or_first_line_matches(program, bundles, tmp_path, name):
+    path = tmp_path / name
+    path.write_bytes(STREAM_INPUT)
+    bundle = bundles[0]
+    native = run_native(program, [bundle, path], b"")
+    python = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), str(path), "--backend", "numpy"],
+                            capture_output=True, timeout=120)
+    assert native.returncode == python.returncode
+    assert native.stderr.replace(b"danpack-run-native", b"danpack-run") == python.stderr
     _compare_streams(native.stdout, python.stdout)
 
 
@@ -258,6 +272,11 @@ def test_fast_path_gives_identical_ids_and_answers(bundles, texts, which):
     fast_ids, fast_counts = clf._encode(texts)  # native unless a text holds a lone surrogate
     ids, counts = clf.encoder.encode(texts)
     assert np.array_equal(fast_ids, ids) and np.array_equal(fast_counts, counts) and fast_ids.dtype == ids.dtype
-    fast = clf.predict_proba(texts)
+    fast_known = clf._encode_known(texts)
+    for a, b in zip(fast_known, clf.encoder.encode_known(texts)):
+        assert np.array_equal(a, b)
+    fast, (_, fast_probs, known) = clf.predict_proba(texts), clf.predict_known(texts)
     clf.native = None
-    assert np.array_equal(fast, clf.predict_proba(texts))
+    _, probs, python_known = clf.predict_known(texts)
+    assert np.array_equal(fast, clf.predict_proba(texts)) and np.array_equal(fast_probs, probs)
+    assert np.array_equal(known, python_known)

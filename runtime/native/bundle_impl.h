@@ -61,6 +61,9 @@ void dp_fail_append(dp_error *err, const char *fmt, ...)
     ;
 long dp_vocab_find(const dp_bundle *b, const uint8_t *tok, size_t len);
 int dp_check_graph(const char *src, const uint8_t *g, size_t n, const tensor *ts, size_t nts, dp_error *err);
+/* tokens of code points -> ids in s->ids (count of them), known: tokens with a row of their own (may be NULL) */
+int dp_encode_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, size_t *known,
+                  dp_token_fn emit, void *ctx, dp_error *err);
 /* ids -> probabilities (dp_label_count of them) through gather, mean, layers and softmax */
 void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, float *probs);
 

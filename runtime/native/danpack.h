@@ -47,10 +47,15 @@ int dp_classify_batch(const dp_bundle *bundle, dp_scratch *scratch, const char *
                       size_t n, float *probs, dp_error *err);
 
 /* n texts, text i being the UTF-8 bytes data[offsets[i] .. offsets[i + 1]), -> their row ids (after the unknown-word
- * policy) one text after another into ids (room for cap) and each text's id count into counts. Returns the number of
- * ids of all texts: when it exceeds cap, only cap were written (call again with that much room); -1 on failure. */
+ * policy) one text after another into ids (room for cap), each text's id count into counts and (unless NULL) into
+ * known how many of its tokens have a row of their own. Returns the number of ids of all texts: when it exceeds cap,
+ * only cap were written (call again with that much room); -1 on failure. */
 long long dp_encode_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets,
-                         size_t n, int64_t *ids, size_t cap, int64_t *counts, dp_error *err);
+                         size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err);
+
+/* One text -> probabilities and the number of its tokens with a row of their own (danpack-run's known_tokens). */
+int dp_classify_known(const dp_bundle *bundle, dp_scratch *scratch, const char *text, size_t len, float *probs,
+                      size_t *known, dp_error *err);
 
 /* Tokens and ids of one text, for tests and tools: calls `emit` per token (UTF-8 bytes, row id or -1 when the
  * token is unknown and left out by the 'skip' policy). */

@@ -83,6 +83,12 @@ void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, 
 /* Tokens of code points -> ids in s->ids (after the unknown-word policy); emit, when given, sees every token. */
 static int encode(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, dp_token_fn emit,
                   void *ctx, dp_error *err) {
+    return dp_encode_cps(b, s, cps, n, count, NULL, emit, ctx, err);
+}
+
+/* known: tokens with a row of their own (not the unknown-word row, not left out), as Encoder.encode_known counts */
+int dp_encode_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, size_t *known,
+                  dp_token_fn emit, void *ctx, dp_error *err) {
     dp_tok_work *w = &s->tok;
     if (dp_tokenize_cps(&b->tok, cps, n, w)) return dp_fail(err, "out of memory while tokenizing"), -1;
     if (w->nspans > s->idcap) {
@@ -91,7 +97,7 @@ static int encode(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t
         s->ids = ids;
         s->idcap = w->nspans;
     }
-    size_t k = 0;
+    size_t k = 0, found = 0;
     for (size_t t = 0; t < w->nspans; t++) {
         const dp_span *sp = &w->spans[t];
         if (sp->len > (SIZE_MAX - 1) / 4) return dp_fail(err, "token too long"), -1;
@@ -105,17 +111,20 @@ static int encode(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t
         size_t len = 0;
         for (size_t i = 0; i < sp->len; i++) len += dp_utf8_put(w->norm.v[sp->start + i], w->bytes + len);
         long row = dp_vocab_find(b, (const uint8_t *)w->bytes, len);
-        if (row < 0) row = b->oov_row;
+        if (row >= 0) found++;
+        else row = b->oov_row;
         if (emit) emit(ctx, w->bytes, len, row);
         if (row >= 0) s->ids[k++] = (size_t)row;
     }
     *count = k;
+    if (known) *known = found;
     return 0;
 }
 
-int dp_classify_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, float *probs, dp_error *err) {
+int dp_classify_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, float *probs, size_t *known,
+                    dp_error *err) {
     size_t count;
-    if (encode(b, s, cps, n, &count, NULL, NULL, err)) return -1;
+    if (dp_encode_cps(b, s, cps, n, &count, known, NULL, NULL, err)) return -1;
     dp_forward(b, s, s->ids, count, probs);
     return 0;
 }
@@ -126,25 +135,30 @@ int dp_tokens_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t
     return encode(b, s, cps, n, &count, emit, ctx, err);
 }
 
-static int with_text(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, dp_token_fn emit,
-                     void *ctx, dp_error *err) {
+static int with_text(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, size_t *known,
+                     dp_token_fn emit, void *ctx, dp_error *err) {
     dp_scratch *own = NULL;
     if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
     int rc = dp_utf8_decode((const uint8_t *)text, len, &s->tok.cps);
     if (rc) dp_fail(err, "out of memory");
     else if (emit) rc = dp_tokens_cps(b, s, s->tok.cps.v, s->tok.cps.n, emit, ctx, err);
-    else rc = dp_classify_cps(b, s, s->tok.cps.v, s->tok.cps.n, probs, err);
+    else rc = dp_classify_cps(b, s, s->tok.cps.v, s->tok.cps.n, probs, known, err);
     dp_scratch_free(own);
     return rc;
 }
 
 int dp_classify(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, dp_error *err) {
-    return with_text(b, s, text, len, probs, NULL, NULL, err);
+    return with_text(b, s, text, len, probs, NULL, NULL, NULL, err);
+}
+
+int dp_classify_known(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, size_t *known,
+                      dp_error *err) {
+    return with_text(b, s, text, len, probs, known, NULL, NULL, err);
 }
 
 int dp_tokens(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, dp_token_fn emit, void *ctx,
               dp_error *err) {
-    return with_text(b, s, text, len, NULL, emit, ctx, err);
+    return with_text(b, s, text, len, NULL, NULL, emit, ctx, err);
 }
 
 int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *texts, const size_t *lens, size_t n,
@@ -158,7 +172,7 @@ int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *text
 }
 
 long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
-                         int64_t *ids, size_t cap, int64_t *counts, dp_error *err) {
+                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err) {
     dp_scratch *own = NULL;
     if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
     size_t total = 0;
@@ -169,14 +183,15 @@ long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, co
             rc = -1;
             break;
         }
-        size_t count;
+        size_t count, found;
         if (dp_utf8_decode((const uint8_t *)data + offsets[i], (size_t)(offsets[i + 1] - offsets[i]), &s->tok.cps) ||
-            encode(b, s, s->tok.cps.v, s->tok.cps.n, &count, NULL, NULL, err)) {
+            dp_encode_cps(b, s, s->tok.cps.v, s->tok.cps.n, &count, &found, NULL, NULL, err)) {
             dp_fail(err, "out of memory");
             rc = -1;
             break;
         }
         counts[i] = (int64_t)count;
+        if (known) known[i] = (int64_t)found;
         for (size_t k = 0; k < count; k++, total++)
             if (total < cap) ids[total] = (int64_t)s->ids[k];
     }

@@ -67,7 +67,8 @@ void dp_tok_work_free(dp_tok_work *w);
 void dp_sha256_digest(const uint8_t *data, size_t len, uint8_t out[32]);
 
 /* ---- bundle internals needed by the command-line program ---- */
-int dp_classify_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, float *probs, dp_error *err);
+int dp_classify_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, float *probs, size_t *known,
+                    dp_error *err);
 int dp_tokens_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, dp_token_fn emit, void *ctx,
                   dp_error *err);
 const dp_tok_spec *dp_bundle_tok_spec(const dp_bundle *b);

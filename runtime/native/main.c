@@ -11,6 +11,8 @@
 #include <time.h>
 #include <unistd.h>
 
+#include <sys/stat.h>
+
 #include "bundle_impl.h"
 #include "json.h"
 
@@ -30,7 +32,7 @@ static volatile sig_atomic_t stop_signal = 0;
 static void on_stop(int sig) { stop_signal = sig; }
 
 typedef struct {
-    int jsonl, tsv, header, classify_empty, lenient, verbose;
+    int jsonl, lines, tsv, header, classify_empty, skip_empty, lenient, verbose;
     const char *text_field, *id_field, *bundle, *input;
     size_t top_k, max_line_bytes;
     int tokens_mode; /* --tokens: print each text's tokens and ids (for tests) */
@@ -48,7 +50,7 @@ typedef struct {
     sbuf out;
     jdoc doc;
     dp_u32buf cps;
-    size_t records, errors;
+    size_t records, errors, known;
     int out_fd, write_failed;
 } runner;
 
@@ -59,9 +61,10 @@ static void say(const char *fmt, const char *a, const char *b) {
 }
 
 static const char USAGE[] =
-    "usage: " PROG " [-h] [--jsonl] [--text-field NAME] [--id-field NAME] [--format {jsonl,tsv}] [--header]\n"
-    "       [--top-k K] [--batch N] [--max-wait-ms MS] [--max-line-bytes N] [--classify-empty] [--lenient]\n"
-    "       [--verbose] [--version] BUNDLE [INPUT]\n";
+    "usage: " PROG " [-h] [--jsonl | --lines] [--text-field NAME] [--id-field NAME] [--format {jsonl,tsv}] [--header]\n"
+    "       [--top-k K] [--batch N] [--max-wait-ms MS] [--max-line-bytes N] [--classify-empty | --skip-empty]\n"
+    "       [--lenient]"
+    " [--verbose] [--version] BUNDLE [INPUT]\n";
 
 static int usage_error(const char *msg, const char *arg) {
     fputs(USAGE, stderr);
@@ -212,10 +215,10 @@ static int members(const jdoc *d, const char *skip, kv **out, size_t *n) {
     return 0;
 }
 
-static const char *const RESERVED[] = {"line", "label", "probs", "error"};
+static const char *const RESERVED[] = {"line", "label", "probs", "known_tokens", "no_known_token", "error", "skipped"};
 
 static int reserved(const uint32_t *s, size_t n) {
-    for (int i = 0; i < 4; i++)
+    for (int i = 0; i < 7; i++)
         if (dp_cps_eq_utf8(s, n, RESERVED[i], strlen(RESERVED[i]))) return 1;
     return 0;
 }
@@ -266,17 +269,19 @@ static void put_error_text(runner *r, const char *msg) {
     else sb_json_utf8(&r->out, msg, strlen(msg));
 }
 
-/* one output record; kvs: passthrough fields (JSONL) or NULL; msg: the error, or NULL with r->probs filled */
-static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg) {
+/* one output record; kvs: passthrough fields (JSONL) or NULL; msg: the error (or with skipped, the reason the record
+ * was passed over on request), or NULL with r->probs and r->known filled */
+static void emit_kind(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg, int skipped) {
     sbuf *b = &r->out;
     size_t C = r->b ? dp_label_count(r->b) : 0, k = r->o.top_k ? r->o.top_k : (r->o.tsv ? 1 : C);
-    if (msg) r->errors++;
+    char tmp[48];
+    if (msg && !skipped) r->errors++;
     if (!r->o.tsv) {
         sb_str(b, "{\"line\":");
         put_line_no(b, line);
         if (has_obj) put_extras(r, ex, nex);
         if (msg) {
-            sb_str(b, ",\"error\":");
+            sb_str(b, skipped ? ",\"skipped\":" : ",\"error\":");
             put_error_text(r, msg);
             sb_str(b, "}\n");
             return;
@@ -300,8 +305,9 @@ static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, 
             }
         }
         if (msg) {
-            for (size_t i = 0; i < 2 * k; i++) sb_put(b, "\t", 1);
+            for (size_t i = 0; i < 2 * k + 1; i++) sb_put(b, "\t", 1); /* label/probability pairs, known_tokens */
             sb_put(b, "\t", 1);
+            if (skipped) sb_str(b, "skipped: ");
             put_error_text(r, msg);
             sb_put(b, "\n", 1);
             return;
@@ -333,7 +339,9 @@ static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, 
             sb_put(b, ":", 1);
             sb_f32(b, r->probs[c]);
         }
-        sb_str(b, "}}\n");
+        snprintf(tmp, sizeof(tmp), "},\"known_tokens\":%zu,\"no_known_token\":%s}\n", r->known,
+                 r->known ? "false" : "true");
+        sb_str(b, tmp);
     } else {
         for (size_t i = 0; i < k; i++) {
             sb_put(b, "\t", 1);
@@ -342,8 +350,13 @@ static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, 
             sb_put(b, "\t", 1);
             sb_f32(b, r->probs[ord[i]]);
         }
-        sb_str(b, "\t\n");
+        snprintf(tmp, sizeof(tmp), "\t%zu\t\n", r->known);
+        sb_str(b, tmp);
     }
+}
+
+static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg) {
+    emit_kind(r, line, ex, nex, has_obj, msg, 0);
 }
 
 /* ---- records ---- */
@@ -453,7 +466,7 @@ static int record(runner *r, const uint8_t *raw, size_t len, int overlong) {
         return 0;
     }
     if (!len && !allow_empty) {
-        emit(r, line, NULL, 0, 0, "empty line");
+        emit_kind(r, line, NULL, 0, 0, "empty line", r->o.skip_empty);
         return 0;
     }
     if (memchr(raw, 0, len)) {
@@ -526,7 +539,7 @@ static int record(runner *r, const uint8_t *raw, size_t len, int overlong) {
     if (r->o.tokens_mode) {
         rc = tokens_record(r, line, text, tlen);
     } else {
-        rc = dp_classify_cps(r->b, r->s, text, tlen, r->probs, &err);
+        rc = dp_classify_cps(r->b, r->s, text, tlen, r->probs, &r->known, &err);
         if (!rc) emit(r, line, ex, nex, has_obj, NULL);
     }
 done:
@@ -618,6 +631,66 @@ oom:
     return -1;
 }
 
+/* runtime/formats.py's rule for a named input without --jsonl / --lines: a known suffix decides (.jsonl, .ndjson,
+ * .json: JSONL; .csv, .tsv, .txt: plain lines, a .txt whose first line is a JSON object with a warning), else the
+ * first non-blank line (a JSON object: JSONL). Standard input is plain lines. */
+static int looks_like_json_object(const uint8_t *line, size_t n) {
+    dp_u32buf cps = {0};
+    jdoc doc;
+    memset(&doc, 0, sizeof(doc));
+    if (dp_utf8_decode(line, n, &cps)) return 0;
+    size_t a = 0, b = cps.n;
+    while (a < b && (dp_props(cps.v[a]) & DP_P_SPACE)) a++;
+    while (b > a && (dp_props(cps.v[b - 1]) & DP_P_SPACE)) b--;
+    while (a < b && cps.v[a] == 0xFEFF) a++;
+    int yes = b - a >= 2 && cps.v[a] == '{' && cps.v[b - 1] == '}' && dp_json_parse(&doc, cps.v + a, b - a) == 0 &&
+              doc.nodes[0].type == J_OBJ;
+    dp_json_free(&doc);
+    free(cps.v);
+    return yes;
+}
+
+static int input_is_jsonl(const options *o) {
+    if (o->jsonl || o->lines || !strcmp(o->input, "-")) return o->jsonl;
+    const char *base = strrchr(o->input, '/');
+    base = base ? base + 1 : o->input;
+    const char *dot = strrchr(base, '.');
+    char suffix[16] = "";
+    if (dot && dot != base && dot[1] && strlen(dot) < sizeof(suffix))
+        for (size_t i = 0; dot[i]; i++) suffix[i] = (char)(dot[i] >= 'A' && dot[i] <= 'Z' ? dot[i] + 32 : dot[i]);
+    int json_first = 0;
+    struct stat st;
+    FILE *f = stat(o->input, &st) == 0 && S_ISREG(st.st_mode) ? fopen(o->input, "rb") : NULL;
+    if (f) {
+        uint8_t *head = malloc(65536);
+        size_t n = head ? fread(head, 1, 65536, f) : 0, i = 0;
+        while (head && i < n) { /* bytes.splitlines: \n, \r, \r\n */
+            size_t j = i;
+            while (j < n && head[j] != '\n' && head[j] != '\r') j++;
+            int blank = 1;
+            for (size_t k = i; k < j; k++)
+                if (!strchr(" \t\x0b\x0c", head[k])) blank = 0;
+            if (!blank) {
+                json_first = looks_like_json_object(head + i, j - i);
+                break;
+            }
+            i = j + (j + 1 < n && head[j] == '\r' && head[j + 1] == '\n' ? 2 : 1);
+        }
+        free(head);
+        fclose(f);
+    }
+    if (!strcmp(suffix, ".jsonl") || !strcmp(suffix, ".ndjson") || !strcmp(suffix, ".json")) return 1;
+    if (!strcmp(suffix, ".csv") || !strcmp(suffix, ".tsv")) return 0;
+    if (!strcmp(suffix, ".txt")) {
+        if (json_first)
+            fprintf(stderr, "%s: warning: %s: its first line is a JSON object but a %s file is read as plain lines (the "
+                            "JSON text itself would be classified); name it .jsonl or choose the JSONL format (pass "
+                            "--jsonl or --lines to choose)\n", PROG, o->input, suffix);
+        return 0;
+    }
+    return json_first;
+}
+
 static int parse_spec(const char *text, dp_tok_spec *spec) {
     char buf[128];
     snprintf(buf, sizeof(buf), "%s", text);
@@ -672,8 +745,15 @@ int main(int argc, char **argv) {
             return usage_error("unrecognized arguments: %s", a);
         }
         if (!strcmp(name, "--jsonl")) o->jsonl = 1;
+        else if (!strcmp(name, "--lines")) o->lines = 1;
         else if (!strcmp(name, "--header")) o->header = 1;
-        else if (!strcmp(name, "--classify-empty")) o->classify_empty = 1;
+        else if (!strcmp(name, "--classify-empty")) {
+            if (o->skip_empty) return usage_error("%s", "argument --classify-empty: not allowed with argument --skip-empty");
+            o->classify_empty = 1;
+        } else if (!strcmp(name, "--skip-empty")) {
+            if (o->classify_empty) return usage_error("%s", "argument --skip-empty: not allowed with argument --classify-empty");
+            o->skip_empty = 1;
+        }
         else if (!strcmp(name, "--lenient")) o->lenient = 1;
         else if (!strcmp(name, "--verbose")) o->verbose = 1;
         else if (!strcmp(name, "--tokens")) o->tokens_mode = 1;
@@ -712,7 +792,11 @@ int main(int argc, char **argv) {
         }
     }
     o->tsv = !strcmp(format, "tsv");
-    if (o->text_field && !o->jsonl) return usage_error("%s", "--text-field names a JSONL field: add --jsonl");
+    if (o->jsonl && o->lines) return usage_error("%s", "argument --lines: not allowed with argument --jsonl");
+    o->input = positional[o->tokenize_spec ? 0 : 1] ? positional[o->tokenize_spec ? 0 : 1] : "-";
+    o->jsonl = input_is_jsonl(o);
+    if (o->text_field && !o->jsonl)
+        return usage_error("%s", "--text-field names a JSONL field: add --jsonl (or give a .jsonl input)");
     if (!o->text_field) o->text_field = "text";
     if (!o->id_field && o->jsonl && o->tsv) o->id_field = "id";
     if (o->id_field && (!o->jsonl || !o->tsv))
@@ -796,7 +880,7 @@ int main(int argc, char **argv) {
             snprintf(tmp, sizeof(tmp), "\tlabel_%zu\tprobability_%zu", i, i);
             sb_str(&r.out, tmp);
         }
-        sb_str(&r.out, "\terror\n");
+        sb_str(&r.out, "\tknown_tokens\terror\n");
     }
     int rc = run_stream(&r, fd);
     if (r.write_failed == EPIPE) {
