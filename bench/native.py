@@ -26,6 +26,7 @@ import numpy as np
 REPO = Path(__file__).resolve().parents[1]
 NATIVE = REPO / "runtime" / "native"
 WORK = REPO / "bench" / "out" / "native"
+NOTES = "<!-- notes: kept when the figures above are rewritten -->"
 CFLAGS = ["-std=c99", "-O2", "-Wall", "-Wextra", "-Werror"]
 
 
@@ -179,6 +180,8 @@ def main(argv: list[str] | None = None) -> int:
         + (f", {stripped.stat().st_size:,} bytes stripped" if strip_ok else "") + " (Unicode tables included; target <= 300 KB).",
     ]
     text = "\n".join(lines) + "\n"
+    if args.out.exists() and NOTES in args.out.read_text(encoding="utf-8"):  # hand-written notes below the marker stay
+        text += "\n" + NOTES + args.out.read_text(encoding="utf-8").split(NOTES, 1)[1]
     args.out.write_text(text, encoding="utf-8")
     print(text)
     return 0
