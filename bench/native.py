@@ -97,11 +97,14 @@ def write_floor_dump(bundle, path: Path) -> None:
     path.write_bytes(b"".join(parts))
 
 
-def python_api(bundle: Path, texts: list[str], batch: int, backend: str) -> float:
-    """Texts per second through runtime.load(...).predict_proba in this process (median of 5 passes)."""
+def python_api(bundle: Path, texts: list[str], batch: int, backend: str, native: bool = True) -> float:
+    """Texts per second through runtime.load(...).predict_proba in this process (median of 5 passes); native=False
+    turns the fast path off (the Python encoder)."""
     from danpack.runtime import load
 
     clf = load(bundle, backend=backend)
+    if not native:
+        clf.native = None
     texts = texts[: 25_600 if batch > 1 else 2_000]
     rates = []
     for _ in range(5):
@@ -145,7 +148,8 @@ def main(argv: list[str] | None = None) -> int:
     n = len(w["texts"])
     rate = {k: n / statistics.median(x[0] for x in v) for k, v in stream.items()}
     cpu_rate = {k: n / statistics.median(x[2] for x in v) for k, v in stream.items()}
-    api = {(b, be): python_api(w["bundle"], w["texts"], b, be) for b in (1, 32, 256) for be in ("numpy", "onnxruntime")}
+    api = {(b, be, nat): python_api(w["bundle"], w["texts"], b, be, nat)
+           for b in (1, 32, 256) for be in ("numpy", "onnxruntime") for nat in (True, False)}
     binary = Path(prog).stat().st_size
     stripped = WORK / "danpack-run-native.stripped"
     shutil.copy(prog, stripped)
@@ -171,7 +175,9 @@ def main(argv: list[str] | None = None) -> int:
                      f"{statistics.median(x[2] for x in v) * 1000:.1f} ms | {statistics.median(x[1] for x in v) / 1024:.1f} MB |")
     lines += ["", "| Python API `predict_proba`, in process | batch 1 | batch 32 | batch 256 |", "|---|---:|---:|---:|"]
     for be in ("numpy", "onnxruntime"):
-        lines.append(f"| {be} backend | " + " | ".join(f"{api[(b, be)]:,.0f} texts/s" for b in (1, 32, 256)) + " |")
+        for nat in (True, False):
+            name = f"{be} backend, " + ("native fast path" if nat else "Python encoder (DANPACK_NATIVE=0)")
+            lines.append(f"| {name} | " + " | ".join(f"{api[(b, be, nat)]:,.0f} texts/s" for b in (1, 32, 256)) + " |")
     lines += [
         "", f"- C program per text (CPU): {cpu_rate[floor_key] / cpu_rate[c_key]:.2f}x the bare floor's time "
         f"(target within 1.5x); {cpu_rate[c_key] / cpu_rate['danpack-run, onnxruntime backend']:.1f}x `danpack-run` "

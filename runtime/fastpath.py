@@ -19,6 +19,9 @@ from collections.abc import Sequence
 import numpy as np
 
 _LOCK = threading.Lock()
+# Below this many texts a call costs more in ctypes and numpy set-up than it saves (measured: the Python encoder wins
+# at 1 and 4 texts, the native one from 16 on): the Python encoder takes such calls.
+MIN_TEXTS = 8
 _LIB: list = []  # [ctypes.CDLL | None] once looked up
 
 
@@ -44,7 +47,7 @@ def _open_library() -> ctypes.CDLL | None:
         lib = ctypes.CDLL(spec.origin)
     except (OSError, ImportError, ValueError):
         return None
-    p, size, i64 = ctypes.c_void_p, ctypes.c_size_t, ctypes.POINTER(ctypes.c_int64)
+    p, size, i64 = ctypes.c_void_p, ctypes.c_size_t, ctypes.c_void_p  # int64 arrays passed as addresses
     lib.dp_load_path.restype, lib.dp_load_path.argtypes = p, [ctypes.c_char_p, ctypes.POINTER(_Error)]
     lib.dp_free.restype, lib.dp_free.argtypes = None, [p]
     lib.dp_scratch_new.restype, lib.dp_scratch_new.argtypes = p, [p]
@@ -59,6 +62,9 @@ class NativeEncoder:
 
     def __init__(self, lib: ctypes.CDLL, handle: int, path: str) -> None:
         self._lib, self._handle, self.path = lib, handle, path
+        self._local = threading.local()  # one scratch space per thread: callers may share the classifier
+        self._scratches: list[int] = []  # all of them, freed with the encoder
+        self._scratch_lock = threading.Lock()
 
     @classmethod
     def open(cls, path: str | os.PathLike) -> tuple["NativeEncoder | None", str]:
@@ -73,9 +79,23 @@ class NativeEncoder:
         return cls(lib, handle, str(path)), "native"
 
     def __del__(self) -> None:
+        for scratch in getattr(self, "_scratches", ()):
+            self._lib.dp_scratch_free(scratch)
+        self._scratches = []
         if getattr(self, "_handle", None):
             self._lib.dp_free(self._handle)
             self._handle = None
+
+    def _scratch(self) -> int:
+        scratch = getattr(self._local, "scratch", None)
+        if scratch is None:
+            scratch = self._lib.dp_scratch_new(self._handle)
+            if not scratch:
+                raise MemoryError("the native runtime could not allocate its scratch space")
+            with self._scratch_lock:
+                self._scratches.append(scratch)
+            self._local.scratch = scratch
+        return scratch
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray] | None:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts; None when a text is not UTF-8-encodable."""
@@ -83,7 +103,10 @@ class NativeEncoder:
         return None if encoded is None else encoded[:2]
 
     def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
-        """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode."""
+        """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode, and for
+        fewer than MIN_TEXTS texts."""
+        if len(texts) < MIN_TEXTS:
+            return None
         try:
             parts = [t.encode("utf-8") for t in texts]
         except UnicodeEncodeError:  # a lone surrogate: the Python encoder takes it
@@ -96,22 +119,16 @@ class NativeEncoder:
         known = np.zeros(len(parts), dtype=np.int64)  # (B,)
         flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
         err = _Error()
-        scratch = self._lib.dp_scratch_new(self._handle)  # one per call: callers may share the classifier
-        if not scratch:
-            raise MemoryError("the native runtime could not allocate its scratch space")
-        try:
-            i64 = ctypes.POINTER(ctypes.c_int64)
-            while True:
-                total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data_as(i64), len(parts),
-                                                 flat.ctypes.data_as(i64), flat.size, counts.ctypes.data_as(i64),
-                                                 known.ctypes.data_as(i64), ctypes.byref(err))
-                if total < 0:
-                    raise MemoryError(err.message.decode("utf-8", "replace"))
-                if total <= flat.size:
-                    break
-                flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
-        finally:
-            self._lib.dp_scratch_free(scratch)
+        scratch = self._scratch()
+        while True:
+            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, len(parts),
+                                             flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
+                                             ctypes.byref(err))
+            if total < 0:
+                raise MemoryError(err.message.decode("utf-8", "replace"))
+            if total <= flat.size:
+                break
+            flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
         return (*pad(flat[:total], counts), known)
 
 

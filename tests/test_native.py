@@ -242,6 +242,10 @@ needs_fast_path = pytest.mark.skipif(
 def test_fast_path_is_used_and_described(bundles):
     clf = load(bundles[0], backend="numpy")
     assert clf.describe()["encoder"] == "native" and clf.native is not None
+    from danpack.runtime import fastpath
+
+    assert clf.native.encode_known(["a charger"] * fastpath.MIN_TEXTS) is not None  # it takes batches
+    assert clf.native.encode_known(["a charger"]) is None  # and leaves single texts to the Python encoder
 
 
 def test_fast_path_off_or_refused_falls_back_silently(tmp_path):
@@ -268,6 +272,9 @@ def test_fast_path_off_or_refused_falls_back_silently(tmp_path):
 @given(texts=st.lists(st.text(alphabet=st.characters(blacklist_categories=()), max_size=60), min_size=1, max_size=20),
        which=st.integers(0, 100))
 def test_fast_path_gives_identical_ids_and_answers(bundles, texts, which):
+    from danpack.runtime import fastpath
+
+    texts = texts * fastpath.MIN_TEXTS  # enough texts for the native encoder to take the call
     clf = load(bundles[which % len(bundles)], backend="numpy")
     fast_ids, fast_counts = clf._encode(texts)  # native unless a text holds a lone surrogate
     ids, counts = clf.encoder.encode(texts)
