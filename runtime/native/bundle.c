@@ -335,6 +335,27 @@ static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t 
     return 0;
 }
 
+/* The optional envelope of the rows the bundle leaves out (runtime/bundle.py _check_unknown); absent in older bundles. */
+static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error *err) {
+    static const char *const keys[] = {"hi", "lo", "rows", "skipped"};
+    if (!f || f->type == MP_NIL) return 0;
+    if (!dp_mp_keys_are(f, keys, 4))
+        return dp_fail(err, "%s: manifest field 'unknown' must be a map with rows, skipped, lo and hi", src), -1;
+    const dp_mp *rows = dp_mp_get(f, "rows"), *skipped = dp_mp_get(f, "skipped");
+    if (!is_count(rows) || skipped->type != MP_BOOL || !(rows->i || skipped->i))
+        return dp_fail(err, "%s: manifest field 'unknown' has rows and skipped other than a count and a bool (a count "
+                            "of 0 only when skipped)", src), -1;
+    const dp_mp *lo = dp_mp_get(f, "lo"), *hi = dp_mp_get(f, "hi");
+    int ok = lo->type == MP_ARR && hi->type == MP_ARR && lo->len == width && hi->len == width;
+    for (size_t i = 0; ok && i < width; i++)
+        ok = lo->items[i].type == MP_FLOAT && hi->items[i].type == MP_FLOAT && isfinite(lo->items[i].f) &&
+             isfinite(hi->items[i].f) && lo->items[i].f <= hi->items[i].f;
+    if (!ok)
+        return dp_fail(err, "%s: manifest field 'unknown' lo and hi must be %zu finite floats each (the table width), "
+                            "lo <= hi", src, width), -1;
+    return 0;
+}
+
 /* The largest |logit| any text can reach (runtime/bundle.py _logit_reach), in double. */
 static double logit_reach(const dp_bundle *b) {
     double top = 0.0;
@@ -478,6 +499,7 @@ static int check_manifest(const char *src, const dp_mp *m, const tensors *ts, dp
     if (!folded || folded->type != MP_BOOL || folded->i != !b->layers[0].weight)
         FAIL("field 'table.folded' does not say whether layer 0 has its weight");
     if (check_probe(src, dp_mp_get(m, "probe"), rows, labels->len, err)) return -1;
+    if (check_unknown(src, dp_mp_get(m, "unknown"), width, err)) return -1;
     if (check_description(src, m, err)) return -1;
     if (too_deep(m, 1)) FAIL("nests deeper than %d levels of maps and lists", MAX_MANIFEST_DEPTH);
     for (size_t i = 0; i < ts->n; i++)
