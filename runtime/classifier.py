@@ -12,6 +12,7 @@ from .backends import BACKENDS, open_backend
 from .bundle import Bundle, read_bundle
 from .encode import Encoder
 from .errors import BundleError, DanpackError
+from .fastpath import NativeEncoder
 from .forward import encode_batch
 from .tokenize import Tokenizer
 
@@ -40,11 +41,36 @@ def as_texts(texts: object) -> list[str]:
 class Classifier:
     """Classifies texts with a verified bundle; safe to call from several threads at once."""
 
-    def __init__(self, bundle: Bundle, backend: str = "onnxruntime", threads: int = 1) -> None:
+    def __init__(self, bundle: Bundle, backend: str = "onnxruntime", threads: int = 1,
+                 native_path: str | os.PathLike | None = None) -> None:
         self.bundle = bundle
         self.encoder = Encoder(Tokenizer(bundle.tokenizer), bundle.vocab, bundle.oov_row)
         self.backend = open_backend(bundle, backend, threads)
         self._check_probe()
+        # the compiled fast path (runtime/fastpath.py) reads the same file; the Python encoder when it cannot
+        self.native, self.fast_path = (NativeEncoder.open(native_path) if native_path is not None
+                                       else (None, "python (no bundle file to hand to the native runtime)"))
+
+    def describe(self) -> dict:
+        """What runs: the backend, which encoder (the native fast path or Python, and why), the bundle's sha256."""
+        return {"backend": self.backend.name, "encoder": self.fast_path, "labels": list(self.labels),
+                "sha256": self.bundle.sha256}
+
+    def _encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """(B,) texts -> (B, T) ids and (B,) counts: natively when the fast path is open, else in Python."""
+        if self.native is not None:
+            encoded = self.native.encode(texts)
+            if encoded is not None:
+                return encoded
+        return self.encoder.encode(texts)
+
+    def _encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """As _encode, with each text's count of tokens the bundle knows (Encoder.encode_known)."""
+        if self.native is not None:
+            encoded = self.native.encode_known(texts)
+            if encoded is not None:
+                return encoded
+        return self.encoder.encode_known(texts)
 
     def _check_probe(self) -> None:
         """Re-run the packer's probe: its id sequences (a backend that computes differently is refused at load),
@@ -88,8 +114,8 @@ class Classifier:
         """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call."""
         texts = as_texts(texts)
         if len(texts) <= CALL_TEXTS:
-            return self.backend.run(*self.encoder.encode(texts))  # (B, T) ids, (B,) counts in
-        parts = [self.backend.run(*self.encoder.encode(texts[i : i + CALL_TEXTS]))
+            return self.backend.run(*self._encode(texts))  # (B, T) ids, (B,) counts in
+        parts = [self.backend.run(*self._encode(texts[i : i + CALL_TEXTS]))
                  for i in range(0, len(texts), CALL_TEXTS)]
         return np.concatenate([p for p, _ in parts]), np.concatenate([z for _, z in parts])  # (B, C) each
 
@@ -108,7 +134,7 @@ class Classifier:
         texts = as_texts(texts)
         probs_parts, known_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
-            ids, counts, known = self.encoder.encode_known(texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            ids, counts, known = self._encode_known(texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
             probs_parts.append(self.backend.run(ids, counts)[0])  # (b, C)
             known_parts.append(known)
         probs, known = np.concatenate(probs_parts), np.concatenate(known_parts)  # (B, C), (B,)
@@ -145,4 +171,4 @@ def load(path: str | os.PathLike, backend: str = "onnxruntime", threads: int = 1
         raise DanpackError(f"backend {backend!r} is not one of {BACKENDS}")
     if not isinstance(threads, int) or isinstance(threads, bool) or not 1 <= threads <= MAX_THREADS:
         raise DanpackError(f"threads must be an integer from 1 to {MAX_THREADS}, found {threads!r}")
-    return Classifier(read_bundle(path), backend, threads)
+    return Classifier(read_bundle(path), backend, threads, native_path=path)

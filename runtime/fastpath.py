@@ -1,0 +1,142 @@
+"""The compiled fast path: tokenization and id mapping by the native runtime (runtime/native, C99) through ctypes.
+
+`pip install` builds the native library as the optional extension `danpack.runtime._native` when a C compiler is
+there (it holds the C library only; it is loaded with ctypes, never imported). When it is absent, fails to load,
+refuses the bundle (e.g. a custom tokenizer pattern) or meets a text it cannot take as UTF-8 (a lone surrogate),
+the pure-Python encoder does the work instead, silently; `Classifier.describe()` says which path runs. The ids
+are the same either way (tests/test_native.py), so the backend's answers are identical. DANPACK_NATIVE=0 turns
+the fast path off.
+"""
+
+from __future__ import annotations
+
+import ctypes
+import importlib.util
+import os
+import threading
+from collections.abc import Sequence
+
+import numpy as np
+
+_LOCK = threading.Lock()
+# Below this many texts a call costs more in ctypes and numpy set-up than it saves (measured: the Python encoder wins
+# at 1 and 4 texts, the native one from 16 on): the Python encoder takes such calls.
+MIN_TEXTS = 8
+_LIB: list = []  # [ctypes.CDLL | None] once looked up
+
+
+class _Error(ctypes.Structure):
+    _fields_ = [("message", ctypes.c_char * 512)]
+
+
+def library() -> ctypes.CDLL | None:
+    """The built native library, or None (not built, not loadable, or turned off by DANPACK_NATIVE=0)."""
+    with _LOCK:
+        if not _LIB:
+            _LIB.append(_open_library())
+        return _LIB[0]
+
+
+def _open_library() -> ctypes.CDLL | None:
+    if os.environ.get("DANPACK_NATIVE", "1") == "0":
+        return None
+    try:
+        spec = importlib.util.find_spec("danpack.runtime._native")  # locates the file without importing it
+        if spec is None or not spec.origin:
+            return None
+        lib = ctypes.CDLL(spec.origin)
+    except (OSError, ImportError, ValueError):
+        return None
+    p, size, i64 = ctypes.c_void_p, ctypes.c_size_t, ctypes.c_void_p  # int64 arrays passed as addresses
+    lib.dp_load_path.restype, lib.dp_load_path.argtypes = p, [ctypes.c_char_p, ctypes.POINTER(_Error)]
+    lib.dp_free.restype, lib.dp_free.argtypes = None, [p]
+    lib.dp_scratch_new.restype, lib.dp_scratch_new.argtypes = p, [p]
+    lib.dp_scratch_free.restype, lib.dp_scratch_free.argtypes = None, [p]
+    lib.dp_encode_flat.restype = ctypes.c_longlong
+    lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, ctypes.POINTER(_Error)]
+    return lib
+
+
+class NativeEncoder:
+    """Texts -> (ids, counts) exactly as runtime.encode.Encoder.encode, computed by the native library."""
+
+    def __init__(self, lib: ctypes.CDLL, handle: int, path: str) -> None:
+        self._lib, self._handle, self.path = lib, handle, path
+        self._local = threading.local()  # one scratch space per thread: callers may share the classifier
+        self._scratches: list[int] = []  # all of them, freed with the encoder
+        self._scratch_lock = threading.Lock()
+
+    @classmethod
+    def open(cls, path: str | os.PathLike) -> tuple["NativeEncoder | None", str]:
+        """(encoder, why) — encoder None with the reason when the fast path cannot serve this bundle."""
+        lib = library()
+        if lib is None:
+            return None, "python (the native library is not built or DANPACK_NATIVE=0)"
+        err = _Error()
+        handle = lib.dp_load_path(os.fsencode(path), ctypes.byref(err))
+        if not handle:
+            return None, f"python (native refused the bundle: {err.message.decode('utf-8', 'replace')[:200]})"
+        return cls(lib, handle, str(path)), "native"
+
+    def __del__(self) -> None:
+        for scratch in getattr(self, "_scratches", ()):
+            self._lib.dp_scratch_free(scratch)
+        self._scratches = []
+        if getattr(self, "_handle", None):
+            self._lib.dp_free(self._handle)
+            self._handle = None
+
+    def _scratch(self) -> int:
+        scratch = getattr(self._local, "scratch", None)
+        if scratch is None:
+            scratch = self._lib.dp_scratch_new(self._handle)
+            if not scratch:
+                raise MemoryError("the native runtime could not allocate its scratch space")
+            with self._scratch_lock:
+                self._scratches.append(scratch)
+            self._local.scratch = scratch
+        return scratch
+
+    def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray] | None:
+        """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts; None when a text is not UTF-8-encodable."""
+        encoded = self.encode_known(texts)
+        return None if encoded is None else encoded[:2]
+
+    def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
+        """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode, and for
+        fewer than MIN_TEXTS texts."""
+        if len(texts) < MIN_TEXTS:
+            return None
+        try:
+            parts = [t.encode("utf-8") for t in texts]
+        except UnicodeEncodeError:  # a lone surrogate: the Python encoder takes it
+            return None
+        lengths = np.fromiter(map(len, parts), dtype=np.int64, count=len(parts))  # (B,)
+        offsets = np.zeros(len(parts) + 1, dtype=np.int64)  # (B + 1,)
+        np.cumsum(lengths, out=offsets[1:])
+        data = b"".join(parts)
+        counts = np.zeros(len(parts), dtype=np.int64)  # (B,)
+        known = np.zeros(len(parts), dtype=np.int64)  # (B,)
+        flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
+        err = _Error()
+        scratch = self._scratch()
+        while True:
+            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, len(parts),
+                                             flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
+                                             ctypes.byref(err))
+            if total < 0:
+                raise MemoryError(err.message.decode("utf-8", "replace"))
+            if total <= flat.size:
+                break
+            flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
+        return (*pad(flat[:total], counts), known)
+
+
+def pad(flat: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Flat ids (sum n,) and counts (B,) -> the (B, T) padded ids runtime.forward.encode_batch builds."""
+    if len(counts) == 1:
+        return (flat if flat.size else np.zeros(1, dtype=np.int64)).reshape(1, -1).copy(), counts
+    width = int(counts.max()) if len(counts) else 0
+    ids = np.zeros((len(counts), max(width, 1)), dtype=np.int64)  # (B, T)
+    ids[np.arange(ids.shape[1])[None, :] < counts[:, None]] = flat  # row-major fill of each row's first n slots
+    return ids, counts

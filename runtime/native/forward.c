@@ -1,0 +1,200 @@
+/* Texts -> tokens -> row ids (the bundle's unknown-word policy) -> int8 gather, mean, layers, softmax in float32,
+ * as runtime/encode.py and runtime/forward.py compute them (sums accumulate in double, then round to float32). */
+#include <math.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "bundle_impl.h"
+
+dp_scratch *dp_scratch_new(const dp_bundle *b) {
+    dp_scratch *s = calloc(1, sizeof(dp_scratch));
+    if (!s) return NULL;
+    size_t w = b->maxwidth ? b->maxwidth : 1;
+    s->acc = malloc(w * sizeof(double));
+    s->x = malloc(w * sizeof(float));
+    s->y = malloc(w * sizeof(float));
+    if (!s->acc || !s->x || !s->y) {
+        dp_scratch_free(s);
+        return NULL;
+    }
+    return s;
+}
+
+void dp_scratch_free(dp_scratch *s) {
+    if (!s) return;
+    dp_tok_work_free(&s->tok);
+    free(s->ids);
+    free(s->acc);
+    free(s->x);
+    free(s->y);
+    free(s);
+}
+
+void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, float *probs) {
+    size_t W = b->width;
+    double *acc = s->acc;
+    float *x = s->x, *y = s->y;
+    for (size_t d = 0; d < W; d++) acc[d] = 0.0;
+    for (size_t t = 0; t < n; t++) { /* (n, W) gathered rows summed; int8 rows dequantised by their scale */
+        size_t id = ids[t];
+        if (b->q) {
+            const int8_t *row = b->q + id * W;
+            double scale = b->scales[id];
+            for (size_t d = 0; d < W; d++) acc[d] += (double)(float)((float)row[d] * (float)scale);
+        } else {
+            const float *row = b->table + id * W;
+            for (size_t d = 0; d < W; d++) acc[d] += row[d];
+        }
+    }
+    float count = n ? (float)n : 1.0f;
+    for (size_t d = 0; d < W; d++) x[d] = (float)acc[d] / count; /* (W,) mean */
+    size_t width = W;
+    for (size_t l = 0; l < b->nlayers; l++) {
+        const dp_layer *L = &b->layers[l];
+        for (size_t o = 0; o < L->out; o++) {
+            double z;
+            if (L->weight) {
+                const float *w = L->weight + o * L->in;
+                z = 0.0;
+                for (size_t i = 0; i < L->in; i++) z += (double)x[i] * (double)w[i];
+                z = (double)(float)z;
+            } else {
+                z = x[o];
+            }
+            float v = (float)z + L->bias[o];
+            if (L->act == DP_ACT_RELU) v = v > 0.0f ? v : 0.0f;
+            else if (L->act == DP_ACT_TANH) v = tanhf(v);
+            y[o] = v;
+        }
+        memcpy(x, y, L->out * sizeof(float));
+        width = L->out;
+    }
+    float top = x[0];
+    for (size_t c = 1; c < width; c++)
+        if (x[c] > top) top = x[c];
+    float sum = 0.0f;
+    for (size_t c = 0; c < width; c++) {
+        probs[c] = expf(x[c] - top);
+        sum += probs[c];
+    }
+    for (size_t c = 0; c < width; c++) probs[c] /= sum;
+}
+
+/* Tokens of code points -> ids in s->ids (after the unknown-word policy); emit, when given, sees every token. */
+static int encode(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, dp_token_fn emit,
+                  void *ctx, dp_error *err) {
+    return dp_encode_cps(b, s, cps, n, count, NULL, emit, ctx, err);
+}
+
+/* known: tokens with a row of their own (not the unknown-word row, not left out), as Encoder.encode_known counts */
+int dp_encode_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, size_t *known,
+                  dp_token_fn emit, void *ctx, dp_error *err) {
+    dp_tok_work *w = &s->tok;
+    if (dp_tokenize_cps(&b->tok, cps, n, w)) return dp_fail(err, "out of memory while tokenizing"), -1;
+    if (w->nspans > s->idcap) {
+        size_t *ids = realloc(s->ids, w->nspans * sizeof(size_t));
+        if (!ids) return dp_fail(err, "out of memory"), -1;
+        s->ids = ids;
+        s->idcap = w->nspans;
+    }
+    size_t k = 0, found = 0;
+    for (size_t t = 0; t < w->nspans; t++) {
+        const dp_span *sp = &w->spans[t];
+        if (sp->len > (SIZE_MAX - 1) / 4) return dp_fail(err, "token too long"), -1;
+        size_t need = 4 * sp->len;
+        if (need > w->bytecap) {
+            char *nb = realloc(w->bytes, need);
+            if (!nb) return dp_fail(err, "out of memory"), -1;
+            w->bytes = nb;
+            w->bytecap = need;
+        }
+        size_t len = 0;
+        for (size_t i = 0; i < sp->len; i++) len += dp_utf8_put(w->norm.v[sp->start + i], w->bytes + len);
+        long row = dp_vocab_find(b, (const uint8_t *)w->bytes, len);
+        if (row >= 0) found++;
+        else row = b->oov_row;
+        if (emit) emit(ctx, w->bytes, len, row);
+        if (row >= 0) s->ids[k++] = (size_t)row;
+    }
+    *count = k;
+    if (known) *known = found;
+    return 0;
+}
+
+int dp_classify_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, float *probs, size_t *known,
+                    dp_error *err) {
+    size_t count;
+    if (dp_encode_cps(b, s, cps, n, &count, known, NULL, NULL, err)) return -1;
+    dp_forward(b, s, s->ids, count, probs);
+    return 0;
+}
+
+int dp_tokens_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, dp_token_fn emit, void *ctx,
+                  dp_error *err) {
+    size_t count;
+    return encode(b, s, cps, n, &count, emit, ctx, err);
+}
+
+static int with_text(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, size_t *known,
+                     dp_token_fn emit, void *ctx, dp_error *err) {
+    dp_scratch *own = NULL;
+    if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
+    int rc = dp_utf8_decode((const uint8_t *)text, len, &s->tok.cps);
+    if (rc) dp_fail(err, "out of memory");
+    else if (emit) rc = dp_tokens_cps(b, s, s->tok.cps.v, s->tok.cps.n, emit, ctx, err);
+    else rc = dp_classify_cps(b, s, s->tok.cps.v, s->tok.cps.n, probs, known, err);
+    dp_scratch_free(own);
+    return rc;
+}
+
+int dp_classify(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, dp_error *err) {
+    return with_text(b, s, text, len, probs, NULL, NULL, NULL, err);
+}
+
+int dp_classify_known(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, float *probs, size_t *known,
+                      dp_error *err) {
+    return with_text(b, s, text, len, probs, known, NULL, NULL, err);
+}
+
+int dp_tokens(const dp_bundle *b, dp_scratch *s, const char *text, size_t len, dp_token_fn emit, void *ctx,
+              dp_error *err) {
+    return with_text(b, s, text, len, NULL, NULL, emit, ctx, err);
+}
+
+int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *texts, const size_t *lens, size_t n,
+                      float *probs, dp_error *err) {
+    dp_scratch *own = NULL;
+    if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
+    int rc = 0;
+    for (size_t i = 0; i < n && !rc; i++) rc = dp_classify(b, s, texts[i], lens[i], probs + i * b->nlabels, err);
+    dp_scratch_free(own);
+    return rc;
+}
+
+long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err) {
+    dp_scratch *own = NULL;
+    if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
+    size_t total = 0;
+    long long rc = 0;
+    for (size_t i = 0; i < n; i++) {
+        if (offsets[i] < 0 || offsets[i + 1] < offsets[i]) {
+            dp_fail(err, "text %zu: offsets out of order", i);
+            rc = -1;
+            break;
+        }
+        size_t count, found;
+        if (dp_utf8_decode((const uint8_t *)data + offsets[i], (size_t)(offsets[i + 1] - offsets[i]), &s->tok.cps) ||
+            dp_encode_cps(b, s, s->tok.cps.v, s->tok.cps.n, &count, &found, NULL, NULL, err)) {
+            dp_fail(err, "out of memory");
+            rc = -1;
+            break;
+        }
+        counts[i] = (int64_t)count;
+        if (known) known[i] = (int64_t)found;
+        for (size_t k = 0; k < count; k++, total++)
+            if (total < cap) ids[total] = (int64_t)s->ids[k];
+    }
+    dp_scratch_free(own);
+    return rc < 0 ? rc : (long long)total;
+}

@@ -1,0 +1,531 @@
+/* JSON parsing with Python's json module's rules and messages, and writing as json.dumps / numpy's str() do. */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+#include <string.h>
+
+#include "json.h"
+
+/* Python raises RecursionError past its recursion limit (1000 frames, less the caller's): danpack-run's decoder
+ * gives up at this many nested arrays / objects. */
+#define JSON_MAX_DEPTH 985
+#define MAX_INT_DIGITS 4000
+
+typedef struct {
+    jdoc *d;
+    size_t pos;
+    int depth;
+} jp;
+
+static int fail_at(jp *p, const char *msg, size_t pos) {
+    snprintf(p->d->error, sizeof(p->d->error), "invalid JSON: %s (column %zu)", msg, pos + 1);
+    return -1;
+}
+
+static int fail_plain(jp *p, const char *msg) {
+    snprintf(p->d->error, sizeof(p->d->error), "invalid JSON: %s", msg);
+    return -1;
+}
+
+static long new_node(jp *p, int type) {
+    jdoc *d = p->d;
+    if (d->n == d->cap) {
+        size_t cap = d->cap ? 2 * d->cap : 16;
+        jnode *v = realloc(d->nodes, cap * sizeof(jnode));
+        if (!v) return -2;
+        d->nodes = v;
+        d->cap = cap;
+    }
+    memset(&d->nodes[d->n], 0, sizeof(jnode));
+    d->nodes[d->n].type = type;
+    return (long)d->n++;
+}
+
+static void skip_ws(jp *p) {
+    while (p->pos < p->d->tlen) {
+        uint32_t c = p->d->text[p->pos];
+        if (c != ' ' && c != '\t' && c != '\n' && c != '\r') break;
+        p->pos++;
+    }
+}
+
+static int hex4(const uint32_t *s, uint32_t *out) {
+    uint32_t v = 0;
+    for (int i = 0; i < 4; i++) {
+        uint32_t c = s[i], h;
+        if (c >= '0' && c <= '9') h = c - '0';
+        else if (c >= 'a' && c <= 'f') h = c - 'a' + 10;
+        else if (c >= 'A' && c <= 'F') h = c - 'A' + 10;
+        else return -1;
+        v = v * 16 + h;
+    }
+    *out = v;
+    return 0;
+}
+
+/* a string whose opening quote is at p->pos */
+static long parse_string(jp *p) {
+    jdoc *d = p->d;
+    size_t begin = p->pos, i = p->pos + 1, n = d->tlen;
+    const uint32_t *s = d->text;
+    long node = new_node(p, J_STR);
+    if (node < 0) return node;
+    size_t off = d->cps.n;
+    for (;;) {
+        if (i >= n) return fail_at(p, "Unterminated string starting", begin);
+        uint32_t c = s[i];
+        if (c == '"') break;
+        if (c < 0x20) return fail_at(p, "Invalid control character", i);
+        if (c != '\\') {
+            if (dp_u32_push(&d->cps, c)) return -2;
+            i++;
+            continue;
+        }
+        if (i + 1 >= n) return fail_at(p, "Unterminated string starting", begin);
+        uint32_t e = s[i + 1], out;
+        switch (e) {
+        case '"': out = '"'; break;
+        case '\\': out = '\\'; break;
+        case '/': out = '/'; break;
+        case 'b': out = '\b'; break;
+        case 'f': out = '\f'; break;
+        case 'n': out = '\n'; break;
+        case 'r': out = '\r'; break;
+        case 't': out = '\t'; break;
+        case 'u': {
+            /* as CPython's _json.c: 4 hex digits and at least one character after them */
+            if (i + 6 >= n || hex4(s + i + 2, &out)) return fail_at(p, "Invalid \\uXXXX escape", i + 1);
+            i += 6;
+            if (out >= 0xD800 && out <= 0xDBFF && i + 6 < n && s[i] == '\\' && s[i + 1] == 'u') {
+                uint32_t lo;
+                if (hex4(s + i + 2, &lo)) return fail_at(p, "Invalid \\uXXXX escape", i + 1);
+                if (lo >= 0xDC00 && lo <= 0xDFFF) {
+                    out = 0x10000 + ((out - 0xD800) << 10) + (lo - 0xDC00);
+                    i += 6;
+                }
+            }
+            if (dp_u32_push(&d->cps, out)) return -2;
+            continue;
+        }
+        default: return fail_at(p, "Invalid \\escape", i);
+        }
+        if (dp_u32_push(&d->cps, out)) return -2;
+        i += 2;
+    }
+    d->nodes[node].off = off;
+    d->nodes[node].len = d->cps.n - off;
+    p->pos = i + 1;
+    return node;
+}
+
+static int match(jp *p, const char *word) {
+    size_t k = strlen(word);
+    if (p->pos + k > p->d->tlen) return 0;
+    for (size_t i = 0; i < k; i++)
+        if (p->d->text[p->pos + i] != (uint32_t)(unsigned char)word[i]) return 0;
+    return 1;
+}
+
+static int is_digit(jp *p, size_t i) { return i < p->d->tlen && p->d->text[i] >= '0' && p->d->text[i] <= '9'; }
+
+static long parse_value(jp *p);
+
+static void link_child(jdoc *d, long parent, long *last, long child) {
+    if (*last < 0) d->nodes[parent].first = (size_t)child + 1;
+    else d->nodes[*last].next = (size_t)child + 1;
+    *last = child;
+    d->nodes[parent].count++;
+}
+
+static long parse_number(jp *p) {
+    jdoc *d = p->d;
+    size_t start = p->pos, i = p->pos;
+    if (i < d->tlen && d->text[i] == '-') i++;
+    if (!is_digit(p, i)) return fail_at(p, "Expecting value", start);
+    if (d->text[i] == '0') i++;
+    else
+        while (is_digit(p, i)) i++;
+    int is_float = 0;
+    if (i < d->tlen && d->text[i] == '.' && is_digit(p, i + 1)) {
+        i += 2;
+        while (is_digit(p, i)) i++;
+        is_float = 1;
+    }
+    if (i < d->tlen && (d->text[i] == 'e' || d->text[i] == 'E')) {
+        size_t j = i + 1;
+        if (j < d->tlen && (d->text[j] == '+' || d->text[j] == '-')) j++;
+        if (is_digit(p, j)) {
+            while (is_digit(p, j)) j++;
+            i = j;
+            is_float = 1;
+        }
+    }
+    size_t len = i - start;
+    long node = new_node(p, is_float ? J_FLOAT : J_INT);
+    if (node < 0) return node;
+    if (is_float) {
+        char buf[64], *tmp = len < sizeof(buf) ? buf : malloc(len + 1);
+        if (!tmp) return -2;
+        for (size_t k = 0; k < len; k++) tmp[k] = (char)d->text[start + k];
+        tmp[len] = 0;
+        double v = strtod(tmp, NULL);
+        if (isinf(v)) {
+            char msg[80];
+            snprintf(msg, sizeof(msg), "number %.24s is out of range", tmp);
+            if (tmp != buf) free(tmp);
+            return fail_plain(p, msg);
+        }
+        if (tmp != buf) free(tmp);
+        d->nodes[node].f = v;
+    } else {
+        if (len > MAX_INT_DIGITS) {
+            char msg[80];
+            snprintf(msg, sizeof(msg), "an integer of %zu digits is too long", len);
+            return fail_plain(p, msg);
+        }
+        d->nodes[node].off = start;
+        d->nodes[node].len = len;
+    }
+    p->pos = i;
+    return node;
+}
+
+static long parse_value(jp *p) {
+    jdoc *d = p->d;
+    if (p->pos >= d->tlen) return fail_at(p, "Expecting value", p->pos);
+    uint32_t c = d->text[p->pos];
+    if (c == '"') return parse_string(p);
+    if (c == '{' || c == '[') {
+        if (++p->depth > JSON_MAX_DEPTH) return fail_plain(p, "nested too deeply");
+        int obj = c == '{';
+        long node = new_node(p, obj ? J_OBJ : J_ARR), last = -1;
+        if (node < 0) return node;
+        p->pos++;
+        skip_ws(p);
+        uint32_t close = obj ? '}' : ']';
+        if (p->pos < d->tlen && d->text[p->pos] == close) {
+            p->pos++;
+            p->depth--;
+            return node;
+        }
+        for (;;) {
+            if (obj) {
+                if (p->pos >= d->tlen || d->text[p->pos] != '"')
+                    return fail_at(p, "Expecting property name enclosed in double quotes", p->pos);
+                long key = parse_string(p);
+                if (key < 0) return key;
+                link_child(d, node, &last, key);
+                skip_ws(p);
+                if (p->pos >= d->tlen || d->text[p->pos] != ':') return fail_at(p, "Expecting ':' delimiter", p->pos);
+                p->pos++;
+                skip_ws(p);
+            }
+            long v = parse_value(p);
+            if (v < 0) return v;
+            link_child(d, node, &last, v);
+            skip_ws(p);
+            if (p->pos < d->tlen && d->text[p->pos] == close) {
+                p->pos++;
+                break;
+            }
+            if (p->pos >= d->tlen || d->text[p->pos] != ',') return fail_at(p, "Expecting ',' delimiter", p->pos);
+            p->pos++;
+            skip_ws(p);
+        }
+        p->depth--;
+        return node;
+    }
+    if (c == 'n' && match(p, "null")) return p->pos += 4, new_node(p, J_NULL);
+    if (c == 't' && match(p, "true")) return p->pos += 4, new_node(p, J_TRUE);
+    if (c == 'f' && match(p, "false")) return p->pos += 5, new_node(p, J_FALSE);
+    if (c == 'N' && match(p, "NaN")) return fail_plain(p, "NaN is not a JSON number");
+    if (c == 'I' && match(p, "Infinity")) return fail_plain(p, "Infinity is not a JSON number");
+    if (c == '-' && match(p, "-Infinity")) return fail_plain(p, "-Infinity is not a JSON number");
+    if (c == '-' || (c >= '0' && c <= '9')) return parse_number(p);
+    return fail_at(p, "Expecting value", p->pos);
+}
+
+int dp_json_parse(jdoc *doc, const uint32_t *text, size_t n) {
+    doc->n = 0;
+    doc->cps.n = 0;
+    doc->text = text;
+    doc->tlen = n;
+    doc->error[0] = 0;
+    jp p = {doc, 0, 0};
+    skip_ws(&p);
+    long root = parse_value(&p);
+    if (root == -2) return -2;
+    if (root < 0) return -1;
+    skip_ws(&p);
+    if (p.pos != n) return fail_at(&p, "Extra data", p.pos);
+    return 0;
+}
+
+void dp_json_free(jdoc *doc) {
+    free(doc->nodes);
+    free(doc->cps.v);
+    memset(doc, 0, sizeof(*doc));
+}
+
+const jnode *dp_json_node(const jdoc *doc, size_t index) { return index ? &doc->nodes[index - 1] : NULL; }
+
+int dp_cps_eq_utf8(const uint32_t *s, size_t n, const char *z, size_t zn) {
+    char tmp[4];
+    size_t pos = 0;
+    for (size_t i = 0; i < n; i++) {
+        size_t k = dp_utf8_put(s[i], tmp);
+        if (pos + k > zn || memcmp(z + pos, tmp, k) != 0) return 0;
+        pos += k;
+    }
+    return pos == zn;
+}
+
+/* ---- writing ---- */
+
+void sb_put(sbuf *b, const char *s, size_t n) {
+    if (b->failed) return;
+    if (b->n + n > b->cap) {
+        size_t cap = b->cap ? b->cap : 256;
+        while (cap < b->n + n) cap *= 2;
+        char *p = realloc(b->p, cap);
+        if (!p) {
+            b->failed = 1;
+            return;
+        }
+        b->p = p;
+        b->cap = cap;
+    }
+    memcpy(b->p + b->n, s, n);
+    b->n += n;
+}
+
+void sb_str(sbuf *b, const char *z) { sb_put(b, z, strlen(z)); }
+
+static void put_escaped(sbuf *b, uint32_t c) {
+    char tmp[16];
+    switch (c) {
+    case '"': sb_put(b, "\\\"", 2); return;
+    case '\\': sb_put(b, "\\\\", 2); return;
+    case '\n': sb_put(b, "\\n", 2); return;
+    case '\r': sb_put(b, "\\r", 2); return;
+    case '\t': sb_put(b, "\\t", 2); return;
+    case '\b': sb_put(b, "\\b", 2); return;
+    case '\f': sb_put(b, "\\f", 2); return;
+    default: break;
+    }
+    if (c < 0x20) {
+        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
+        sb_put(b, tmp, 6);
+    } else if (c >= 0xD800 && c <= 0xDFFF) { /* json.dumps keeps it; encode("utf-8", "backslashreplace") escapes it */
+        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
+        sb_put(b, tmp, 6);
+    } else {
+        sb_put(b, tmp, dp_utf8_put(c, tmp));
+    }
+}
+
+void sb_json_cps(sbuf *b, const uint32_t *s, size_t n) {
+    sb_put(b, "\"", 1);
+    for (size_t i = 0; i < n; i++) {
+        uint32_t c = s[i];
+        if (c >= 0x20 && c < 0x80 && c != '"' && c != '\\') {
+            char ch = (char)c;
+            sb_put(b, &ch, 1);
+        } else {
+            put_escaped(b, c);
+        }
+    }
+    sb_put(b, "\"", 1);
+}
+
+void sb_json_utf8(sbuf *b, const char *s, size_t n) {
+    dp_u32buf tmp = {0};
+    if (dp_utf8_decode((const uint8_t *)s, n, &tmp)) {
+        b->failed = 1;
+        return;
+    }
+    sb_json_cps(b, tmp.v, tmp.n);
+    free(tmp.v);
+}
+
+/* shortest digits of v that read back as v (float32 when single): digits (no dot) and decimal exponent of the
+ * first digit */
+static int round_trips(double v, int single, int prec, char *buf, size_t cap) {
+    snprintf(buf, cap, "%.*e", prec - 1, v);
+    return single ? strtof(buf, NULL) == (float)v : strtod(buf, NULL) == v;
+}
+
+static void shortest(double v, int single, char *digits, int *exp10) {
+    /* the nearest p-digit decimal reads back as v for every p from the shortest one up (it is never farther from v
+     * than the shorter one padded with zeros), so the shortest p is found by bisection */
+    char buf[40];
+    int lo = 1, hi = single ? 9 : 17;
+    while (lo < hi) {
+        int mid = (lo + hi) / 2;
+        if (round_trips(v, single, mid, buf, sizeof(buf))) hi = mid;
+        else lo = mid + 1;
+    }
+    round_trips(v, single, lo, buf, sizeof(buf));
+    const char *s = buf;
+    if (*s == '-') s++;
+    size_t k = 0;
+    for (; *s && *s != 'e'; s++)
+        if (*s != '.') digits[k++] = *s;
+    while (k > 1 && digits[k - 1] == '0') k--;
+    digits[k] = 0;
+    *exp10 = atoi(s + 1);
+}
+
+static void put_positional(sbuf *b, const char *digits, int e) {
+    size_t nd = strlen(digits);
+    if (e < 0) {
+        sb_str(b, "0.");
+        for (int i = -1; i > e; i--) sb_put(b, "0", 1);
+        sb_put(b, digits, nd);
+        return;
+    }
+    size_t whole = (size_t)e + 1;
+    if (nd <= whole) {
+        sb_put(b, digits, nd);
+        for (size_t i = nd; i < whole; i++) sb_put(b, "0", 1);
+        sb_str(b, ".0");
+    } else {
+        sb_put(b, digits, whole);
+        sb_put(b, ".", 1);
+        sb_put(b, digits + whole, nd - whole);
+    }
+}
+
+static void put_scientific(sbuf *b, const char *digits, int e) {
+    char tmp[16];
+    sb_put(b, digits, 1);
+    if (digits[1]) {
+        sb_put(b, ".", 1);
+        sb_str(b, digits + 1);
+    }
+    snprintf(tmp, sizeof(tmp), "e%c%02d", e < 0 ? '-' : '+', e < 0 ? -e : e);
+    sb_str(b, tmp);
+}
+
+void sb_f32(sbuf *b, float v) {
+    if (isnan(v)) return sb_str(b, "nan");
+    if (isinf(v)) return sb_str(b, v < 0 ? "-inf" : "inf");
+    if (signbit(v)) sb_put(b, "-", 1);
+    double a = fabs((double)v);
+    if (a == 0.0) return sb_str(b, "0.0");
+    char digits[40];
+    int e;
+    shortest(a, 1, digits, &e);
+    if (a < 1e16 && a >= 1e-4) put_positional(b, digits, e);
+    else put_scientific(b, digits, e);
+}
+
+/* float as Python's repr() writes it */
+static void sb_f64(sbuf *b, double v) {
+    if (signbit(v)) sb_put(b, "-", 1);
+    double a = fabs(v);
+    if (a == 0.0) return sb_str(b, "0.0");
+    char digits[40];
+    int e;
+    shortest(a, 0, digits, &e);
+    if (e < -4 || e >= 16) put_scientific(b, digits, e);
+    else put_positional(b, digits, e);
+}
+
+typedef struct {
+    const jdoc *doc;
+    size_t key, value, order;
+} member;
+
+static int cmp_member(const void *x, const void *y) {
+    const member *a = x, *c = y;
+    const jnode *ka = &a->doc->nodes[a->key], *kc = &c->doc->nodes[c->key];
+    const uint32_t *sa = a->doc->cps.v + ka->off, *sc = c->doc->cps.v + kc->off;
+    size_t n = ka->len < kc->len ? ka->len : kc->len;
+    for (size_t i = 0; i < n; i++)
+        if (sa[i] != sc[i]) return sa[i] < sc[i] ? -1 : 1;
+    if (ka->len != kc->len) return ka->len < kc->len ? -1 : 1;
+    return (a->order > c->order) - (a->order < c->order);
+}
+
+void sb_json_value(sbuf *b, const jdoc *doc, size_t node) {
+    const jnode *v = &doc->nodes[node];
+    switch (v->type) {
+    case J_NULL: sb_str(b, "null"); return;
+    case J_TRUE: sb_str(b, "true"); return;
+    case J_FALSE: sb_str(b, "false"); return;
+    case J_FLOAT: sb_f64(b, v->f); return;
+    case J_STR: sb_json_cps(b, doc->cps.v + v->off, v->len); return;
+    case J_INT: {
+        const uint32_t *t = doc->text + v->off;
+        size_t n = v->len;
+        if (n == 2 && t[0] == '-' && t[1] == '0') n = 1, t++; /* int("-0") is 0 */
+        for (size_t i = 0; i < n; i++) {
+            char c = (char)t[i];
+            sb_put(b, &c, 1);
+        }
+        return;
+    }
+    case J_ARR: {
+        sb_put(b, "[", 1);
+        size_t i = 0;
+        for (size_t k = v->first; k; k = doc->nodes[k - 1].next, i++) {
+            if (i) sb_put(b, ",", 1);
+            sb_json_value(b, doc, k - 1);
+        }
+        sb_put(b, "]", 1);
+        return;
+    }
+    default: break;
+    }
+    /* object: each key once, where it first appeared, with the value it last had (a Python dict) */
+    size_t n = v->count / 2;
+    member *m = malloc((n ? n : 1) * sizeof(member));
+    size_t *pick = malloc((n ? n : 1) * sizeof(size_t));
+    if (!m || !pick) {
+        free(m);
+        free(pick);
+        b->failed = 1;
+        return;
+    }
+    size_t i = 0;
+    for (size_t k = v->first; k; k = doc->nodes[doc->nodes[k - 1].next - 1].next, i++) {
+        m[i].doc = doc;
+        m[i].key = k - 1;
+        m[i].value = doc->nodes[k - 1].next - 1;
+        m[i].order = i;
+    }
+    qsort(m, n, sizeof(member), cmp_member);
+    /* pick[first order] = value of the group's last member; others marked skipped */
+    for (i = 0; i < n; i++) pick[i] = SIZE_MAX;
+    for (i = 0; i < n;) {
+        size_t j = i;
+        while (j + 1 < n && cmp_member(&(member){doc, m[j + 1].key, 0, 0}, &(member){doc, m[i].key, 0, 0}) == 0) j++;
+        pick[m[i].order] = j; /* index into m of the last member */
+        i = j + 1;
+    }
+    /* write in first-appearance order: walk orders, looking up the sorted entry */
+    size_t *key_at = malloc((n ? n : 1) * sizeof(size_t));
+    if (!key_at) {
+        free(m);
+        free(pick);
+        b->failed = 1;
+        return;
+    }
+    for (i = 0; i < n; i++) key_at[m[i].order] = m[i].key;
+    sb_put(b, "{", 1);
+    int first = 1;
+    for (i = 0; i < n; i++) {
+        if (pick[i] == SIZE_MAX) continue;
+        if (!first) sb_put(b, ",", 1);
+        first = 0;
+        const jnode *key = &doc->nodes[key_at[i]];
+        sb_json_cps(b, doc->cps.v + key->off, key->len);
+        sb_put(b, ":", 1);
+        sb_json_value(b, doc, m[pick[i]].value);
+    }
+    sb_put(b, "}", 1);
+    free(key_at);
+    free(m);
+    free(pick);
+}

