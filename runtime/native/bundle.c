@@ -18,6 +18,12 @@
 #define MAX_VOCAB_BYTES_PER_ROW 256
 #define VOCAB_SLACK_BYTES 4096
 #define PROBE_TOLERANCE 1e-4
+#define MAX_TOKENS_LIMIT 1024 /* runtime/tokenize.py MAX_TOKENS_LIMIT */
+#define MAX_LABELS 1024 /* runtime/safe_text.py MAX_LABELS */
+#define MAX_LABEL_CHARS 100 /* runtime/safe_text.py MAX_LABEL_CHARS */
+#define MAX_TOKEN_CHARS 256 /* runtime/safe_text.py MAX_TOKEN_CHARS */
+#define MAX_PROBE_TEXTS 32 /* runtime/bundle.py MAX_PROBE_TEXTS */
+#define MAX_PROBE_TEXT_CHARS 16384 /* runtime/bundle.py MAX_PROBE_TEXT_CHARS */
 #define NOTE_COPY "; copy it again from the packer's output"
 
 void dp_fail(dp_error *err, const char *fmt, ...) {
@@ -194,6 +200,8 @@ done:
     return rc ? -1 : 0;
 }
 
+static size_t utf8_chars(const uint8_t *p, size_t len);
+
 static int index_vocab(const char *src, dp_bundle *b, dp_error *err) {
     size_t n = 0;
     if (b->vocab_len) {
@@ -218,6 +226,9 @@ static int index_vocab(const char *src, dp_bundle *b, dp_error *err) {
     }
     for (row = 0; row < n; row++) {
         const uint8_t *tok = (const uint8_t *)b->vocab_text + b->tok_off[row];
+        if (utf8_chars((const uint8_t *)b->vocab_text + b->tok_off[row], b->tok_len[row]) > MAX_TOKEN_CHARS)
+            return dp_fail(err, "%s: manifest vocabulary token %zu is longer than %d characters", src, row + 1,
+                           MAX_TOKEN_CHARS), -1;
         if (b->tok_len[row] == 0)
             return dp_fail(err, "%s: manifest vocabulary holds an empty token (line %zu); tokens must be non-empty", src,
                            row + 1), -1;
@@ -268,8 +279,9 @@ static int check_tokenizer(const char *src, const dp_mp *t, dp_tok_spec *spec, d
             if (c < 0) return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (case)", src), -1;
             spec->kase = c;
         } else if (dp_mp_is(k, "max_tokens")) {
-            if (!is_int(v) || (!v->huge && v->i < 1))
-                return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (max_tokens must be an integer >= 1)", src), -1;
+            if (!is_int(v) || v->huge || v->i < 1 || v->i > MAX_TOKENS_LIMIT)
+                return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (max_tokens must be an integer from 1 to %d)",
+                               src, MAX_TOKENS_LIMIT), -1;
             spec->max_tokens = v->huge || (uint64_t)v->i > SIZE_MAX ? SIZE_MAX : (size_t)v->i;
         } else if (dp_mp_is(k, "pattern")) {
             if (v->type != MP_STR || v->len == 0)
@@ -315,9 +327,57 @@ static int too_deep(const dp_mp *v, int depth) {
     return 0;
 }
 
+/* A label holds a character runtime/safe_text.py calls unsafe: C0 and C1 controls, the line and paragraph
+ * separators, and the format characters a terminal or a bidi renderer acts on (soft hyphen, Arabic letter mark,
+ * zero-width and directional marks, bidi embeddings, overrides and isolates, invisible operators, the byte-order
+ * mark). A subset of Python's rule (every Cc, Cf, Zl, Zp, Co, Cs and Cn): the Python reader is the reference. */
+static int has_unsafe_char(const uint8_t *p, size_t len) {
+    for (size_t i = 0; i < len;) {
+        uint32_t c = p[i];
+        size_t n = c < 0x80 ? 1 : c < 0xE0 ? 2 : c < 0xF0 ? 3 : 4;
+        if (i + n > len) return 1;
+        if (n == 2) c = ((c & 0x1F) << 6) | (p[i + 1] & 0x3F);
+        if (n == 3) c = ((c & 0x0F) << 12) | ((uint32_t)(p[i + 1] & 0x3F) << 6) | (p[i + 2] & 0x3F);
+        if (n == 4) c = ((c & 0x07) << 18) | ((uint32_t)(p[i + 1] & 0x3F) << 12) | ((uint32_t)(p[i + 2] & 0x3F) << 6)
+                        | (p[i + 3] & 0x3F);
+        if (c < 0x20 || (c >= 0x7F && c <= 0x9F) || c == 0xAD || c == 0x061C || c == 0x180E
+            || (c >= 0x200B && c <= 0x200F) || (c >= 0x2028 && c <= 0x202E) || (c >= 0x2060 && c <= 0x2064)
+            || (c >= 0x2066 && c <= 0x206F) || c == 0xFEFF || (c >= 0xE000 && c <= 0xF8FF) || (c >= 0xFFF9 && c <= 0xFFFB))
+            return 1;
+        i += n;
+    }
+    return 0;
+}
+
+/* Characters of a UTF-8 string: its bytes that do not continue a sequence (Python counts str length so). */
+static size_t utf8_chars(const uint8_t *p, size_t len) {
+    size_t n = 0;
+    for (size_t i = 0; i < len; i++) n += (p[i] & 0xC0) != 0x80;
+    return n;
+}
+
+static int check_probe_probs(const dp_mp *p, size_t classes) {
+    int ok = p->type == MP_ARR && p->len == classes;
+    for (size_t j = 0; ok && j < p->len; j++)
+        ok = p->items[j].type == MP_FLOAT && p->items[j].f >= 0.0 && p->items[j].f <= 1.0;
+    return ok;
+}
+
 static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t classes, dp_error *err) {
-    static const char *const keys[] = {"ids", "probs"};
-    if (!dp_mp_keys_are(probe, keys, 2)) return dp_fail(err, "%s: manifest field 'probe' must be a map with ids and probs", src), -1;
+    static const char *const keys[] = {"ids", "probs", "text_probs", "texts"};
+    if (!dp_mp_keys_are(probe, keys, 4))
+        return dp_fail(err, "%s: manifest field 'probe' must be a map with ids, probs, text_probs, texts", src), -1;
+    const dp_mp *texts = dp_mp_get(probe, "texts"), *text_probs = dp_mp_get(probe, "text_probs");
+    int ok = texts->type == MP_ARR && text_probs->type == MP_ARR && texts->len == text_probs->len
+             && texts->len <= MAX_PROBE_TEXTS;
+    for (size_t i = 0; ok && i < texts->len; i++)
+        ok = texts->items[i].type == MP_STR && utf8_chars(texts->items[i].p, texts->items[i].len) <= MAX_PROBE_TEXT_CHARS;
+    if (!ok)
+        return dp_fail(err, "%s: manifest probe texts and text_probs must be lists of the same length (at most %d), "
+                            "the texts strings of at most %d characters", src, MAX_PROBE_TEXTS, MAX_PROBE_TEXT_CHARS), -1;
+    for (size_t i = 0; i < text_probs->len; i++)
+        if (!check_probe_probs(&text_probs->items[i], classes))
+            return dp_fail(err, "%s: manifest probe probabilities must be %zu floats in [0, 1] per text", src, classes), -1;
     const dp_mp *ids = dp_mp_get(probe, "ids"), *probs = dp_mp_get(probe, "probs");
     if (ids->type != MP_ARR || probs->type != MP_ARR || ids->len != probs->len || ids->len < 1 || ids->len > 64)
         return dp_fail(err, "%s: manifest probe ids and probs must be lists of the same length (1 to 64): without a "
@@ -327,10 +387,8 @@ static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t 
         int ok = seq->type == MP_ARR && seq->len <= 64;
         for (size_t j = 0; ok && j < seq->len; j++) ok = is_count(&seq->items[j]) && (uint64_t)seq->items[j].i < rows;
         if (!ok) return dp_fail(err, "%s: manifest probe ids must be lists of at most 64 row ids in [0, %zu)", src, rows), -1;
-        ok = p->type == MP_ARR && p->len == classes;
-        for (size_t j = 0; ok && j < p->len; j++)
-            ok = p->items[j].type == MP_FLOAT && p->items[j].f >= 0.0 && p->items[j].f <= 1.0;
-        if (!ok) return dp_fail(err, "%s: manifest probe probabilities must be %zu floats in [0, 1] per sequence", src, classes), -1;
+        if (!check_probe_probs(p, classes))
+            return dp_fail(err, "%s: manifest probe probabilities must be %zu floats in [0, 1] per sequence", src, classes), -1;
     }
     return 0;
 }
@@ -417,9 +475,19 @@ static int check_manifest(const char *src, const dp_mp *m, const tensors *ts, dp
 #define FAIL(...) return (snprintf(err->message, sizeof(err->message), "%s: manifest ", src), \
                           dp_fail_append(err, __VA_ARGS__), -1)
     const dp_mp *labels = dp_mp_get(m, "labels");
-    int ok = labels && labels->type == MP_ARR && labels->len >= 2;
+    int ok = labels && labels->type == MP_ARR && labels->len >= 2 && labels->len <= MAX_LABELS;
     for (size_t i = 0; ok && i < labels->len; i++) ok = labels->items[i].type == MP_STR;
-    if (!ok) FAIL("field 'labels' must list at least 2 label strings");
+    if (!ok) FAIL("field 'labels' must list 2 to %d label strings", MAX_LABELS);
+    for (size_t i = 0; i < labels->len; i++) {
+        const dp_mp *l = &labels->items[i];
+        if (l->len == 0) FAIL("label %zu is empty", i + 1);
+        if (utf8_chars(l->p, l->len) > MAX_LABEL_CHARS) FAIL("label %zu is longer than %d characters", i + 1, MAX_LABEL_CHARS);
+        if (has_unsafe_char(l->p, l->len))
+            FAIL("label %zu holds a control, format or line-separator character; they are not allowed in labels", i + 1);
+        for (size_t j = 0; j < i; j++)
+            if (labels->items[j].len == l->len && !memcmp(labels->items[j].p, l->p, l->len))
+                FAIL("repeats the label %zu; labels must be unique", i + 1);
+    }
     if (check_tokenizer(src, dp_mp_get(m, "tokenizer"), &b->tok, err)) return -1;
     const dp_mp *oov = dp_mp_get(m, "oov"), *meta = dp_mp_get(m, "table"), *layers = dp_mp_get(m, "layers");
     const dp_mp *policy = dp_mp_get(oov, "policy");
@@ -563,6 +631,25 @@ static int run_probe(const char *src, const dp_bundle *b, const dp_mp *probe, dp
     if (!rc && !(worst <= PROBE_TOLERANCE)) {
         dp_fail(err, "%s: the native runtime disagrees with the packer on the bundle's probe (max difference %.2e > "
                      "0.0001); the bundle or the runtime is damaged", src, worst);
+        rc = -1;
+    }
+    /* the probe texts, through tokenizer and vocabulary: a permuted or edited vocabulary is refused */
+    const dp_mp *texts = dp_mp_get(probe, "texts"), *text_probs = dp_mp_get(probe, "text_probs");
+    worst = 0.0;
+    for (size_t i = 0; !rc && i < texts->len; i++) {
+        if (dp_classify(b, s, (const char *)texts->items[i].p, texts->items[i].len, p, err)) {
+            rc = -1;
+            break;
+        }
+        for (size_t c = 0; c < b->nlabels; c++) {
+            double d = fabs((double)p[c] - (double)(float)text_probs->items[i].items[c].f);
+            if (!(d <= worst)) worst = d;
+        }
+    }
+    if (!rc && !(worst <= PROBE_TOLERANCE)) {
+        dp_fail(err, "%s: the native runtime disagrees with the packer on the bundle's probe texts (max difference "
+                     "%.2e > 0.0001) (its vocabulary or tokenizer is not the one the packer used); the bundle or the "
+                     "runtime is damaged", src, worst);
         rc = -1;
     }
     free(seq);
