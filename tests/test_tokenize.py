@@ -346,7 +346,7 @@ def test_spec_defaults():
 ])
 def test_spec_round_trip_through_dict_and_json(spec):
     data = spec.to_dict()
-    assert set(data) == {"normalization", "case", "pattern", "max_tokens"}
+    assert set(data) == {"normalization", "case", "pattern", "max_tokens", "unicode_version"}
     assert TokenizerSpec.from_dict(data) == spec
     # The dict is stored in dan.json / the manifest: it must survive JSON (stdlib json).
     assert TokenizerSpec.from_dict(json.loads(json.dumps(data))) == spec
@@ -412,7 +412,10 @@ def test_max_tokens_is_a_prefix_cap(text, cap):
 @FAST
 @given(st.one_of(tricky_text, any_text))
 def test_normalize_matches_stdlib_nfkc_then_lower(text):
-    assert TOK.normalize(text) == unicodedata.normalize("NFKC", text).lower()
+    # unassigned code points (category Cn in unicodedata, whose tables on Python 3.11 are the pinned 14.0.0)
+    # become spaces first: tests/test_unicode_pin.py
+    pinned = "".join(" " if unicodedata.category(c) == "Cn" else c for c in text)
+    assert TOK.normalize(text) == unicodedata.normalize("NFKC", pinned).lower()
 
 
 @FAST
