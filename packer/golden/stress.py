@@ -88,9 +88,13 @@ def vocab_cases(vocab: Sequence[str], spec: TokenizerSpec) -> list[Case]:
         ("vocab-emoji-vs16", " ".join(f"{w}\u2764\ufe0f" for w in words)),
         ("vocab-new-after-14", "\U00011f04".join(words)),
         ("vocab-typographic", " ".join(w.replace("'", "\u2019") for w in words)),
-        ("vocab-sharp-s-sigma", " ".join(w.upper().replace("SS", "\u00df").replace("S", "\u03a3") for w in words)),
         ("vocab-dotted-i", " ".join(w.upper().replace("I", "\u0130") for w in words)),
     ]
+    # "ss" spelt with a sharp s: lower() keeps "ß" (another token), casefold() turns it back into "ss"
+    sharp = [t for t in vocab if "ss" in t][:VOCAB_WORDS]
+    if sharp:
+        cases.append(("vocab-sharp-s", " ".join(t.upper().replace("SS", "\u00df") for t in sharp)))
+        cases.append(("vocab-capital-sharp-s", " ".join(t.replace("ss", "\u1e9e") for t in sharp)))
     for cap_extra in (0, 1, 7):  # exactly at, just past and well past max_tokens
         n = spec.max_tokens + cap_extra
         cases.append((f"past-max-tokens+{cap_extra}", " ".join(words[i % len(words)] for i in range(n))))
