@@ -42,6 +42,7 @@ FIXED: tuple[Case, ...] = (
     ("emoji-modifiers-flags-keycaps", "\U0001f44d\U0001f3fd \U0001f1e9\U0001f1ea 4\ufe0f\u20e3"),
     ("punctuation", "fast!!! slow... (maybe) \u2014 \u00abbroken\u00bb \u00bfok?"),
     ("underscore-and-hyphens", "type_2 type-2 --flag a-b-c -x- ccs\u2010combo"),
+    ("ascii-edges", "_under_score 'quoted' don''t a--b -lead trail- it's 5.0 x_y A'B @home #1 $5 ~tilde"),
     ("digits-other-scripts", "\u0663\u0664 \u096a\u096b \uff15\uff16 \U0001d7d9"),
     ("scripts", "\u041f\u0420\u0418\u0412\u0415\u0422 \u4f60\u597d \u0645\u0631\u062d\u0628\u0627 \u0928\u092e\u0938\u094d\u0924\u0947 \u0e2a\u0e27\u0e31\u0e2a\u0e14\u0e35"),
     ("controls", "a\u0000b\u0007c\u001bd\u007fe\u009ff"),
