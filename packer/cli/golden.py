@@ -52,8 +52,11 @@ def _write(bundle: Path, output: Path, texts: list[Path], text_field: str, backe
     from danpack.golden.records import make_header, make_records, render_golden
     from danpack.golden.stress import stress_cases
     from danpack.runtime.classifier import load
-    from danpack.textfile import iter_records
+    from danpack.textfile import format_warning, iter_records
 
+    for path in texts:
+        if path.is_file() and (warning := format_warning(path)):
+            typer.echo(f"danpack: warning: {warning}", err=True)
     try:
         check_outputs({"--output": output}, {"BUNDLE": bundle, **{f"--texts {p}": p for p in texts}})
         extra = [r[text_field] for p in texts for r in iter_records(p, text_field)]
