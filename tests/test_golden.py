@@ -254,6 +254,8 @@ def test_bad_input_exits_2_with_a_message(demo, tmp_path):
         "short": (write_outputs(tmp_path / "short.jsonl", good[:-1]), "holds"),
         "no-probs": (write_outputs(tmp_path / "np.jsonl", [{"ids": o["ids"]} for o in good]), "needs \"probs\""),
         "not-json": (tmp_path / "bad.jsonl", "line 1 is not a JSON object"),
+        "out-of-order": (write_outputs(tmp_path / "order.jsonl", [{**o, "n": len(good) - 1 - i} for i, o in enumerate(good)]),
+                         "golden file's order"),
     }
     (tmp_path / "bad.jsonl").write_text("{oops\n", encoding="utf-8")
     for name, (path, message) in cases.items():

@@ -2,7 +2,8 @@
 
 The host writes one JSON object per golden record, in the same order: "ids" (its row ids after the unknown-
 word policy) and "probs" (in label order) are required; "normalized" and "tokens" are compared when given,
-which names the stage of a difference more exactly. The stage of a record is the first step that differs:
+which names the stage of a difference more exactly; "n" (the record's number), when given, must match its
+position. The stage of a record is the first step that differs:
 normalisation, split (tokens), mapping (ids), model (probs beyond the tolerance, or the label).
 """
 
@@ -50,6 +51,9 @@ class Verdict:
 
 def _check_output(i: int, out: dict, classes: int, source: str) -> None:
     """A host record must hold ids (integers) and probs (one number per label)."""
+    if "n" in out and out["n"] != i:  # a host that echoes the record number: the order is checked too
+        raise GoldenError(f"{source}: record {i} (line {i + 1}) has \"n\": {out['n']!r}; write the outputs in "
+                          "the golden file's order, one per record")
     ids, probs = out.get("ids"), out.get("probs")
     if not isinstance(ids, list) or not all(isinstance(x, int) and not isinstance(x, bool) for x in ids):
         raise GoldenError(f"{source}: record {i} (line {i + 1}) needs \"ids\": a list of integers (the row ids)")
