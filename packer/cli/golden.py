@@ -8,28 +8,30 @@ from typing import Optional
 import typer
 
 from danpack.cli.common import fail
-from danpack.cli.root import app
+from danpack.cli.root import PlainCommand, app
 from danpack.runtime.errors import DanpackError
 
 # The library (numpy, onnxruntime, the golden kit) is imported inside the command: `danpack --help` stays fast.
 
 
-@app.command("golden")
+@app.command("golden", cls=PlainCommand,
+             short_help="Write a bundle's conformance records, or check a host's outputs against them.")
 def golden_command(
-    bundle: Optional[Path] = typer.Argument(None, help="Bundle file written by `danpack pack` (to write records)."),
-    output: Optional[Path] = typer.Option(None, "--output", "-o", help="Golden JSONL file to write."),
-    texts: list[Path] = typer.Option([], "--texts", help="More texts of your own (plain lines, .jsonl, .csv or .tsv); repeatable."),
-    text_field: str = typer.Option("text", help="Field (JSONL) or column (CSV/TSV) holding the text in --texts."),
-    backend: str = typer.Option("onnxruntime", help="Runtime backend that computes the records: onnxruntime or numpy."),
-    verify: Optional[Path] = typer.Option(None, "--verify", help="Golden JSONL file to check a host against (with --outputs)."),
-    outputs: Optional[Path] = typer.Option(None, "--outputs", help="The host's JSONL: one object per golden record, same order, with ids and probs (and normalized, tokens when it can)."),
-    show: int = typer.Option(10, "--show", min=0, help="How many differing records to print."),
+    bundle: Optional[Path] = typer.Argument(None, metavar="BUNDLE", help="Bundle file written by `danpack pack` (to write records)."),
+    output: Optional[Path] = typer.Option(None, "--output", "-o", metavar="FILE", help="Golden JSONL file to write."),
+    texts: list[Path] = typer.Option([], "--texts", metavar="FILE", help="More texts of your own (plain lines, .jsonl, .csv or .tsv); repeatable."),
+    text_field: str = typer.Option("text", metavar="NAME", help="Field (JSONL) or column (CSV/TSV) holding the text in your text files."),
+    backend: str = typer.Option("onnxruntime", metavar="onnxruntime|numpy", help="Runtime backend that computes the records: onnxruntime or numpy."),
+    verify: Optional[Path] = typer.Option(None, "--verify", metavar="GOLDEN", help="Golden JSONL file to check the host's outputs against."),
+    outputs: Optional[Path] = typer.Option(None, "--outputs", metavar="HOST", help="The host's JSONL: one object per golden record, same order, with ids and probs (and normalized, tokens when it can)."),
+    show: int = typer.Option(10, "--show", min=0, metavar="N", help="How many differing records to print."),
 ) -> None:
     """Conformance records for a bundle (stress texts -> normalised text, tokens, ids, counts, probs, label),
     and the check of any host's outputs against them.
 
-    Write:  danpack golden BUNDLE -o golden.jsonl [--texts mine.txt]
-    Check:  danpack golden --verify golden.jsonl --outputs host.jsonl
+    Write the records: danpack golden BUNDLE -o golden.jsonl [--texts mine.txt]
+
+    Check a host: danpack golden --verify golden.jsonl --outputs host.jsonl
 
     The check prints the first differing records with their stage (normalisation, split, mapping, model) and
     exits 1 when any record differs (tokens or ids at all, probs by more than 1e-6), 0 when all agree,
