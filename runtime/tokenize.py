@@ -6,12 +6,65 @@ later in the bundle's manifest, so every stage splits a text the same way.
 
 from __future__ import annotations
 
+import bisect
 import itertools
 import re
 import unicodedata
 from dataclasses import asdict, dataclass
 
 from .errors import TokenizerError
+from .unicode_pinned import UNASSIGNED, UNICODE_VERSION
+
+# --- the pinned Unicode version -----------------------------------------------------------------------
+# The tokenizer is defined against Unicode UNICODE_VERSION (14.0.0): before normalisation every code point
+# unassigned in it becomes U+0020 (a separator), so an interpreter with newer tables (Python 3.12: 15.0,
+# 3.13: 15.1) sees only characters whose NFKC, case and \w it agrees on. An interpreter with OLDER tables
+# (Python 3.10: 13.0.0) refuses each text holding a character assigned in the pinned version that its
+# tables do not know (TokenizerError), rather than tokenizing it differently. UNASSIGNED comes from
+# runtime/gen_unicode.py. The BMP part is one regex class (a bitmap in `re`); astral candidates are
+# checked against the table by bisection, since `re` scans astral ranges one by one.
+_ucd = unicodedata  # the interpreter's tables (tests substitute unicodedata.ucd_3_2_0 to simulate an old one)
+_ASTRAL_FIRST = [max(a, 0x10000) for a, b in UNASSIGNED if b >= 0x10000]
+_ASTRAL_LAST = [b for a, b in UNASSIGNED if b >= 0x10000]
+_PIN_CANDIDATES = re.compile(
+    "[" + "".join(f"\\u{a:04x}-\\u{min(b, 0xFFFF):04x}" for a, b in UNASSIGNED if a < 0x10000)
+    + "\\U00010000-\\U0010ffff]"
+)
+_NOT_WORD_OR_SPACE = re.compile(r"[^\w\s]")  # where an interpreter's unassigned characters can be
+
+
+def _pin_one(match: re.Match) -> str:
+    c = match.group()
+    if c < "\U00010000":
+        return " "  # the regex class holds only unassigned BMP code points
+    i = bisect.bisect_right(_ASTRAL_FIRST, ord(c)) - 1
+    return " " if i >= 0 and ord(c) <= _ASTRAL_LAST[i] else c
+
+
+def pin_unassigned(text: str) -> str:
+    """Every code point unassigned in the pinned Unicode version replaced by U+0020 (ASCII is returned as is)."""
+    return text if text.isascii() else _PIN_CANDIDATES.sub(_pin_one, text)
+
+
+def version_tuple(version: str) -> tuple[int, ...]:
+    return tuple(int(part) for part in version.split("."))
+
+
+def tables_are_older() -> bool:
+    """True when this interpreter's Unicode tables are older than the pinned version (Python 3.10)."""
+    return version_tuple(_ucd.unidata_version) < version_tuple(UNICODE_VERSION)
+
+
+def check_known(pinned: str) -> None:
+    """Refuse a (pinned) text holding a character this interpreter's older tables do not know."""
+    for match in _NOT_WORD_OR_SPACE.finditer(pinned):
+        if _ucd.category(match.group()) == "Cn":
+            raise TokenizerError(
+                f"text holds U+{ord(match.group()):04X} at index {match.start()}, assigned in Unicode "
+                f"{UNICODE_VERSION} (the version the tokenizer pins) but unknown to this Python's Unicode tables "
+                f"({_ucd.unidata_version}): it would tokenize differently here than on every other host, so the text "
+                "is refused; run danpack on Python 3.11 or newer")
+
 
 # Combining marks (Unicode categories Mn, Mc, Me) continue a word, so "café" in NFD form or
 # Devanagari and Thai words stay whole. Generated once from unicodedata 14.0.0
@@ -204,8 +257,13 @@ class TokenizerSpec:
     case: str = "lower"  # "lower" (str.lower), "casefold" (str.casefold) or "keep"
     pattern: str = DEFAULT_PATTERN  # a preset name (see PRESETS) or a Python `re` pattern; each match is a token
     max_tokens: int = 512  # tokens past this count are dropped (bounds cost per text)
+    unicode_version: str = UNICODE_VERSION  # code points unassigned in it become separators first (the only one accepted)
 
     def __post_init__(self) -> None:
+        if self.unicode_version != UNICODE_VERSION:
+            raise TokenizerError(
+                f"tokenizer unicode_version {self.unicode_version!r} is not the version this danpack pins "
+                f"({UNICODE_VERSION!r}); repack the model with this danpack version")
         if self.normalization not in NORMALIZATIONS:
             raise TokenizerError(
                 f"tokenizer normalization {self.normalization!r} is not one of {NORMALIZATIONS}"
@@ -246,7 +304,7 @@ class TokenizerSpec:
     def from_dict(cls, data: object) -> "TokenizerSpec":
         if not isinstance(data, dict):
             raise TokenizerError(f"tokenizer spec must be a mapping, found {type(data).__name__}")
-        unknown = set(data) - {"normalization", "case", "pattern", "max_tokens"}
+        unknown = set(data) - {"normalization", "case", "pattern", "max_tokens", "unicode_version"}
         if unknown:
             raise TokenizerError(f"tokenizer spec has unknown fields {sorted(unknown)}")
         return cls(**data)
@@ -265,9 +323,14 @@ class Tokenizer:
         form = self.spec.normalization
         self._normalize = (lambda s: s) if form == "none" else (lambda s: unicodedata.normalize(form, s))
         self._case = {"lower": str.lower, "casefold": str.casefold, "keep": lambda s: s}[self.spec.case]
+        self._check_known = check_known if tables_are_older() else None
 
     def normalize(self, text: str) -> str:
-        """Normalisation and case folding, the steps before splitting."""
+        """Pinning to the Unicode version, normalisation and case folding: the steps before splitting."""
+        if not text.isascii():  # ASCII is assigned in every version: nothing to pin
+            text = pin_unassigned(text)
+            if self._check_known is not None:
+                self._check_known(text)
         return self._case(self._normalize(text))
 
     def split(self, normalized: str) -> list[str]:

@@ -340,7 +340,7 @@ def test_unwritable_output_exits_2_naming_the_path(inputs, packed, tmp_path):
 
 # --- help ------------------------------------------------------------------------------------------
 
-@pytest.mark.parametrize("command", ["pack", "inspect", "export-onnx", "check", "convert-torch", "demo", "frontier"])
+@pytest.mark.parametrize("command", ["pack", "inspect", "export-onnx", "check", "convert-torch", "demo", "frontier", "golden"])
 def test_every_command_has_help_for_every_option(command):
     result = invoke(command, "--help")
     assert result.exit_code == 0
@@ -359,7 +359,7 @@ def test_the_command_list_gives_whole_sentences():
     result = invoke("--help")
     listed = result.output.split("Commands:", 1)[1]
     assert "..." not in listed and "…" not in listed
-    for command in ("pack", "inspect", "export-onnx", "check", "convert-torch", "demo", "frontier"):
+    for command in ("pack", "inspect", "export-onnx", "check", "convert-torch", "demo", "frontier", "golden"):
         assert re.search(rf"^  {command} ", listed, flags=re.M)
 
 

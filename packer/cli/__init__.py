@@ -17,7 +17,7 @@ PACKER_LIBRARIES = ("typer", "onnx", "onnxruntime", "safetensors")
 def load_app():
     """The typer app with every command registered."""
     from danpack.cli.root import app
-    from danpack.cli import check, convert_torch, demo, frontier, pack  # noqa: F401  (importing registers the commands)
+    from danpack.cli import check, convert_torch, demo, frontier, golden, pack  # noqa: F401  (importing registers the commands)
 
     return app
 

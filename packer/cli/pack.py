@@ -137,6 +137,7 @@ def pack_command(
 def inspect_command(
     bundle: Path = typer.Argument(..., metavar="BUNDLE", help="Bundle file written by `danpack pack`."),
     json_out: bool = typer.Option(False, "--json", help="Print everything as JSON."),
+    vocab: bool = typer.Option(False, "--vocab", help="With --json: add \"vocab\", the tokens in row order (element i is row i)."),
 ) -> None:
     """Show a bundle's manifest, checksum and where its bytes go."""
     from danpack.check.bound import describe_bound
@@ -144,7 +145,9 @@ def inspect_command(
     from danpack.runtime.bundle import read_bundle
 
     try:
-        info = describe_bundle(read_bundle(bundle))
+        if vocab and not json_out:
+            fail("--vocab prints the tokens inside the JSON description; add --json")
+        info = describe_bundle(read_bundle(bundle), vocab=vocab)
     except DanpackError as e:
         fail(str(e))
     if json_out:
@@ -182,8 +185,16 @@ def export_onnx_command(
 ) -> None:
     """Write the bundle's graph with its tensors embedded, for hosts in other languages.
 
-    Inputs: ids (batch, tokens) int64 padded with 0, counts (batch,) int64. Outputs: probs, logits.
-    Tokenize and map tokens to rows as the manifest says (see `danpack inspect --json`).
+    The file describes itself: its ONNX metadata_props hold, under keys starting "danpack.", the labels in
+    output order, the tokenizer spec (normalisation, case, preset name and full pattern, max_tokens, Unicode
+    version and the table of code points unassigned in it), the unknown-word policy and row, the vocabulary
+    (element i is row i), the bundle's sha256 and format versions.
+
+    A host's steps, in order: pin Unicode (unassigned code points -> space), normalise, case, split with
+    the pattern, keep the first max_tokens tokens, map tokens to rows (unknown -> the oov row, or dropped
+    for "skip"), pad ids with 0 and pass counts, run, read probs (columns in label order).
+    Inputs: ids (batch, tokens) int64, counts (batch,) int64. Outputs: probs, logits (batch, labels).
+    README "Running the exported ONNX on another host" details each key; `danpack golden` checks a port.
     """
     from danpack.files import check_outputs, write_atomic
     from danpack.pack.inspect import export_onnx
