@@ -278,6 +278,10 @@ static int check_tokenizer(const char *src, const dp_mp *t, dp_tok_spec *spec, d
                 if (dp_mp_is(v, cases[j])) c = j;
             if (c < 0) return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (case)", src), -1;
             spec->kase = c;
+        } else if (dp_mp_is(k, "unicode_version")) {
+            if (!dp_mp_is(v, "14.0.0"))
+                return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (unicode_version must be 14.0.0, the "
+                                    "version danpack pins)", src), -1;
         } else if (dp_mp_is(k, "max_tokens")) {
             if (!is_int(v) || v->huge || v->i < 1 || v->i > MAX_TOKENS_LIMIT)
                 return dp_fail(err, "%s: manifest field 'tokenizer' is invalid (max_tokens must be an integer from 1 to %d)",

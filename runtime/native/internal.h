@@ -51,7 +51,7 @@ typedef struct {
     size_t start, len; /* in the normalised code points */
 } dp_span;
 typedef struct {
-    dp_u32buf cps, norm, tmp;
+    dp_u32buf cps, norm, tmp, pin;
     dp_span *spans;
     size_t nspans, spancap;
     char *bytes;

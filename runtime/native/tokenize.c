@@ -88,6 +88,16 @@ static size_t wordpunct_v1(const uint32_t *s, size_t n, size_t i, size_t *start)
 
 int dp_tokenize_cps(const dp_tok_spec *spec, const uint32_t *cps, size_t n, dp_tok_work *w) {
     w->nspans = 0;
+    /* Unicode pinned to 14.0.0 (runtime/tokenize.py): a code point unassigned there is a space before
+     * normalisation, so hosts with newer tables tokenize every text alike. ASCII is always assigned. */
+    size_t k = 0;
+    while (k < n && (cps[k] < 0x80 || !(dp_props(cps[k]) & DP_P_UNASSIGNED))) k++;
+    if (k < n) {
+        if (dp_u32_reserve(&w->pin, n)) return -1;
+        for (size_t j = 0; j < n; j++) w->pin.v[j] = cps[j] >= 0x80 && (dp_props(cps[j]) & DP_P_UNASSIGNED) ? 0x20 : cps[j];
+        w->pin.n = n;
+        cps = w->pin.v;
+    }
     if (dp_normalize(cps, n, spec->form, spec->kase, &w->norm, &w->tmp)) return -1;
     const uint32_t *s = w->norm.v;
     size_t len = w->norm.n, i = 0;
@@ -110,6 +120,7 @@ void dp_tok_work_free(dp_tok_work *w) {
     free(w->cps.v);
     free(w->norm.v);
     free(w->tmp.v);
+    free(w->pin.v);
     free(w->spans);
     free(w->bytes);
     memset(w, 0, sizeof(*w));
