@@ -100,7 +100,8 @@ class Classifier:
                      else "")
             raise BundleError(f"the {self.backend.name} backend disagrees with the packer on the bundle's {what} "
                               f"(max difference {worst:.2e} > {PROBE_TOLERANCE}){cause}; the bundle or the runtime "
-                              "is damaged")
+                              "is damaged (the probe: inputs the packer stored with the answers it computed, re-run "
+                              "at every load)")
 
     @property
     def labels(self) -> tuple[str, ...]:
