@@ -25,10 +25,11 @@ from pathlib import Path
 import numpy as np
 
 from danpack.runtime.encode import Encoder
-from danpack.runtime.errors import ModelError, TokenizerError
+from danpack.runtime.errors import DanpackError, ModelError, TokenizerError
 from danpack.runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
 from danpack.runtime.safe_text import escape_text, labels_problem, token_problem
-from danpack.runtime.stream_records import MAX_JSON_DEPTH, _decode_json, nests_deeper
+from danpack.runtime.stream_records import (MAX_JSON_DEPTH, _bounded_int, _decode_json, _finite_float,
+                                            _reject_constant, nests_deeper)
 from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 from danpack.files import current_umask, feed_file
@@ -118,20 +119,27 @@ def _read_config(path: Path) -> dict:
     return config
 
 
-def load_json_text(text: str, path: Path):
-    """Strict, bounded JSON for the files a model folder or a user hands in (dan.json, JSON vocabularies and
-    label files): nesting deeper than MAX_JSON_DEPTH, integers of more than 4,000 digits, NaN / Infinity and
-    malformed text are each a ModelError naming the file, never a traceback."""
+def load_json_text(text: str, path: Path, error: type[DanpackError] = ModelError, **hooks):
+    """Strict, bounded JSON for the files a model folder or a user hands in (dan.json, JSON vocabularies, label
+    files and maps): nesting deeper than MAX_JSON_DEPTH, integers of more than 4,000 digits, NaN / Infinity and
+    malformed text are each an `error` naming the file, never a traceback. `hooks` go to the JSON decoder
+    (e.g. object_pairs_hook)."""
+
+    def fail(what: str) -> DanpackError:
+        return error(f"{path}: {what}")
+
     if nests_deeper(text):
-        raise _fail(path, f"nests arrays or objects deeper than {MAX_JSON_DEPTH} levels")
+        raise fail(f"nests arrays or objects deeper than {MAX_JSON_DEPTH} levels")
+    decode = json.JSONDecoder(parse_constant=_reject_constant, parse_float=_finite_float, parse_int=_bounded_int,
+                              **hooks).decode if hooks else _decode_json
     try:
-        return _decode_json(text)
+        return decode(text)
     except json.JSONDecodeError as e:
-        raise _fail(path, f"is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
+        raise fail(f"is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
     except RecursionError as e:
-        raise _fail(path, "is not valid JSON (nested too deeply)") from e
+        raise fail("is not valid JSON (nested too deeply)") from e
     except ValueError as e:  # NaN / Infinity, numbers out of range, over-long integers
-        raise _fail(path, f"is not valid JSON ({e})") from e
+        raise fail(f"is not valid JSON ({e})") from e
 
 
 def _config_field(config: dict, path: Path, key: str, check, expected: str):

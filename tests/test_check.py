@@ -580,3 +580,18 @@ def test_a_non_finite_answer_is_exit_2_never_a_crash(case, monkeypatch, tmp_path
     res = invoke(case.good, "--reference", case.model_dir, "--eval", case.eval_path, *NO_LATENCY)
     assert res.exit_code == 2, res.output
     assert "the bundle gives a non-finite probability (NaN or Inf) for text 1 of" in res.output
+
+
+def test_a_label_map_file_is_bounded_json(tmp_path):
+    """Deep nesting or a 5,000-digit number in a --label-map file is a CheckError naming it, never a traceback."""
+    from danpack.check.compare import parse_label_map
+
+    for name, text in (("deep.json", '{"a": ' * 5000 + "1" + "}" * 5000), ("huge.json", '{"a": ' + "9" * 5000 + "}"),
+                       ("bad.json", '{"a": "ham",}')):
+        path = tmp_path / name
+        path.write_text(text, encoding="utf-8")
+        with pytest.raises(CheckError, match=f"{name}: "):
+            parse_label_map(str(path), ("ham", "spam"))
+    good = tmp_path / "good.json"
+    good.write_text('{"0": "ham", "1": "spam"}', encoding="utf-8")
+    assert parse_label_map(str(good), ("ham", "spam")) == (("0", "ham"), ("1", "spam"))

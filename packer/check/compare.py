@@ -21,7 +21,7 @@ from danpack.check import BOOTSTRAP_SEED
 from danpack.check.errors import CheckError
 from danpack.check.latency import LatencyOptions, measure_check_latency
 from danpack.files import file_sha256
-from danpack.model import FloatModel, load_model, model_bytes, model_digest
+from danpack.model import FloatModel, load_json_text, load_model, model_bytes, model_digest
 from danpack.pack.quantize import dequantize_rows
 from danpack.progress import Steps
 from danpack.runtime.tokenize import Tokenizer
@@ -257,19 +257,13 @@ def parse_label_map(spec: str | None, labels: Sequence[str]) -> tuple[tuple[str,
         return ()
     path = Path(spec)
     if path.is_file():
-        import json
-
         try:
             text = path.read_text(encoding="utf-8")
         except (OSError, UnicodeDecodeError) as e:
             raise CheckError(f"--label-map {path}: cannot be read as UTF-8 text ({e})") from e
         where = str(path)
-        if text.lstrip().startswith("{"):
-            try:
-                obj = json.loads(text)
-            except json.JSONDecodeError as e:
-                raise CheckError(f"{path}: not valid JSON ({e.msg}); give an object {{\"spelling\": \"label\"}}") from e
-            pairs = [(str(k), v) for k, v in obj.items()]
+        if text.lstrip().startswith("{"):  # bounded as every JSON input: a deep or huge file is an error, not a crash
+            pairs = [(str(k), v) for k, v in load_json_text(text, path, CheckError).items()]
         else:
             pairs = []
             for number, line in enumerate(text.splitlines(), start=1):

@@ -24,7 +24,7 @@ from danpack.runtime.forward import ACTIVATIONS, Layer
 from danpack.runtime.tokenize import Tokenizer, TokenizerSpec
 
 from danpack.files import file_sha256
-from danpack.model import FORMAT_NAME, FloatModel, OOV_POLICIES, load_model, save_model
+from danpack.model import FORMAT_NAME, FloatModel, OOV_POLICIES, load_json_text, load_model, save_model
 
 TORCH_PIN = "torch==2.13.0"
 BAG_MODES = ("mean", "sum", "max")
@@ -548,21 +548,6 @@ def read_vocab_source(path: str | os.PathLike) -> list[str] | dict[str, int]:
     return [line.removesuffix("\r") for line in lines]
 
 
-def _bounded_json(path: Path, text: str, **hooks):
-    """json.loads bounded as danpack bounds every JSON input (nesting, integer digits, NaN): a CheckpointError
-    naming the file instead of a RecursionError or ValueError traceback."""
-    from danpack.runtime.stream_records import MAX_JSON_DEPTH, _bounded_int, _reject_constant, nests_deeper
-
-    if nests_deeper(text):
-        raise CheckpointError(f"{path}: nests arrays or objects deeper than {MAX_JSON_DEPTH} levels")
-    try:
-        return json.loads(text, parse_int=_bounded_int, parse_constant=_reject_constant, **hooks)
-    except json.JSONDecodeError as e:
-        raise CheckpointError(f"{path}: is not valid JSON (line {e.lineno}, column {e.colno}: {e.msg})") from e
-    except (ValueError, RecursionError) as e:
-        raise CheckpointError(f"{path}: is not valid JSON ({e or 'nested too deeply'})") from e
-
-
 def _vocab_from_json(path: Path, text: str) -> list[str] | dict[str, int]:
     def no_duplicates(pairs):
         seen = set()
@@ -572,7 +557,7 @@ def _vocab_from_json(path: Path, text: str) -> list[str] | dict[str, int]:
             seen.add(k)
         return dict(pairs)
 
-    obj = _bounded_json(path, text, object_pairs_hook=no_duplicates)
+    obj = load_json_text(text, path, CheckpointError, object_pairs_hook=no_duplicates)
     if isinstance(obj, list):
         bad = [i for i, t in enumerate(obj) if not isinstance(t, str)]
         if bad:
@@ -595,7 +580,7 @@ def read_labels(spec: str) -> tuple[str, ...]:
         except (OSError, UnicodeDecodeError) as e:
             raise CheckpointError(f"{path}: labels cannot be read as UTF-8 text ({e})") from e
         if path.suffix.lower() == ".json":
-            items = _bounded_json(path, text)
+            items = load_json_text(text, path, CheckpointError)
             if not isinstance(items, list) or not all(isinstance(x, str) for x in items):
                 raise CheckpointError(f"{path}: expected a JSON list of label strings")
         else:
