@@ -16,7 +16,6 @@ and the bytes the manifest's `unknown` envelope adds to the bundle.
 from __future__ import annotations
 
 import argparse
-import json
 from pathlib import Path
 
 import msgpack

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import copy
+import importlib.util
 import resource
 import subprocess
 import sys
@@ -20,7 +21,6 @@ from pathlib import Path
 
 import msgpack
 import numpy as np
-import onnx
 
 from danpack import runtime
 from danpack.model import FloatModel, save_model
@@ -34,6 +34,7 @@ from danpack.runtime.tokenize import TokenizerSpec
 
 WORDS = [f"w{i}" for i in range(600)]
 LABELS = ("payment", "connector_cable", "charging_speed")
+REPO = Path(__file__).resolve().parents[1]
 SPY_ROW = 400  # a row no id probe sequence reaches (they cover rows 0-28)
 
 
@@ -52,52 +53,13 @@ def texts(n: int = 2000) -> list[str]:
     return [" ".join(WORDS[i] for i in rng.integers(0, 600, int(rng.integers(1, 15)))) for _ in range(n)]
 
 
-def with_graph(data: bytes, edit) -> bytes:
-    body = msgpack.unpackb(msgpack.unpackb(data)["payload"])
-    model = onnx.ModelProto()
-    model.ParseFromString(body["graph"])
-    edit(model)
-    body["graph"] = model.SerializeToString()
-    return encode_bundle(msgpack.packb(body, use_bin_type=True))
-
-
-def insert_before_logits(model: onnx.ModelProto, nodes: list, inits: list, result: str) -> None:
-    at = next(i for i, n in enumerate(model.graph.node) if n.name == "logits")
-    x = model.graph.node[at].input[0]
-    for node in nodes:
-        node.input[:] = [x if i == "x" else i for i in node.input]
-    model.graph.node[at].input[0] = result
-    for k, node in enumerate(nodes):
-        model.graph.node.insert(at + k, node)
-    model.graph.initializer.extend(inits)
-
-
-def back_door(model: onnx.ModelProto) -> None:
-    rows = next(t for t in model.graph.initializer if t.name == "table").dims[0]
-    spy = np.zeros((rows, 3), np.float32)
-    spy[SPY_ROW, 0] = 40.0 * 15
-    make = onnx.helper.make_node
-    insert_before_logits(model, [make("Gather", ["spy", "ids"], ["spy_rows"], name="spy_rows"),
-                                 make("MatMul", ["token_weight3", "spy_rows"], ["spy3"], name="spy3"),
-                                 make("Squeeze", ["spy3", "axis_1"], ["spy_z"], name="spy_z"),
-                                 make("Add", ["x", "spy_z"], ["spy_out"], name="spy_out")],
-                         [onnx.numpy_helper.from_array(spy, "spy")], "spy_out")
-
-
-def swap_small_batches(model: onnx.ModelProto) -> None:
-    make = onnx.helper.make_node
-    insert_before_logits(model, [
-        make("Shape", ["ids"], ["batch_n"], name="batch_n", start=0, end=1),
-        make("Less", ["batch_n", "eight"], ["small_b"], name="small_b"),
-        make("Cast", ["small_b"], ["small"], name="small", to=onnx.TensorProto.FLOAT),
-        make("Gather", ["x", "reverse"], ["swapped"], name="swapped", axis=1),
-        make("Mul", ["x", "minus_one"], ["neg_x"], name="neg_x"),
-        make("Add", ["swapped", "neg_x"], ["delta"], name="delta"),
-        make("Mul", ["delta", "small"], ["delta_small"], name="delta_small"),
-        make("Add", ["x", "delta_small"], ["mixed"], name="mixed"),
-    ], [onnx.numpy_helper.from_array(np.array([8], np.int64), "eight"),
-        onnx.numpy_helper.from_array(np.array([2, 1, 0], np.int64), "reverse"),
-        onnx.numpy_helper.from_array(np.array(-1.0, np.float32), "minus_one")], "mixed")
+def load_corpus_maker():
+    """tests/adversarial/make_corpus.py, the one place the graph attacks are crafted (the trial runs the same ones
+    with the reader's checks off and on)."""
+    spec = importlib.util.spec_from_file_location("make_corpus", REPO / "tests" / "adversarial" / "make_corpus.py")
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
 
 
 @contextlib.contextmanager
@@ -126,13 +88,15 @@ def outcome(path: Path, measure) -> str:
 
 
 def main() -> None:
+    corpus = load_corpus_maker()
     sample = texts()
     with tempfile.TemporaryDirectory() as tmp:
         root = Path(tmp)
         base = build(root)
         attacks = {
-            "back door (+40 on one logit for texts holding w400)": with_graph(base, back_door),
-            "logits reversed when fewer than 8 texts in a batch": with_graph(base, swap_small_batches),
+            "back door (+40 on one logit for texts holding w400)": corpus.with_graph(
+                base, lambda model: corpus._back_door(model, row=SPY_ROW, push=40.0 * 15)),
+            "logits reversed when fewer than 8 texts in a batch": corpus.with_graph(base, corpus._swap_small_batches),
         }
         body = msgpack.unpackb(msgpack.unpackb(base)["payload"])
         import zlib

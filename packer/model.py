@@ -27,7 +27,7 @@ import numpy as np
 from danpack.runtime.encode import Encoder
 from danpack.runtime.errors import DanpackError, ModelError, TokenizerError
 from danpack.runtime.forward import ACTIVATIONS, Layer, forward_logits, softmax
-from danpack.runtime.safe_text import escape_text, labels_problem, token_problem
+from danpack.runtime.safe_text import labels_problem, token_problem
 from danpack.runtime.stream_records import (MAX_JSON_DEPTH, _bounded_int, _decode_json, _finite_float,
                                             _reject_constant, nests_deeper)
 from danpack.runtime.tokenize import Tokenizer, TokenizerSpec

@@ -25,7 +25,6 @@ from danpack.model import FloatModel, load_json_text, load_model, model_bytes, m
 from danpack.pack.quantize import dequantize_rows
 from danpack.progress import Steps
 from danpack.runtime.tokenize import Tokenizer
-from danpack.runtime.errors import DanpackError
 from danpack.textfile import iter_numbered_records
 
 REFERENCE_TOLERANCE = 1e-5  # float reading vs the framework's probabilities: float32 rounding is ~1e-7

@@ -218,11 +218,12 @@ def _insert_before_logits(model: onnx.ModelProto, nodes: list, inits: list, resu
     model.graph.initializer.extend(inits)
 
 
-def _back_door(model: onnx.ModelProto) -> None:
-    """+40 on the first logit for every text holding the token of row 5: allowed operators and one inline tensor."""
+def _back_door(model: onnx.ModelProto, row: int = 5, push: float = 40.0 * 24) -> None:
+    """+40 on the first logit for every text holding the token of `row`: allowed operators and one inline tensor.
+    `push` is divided by the text's token count (the mean), so a long text still gets a large push."""
     rows = next(t for t in model.graph.initializer if t.name == "table").dims[0]
     spy = np.zeros((rows, len(LABELS)), np.float32)
-    spy[5, 0] = 40.0 * 24  # the mean divides by the token count; a long text still gets a large push
+    spy[row, 0] = push
     make = onnx.helper.make_node
     _insert_before_logits(model, [
         make("Gather", ["spy", "ids"], ["spy_rows"], name="spy_rows"),  # (B, T, C)
