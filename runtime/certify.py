@@ -235,20 +235,6 @@ def logit_bounds(bound: DriftBound, ids: np.ndarray, counts: np.ndarray) -> np.n
     return (delta[:, None] * bound.gain[None, :] + bound.allowance[None, :]) * INFLATE  # (B, C)
 
 
-def encode_kept(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) bool: every token has its own row)."""
-    oov, tokenize = encoder.oov_id, encoder.tokenizer.tokenize
-    id_lists, kept = [], np.ones(len(texts), dtype=bool)
-    for i, text in enumerate(texts):
-        tokens = tokenize(text)
-        rows = encoder.map_tokens(tokens)
-        # not kept: a token pruned or unknown (left out under skip), or on the out-of-vocabulary row
-        kept[i] = len(rows) == len(tokens) if oov is None else oov not in rows
-        id_lists.append(rows)
-    ids, counts = encode_batch(id_lists)
-    return ids, counts, kept
-
-
 def certify_margins(logits: np.ndarray, bounds: np.ndarray) -> np.ndarray:
     """(B, C) logits and (B, C) bounds -> (B,) bool: the top class beats every other by more than both bounds."""
     z = logits.astype(np.float64)  # differences of float32 values: exact in float64, or within 2⁻⁵³ ≪ the allowance

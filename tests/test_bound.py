@@ -68,7 +68,8 @@ def worst_drift(model: FloatModel, bundle: Bundle, texts: list[str], backends=("
     worst = 0.0
     for backend in backends:
         clf = Classifier(bundle, backend)
-        ids, counts, kept = certify.encode_kept(clf.encoder, texts)
+        ids, counts, unknown = certify.encode_unknown(clf.encoder, texts)
+        kept = unknown == 0  # every token has its own row
         assert kept.all(), "the core check is for texts whose tokens are all kept"
         packed = clf.backend.run(ids, counts)[1].astype(np.float64)  # (B, C)
         bounds = certify.logit_bounds(bound, ids, counts)  # (B, C)
@@ -144,7 +145,7 @@ def test_float32_allowance_is_needed_and_enough(tmp_path):
     model = random_model(rng, dim=30, hidden=(40, 20), activation="tanh", scale=2.0)
     bundle = pack(model, tmp_path, fold="no", quantize=False)
     texts = random_texts(rng, list(model.vocab), 200)
-    ids, counts, _ = certify.encode_kept(Classifier(bundle, "numpy").encoder, texts)
+    ids, counts, _ = certify.encode_unknown(Classifier(bundle, "numpy").encoder, texts)
     packed = Classifier(bundle, "onnxruntime").backend.run(ids, counts)[1]
     drift = np.abs(packed.astype(np.float64) - model.predict_logits(texts))
     assert drift.max() > 0  # without an allowance the bound (δ = 0 here) would be broken
@@ -237,7 +238,7 @@ def test_worst_case_bound_covers_every_text(tmp_path):
     assert worst["delta_max"] >= worst["half_step_max"]
     assert worst["safe_margin"] == pytest.approx(np.sort(b)[-2:].sum())  # max over c ≠ c' of b_c + b_c'
     texts = random_texts(rng, list(model.vocab), 100)
-    ids, counts, _ = certify.encode_kept(Classifier(bundle, "numpy").encoder, texts)
+    ids, counts, _ = certify.encode_unknown(Classifier(bundle, "numpy").encoder, texts)
     assert (certify.logit_bounds(certify.drift_bound(bundle), ids, counts) <= b * (1 + 1e-9)).all()
     lines = describe_bound(worst)
     assert len(lines) == 5 and lines[0].startswith("drift bound: ") and "every row kept" in lines[4]
@@ -302,7 +303,8 @@ def test_predict_certified_shapes_and_encoding(tmp_path):
     bundle = pack(model, tmp_path, pruned="unk")
     clf = Classifier(bundle, "numpy")
     texts = ["w1 w2 nope", "", "w3"]
-    ids, counts, kept = certify.encode_kept(clf.encoder, texts)
+    ids, counts, unknown = certify.encode_unknown(clf.encoder, texts)
+    kept = unknown == 0  # every token has its own row
     expected_ids, expected_counts = clf.encoder.encode(texts)
     np.testing.assert_array_equal(ids, expected_ids)
     np.testing.assert_array_equal(counts, expected_counts)
@@ -350,7 +352,7 @@ def test_cancelling_folded_row_breaks_the_premise_and_is_widened(tmp_path):
     assert check.failing >= 1 and check.worst_token == "w5" and check.worst_mass > 1.0
     texts = [" ".join(rng.choice(model.vocab, 5)) + " w5" for _ in range(50)]
     clf = Classifier(bundle, "numpy")
-    ids, counts, _ = certify.encode_kept(clf.encoder, texts)
+    ids, counts, _ = certify.encode_unknown(clf.encoder, texts)
     widened = certify.drift_bound(bundle, need_radius, need_mass)
     drift = np.abs(clf.backend.run(ids, counts)[1].astype(np.float64) - model.predict_logits(texts))
     assert (drift <= certify.logit_bounds(widened, ids, counts)).all()
