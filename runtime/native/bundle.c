@@ -774,7 +774,7 @@ static dp_bundle *load_owned(uint8_t *data, size_t len, const char *src, dp_erro
     if (inflate_vocab(src, vocab->p, vocab->len, limit, b, err)) goto fail;
     if (index_vocab(src, b, err)) goto fail;
     if (check_manifest(src, manifest, &ts, b, err)) goto fail;
-    if (dp_check_graph(src, graph->p, graph->len, ts.t, ts.n, err)) goto fail;
+    if (dp_check_graph(src, graph->p, graph->len, b, ts.n, err)) goto fail;
     if (run_probe(src, b, dp_mp_get(manifest, "probe"), err)) goto fail;
     free(ts.t);
     dp_mp_free(&body);

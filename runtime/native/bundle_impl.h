@@ -60,7 +60,14 @@ void dp_fail_append(dp_error *err, const char *fmt, ...)
 #endif
     ;
 long dp_vocab_find(const dp_bundle *b, const uint8_t *tok, size_t len);
-int dp_check_graph(const char *src, const uint8_t *g, size_t n, const tensor *ts, size_t nts, dp_error *err);
+/* The canonical-graph rule: the bundle's graph `g` is byte for byte the one dp_write_graph builds for the checked
+ * manifest (b), and the payload holds no tensor besides the graph's (ntensors, after duplicate names). */
+int dp_check_graph(const char *src, const uint8_t *g, size_t n, const dp_bundle *b, size_t ntensors, dp_error *err);
+/* runtime/graph.py write_graph in C: the serialised ModelProto for a table of rows x width (int8 with scales when
+ * quantized), nlayers layers given as 4 numbers each {has weight, DP_ACT_*, out, in (0 without weight)} and classes
+ * labels. Copies at most cap bytes to out (may be NULL) and returns the graph's length; 0 when out of memory. */
+size_t dp_write_graph(size_t rows, size_t width, int quantized, size_t classes, const size_t *layers, size_t nlayers,
+                      uint8_t *out, size_t cap);
 /* tokens of code points -> ids in s->ids (count of them), known: tokens with a row of their own (may be NULL) */
 int dp_encode_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t n, size_t *count, size_t *known,
                   dp_token_fn emit, void *ctx, dp_error *err);

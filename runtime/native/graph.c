@@ -1,18 +1,233 @@
-/* The bundle's ONNX graph, read with the protocol-buffers wire format (as runtime/onnx_wire.py does) and checked as
- * runtime/bundle.py _check_graph does: well-formed, only the packer's operators, inputs ids/counts, outputs
- * probs/logits, every used name defined, and external tensors exactly the bundle's by name, type and shape.
- * The native runtime never runs the graph: it computes the manifest's gather -> mean -> layers -> softmax, and the
- * packer's probe (re-run at load) holds the two to the same answers. */
+/* The bundle's ONNX graph must be byte for byte the graph runtime/graph.py `write_graph` builds from the manifest and
+ * the tensor shapes (the canonical-graph rule, as runtime/bundle.py _check_graph_is_written applies it). This file
+ * writes the same bytes in C (protocol-buffers wire format by hand, fields in the same order) and compares; on a
+ * difference it names the first differing part as runtime/graph.py `first_difference` does. No other graph rule is
+ * needed: the written graph uses only the packer's operators and exactly the bundle's tensors by name, type and shape.
+ * The native runtime never runs the graph (it computes gather -> mean -> layers -> softmax from the tensors). */
 #include <stdio.h>
 #include <stdlib.h>
 #include <string.h>
 
 #include "bundle_impl.h"
 
+/* ---- writing (runtime/onnx_wire.py put_varint / put_int / put_bytes, runtime/graph.py write_graph) ---- */
+
+enum { T_FLOAT = 1, T_INT8 = 3, T_INT64 = 7 }; /* TensorProto.DataType */
+#define IR_VERSION 8
+#define OPSET 17
+
 typedef struct {
-    const uint8_t *p;
-    size_t n;
-} slice;
+    uint8_t *p;
+    size_t n, cap;
+    int oom;
+} wbuf;
+
+static void put_raw(wbuf *b, const void *d, size_t n) {
+    if (b->oom || !n) return;
+    if (n > b->cap - b->n) {
+        size_t cap = b->cap ? b->cap : 256;
+        while (cap - b->n < n) cap *= 2;
+        uint8_t *p = realloc(b->p, cap);
+        if (!p) {
+            b->oom = 1;
+            return;
+        }
+        b->p = p;
+        b->cap = cap;
+    }
+    memcpy(b->p + b->n, d, n);
+    b->n += n;
+}
+
+static void put_varint(wbuf *b, uint64_t v) { /* negative int64 values arrive as their two's complement: 10 bytes */
+    uint8_t t[10];
+    size_t k = 0;
+    while (v >= 0x80) {
+        t[k++] = (uint8_t)(v | 0x80);
+        v >>= 7;
+    }
+    t[k++] = (uint8_t)v;
+    put_raw(b, t, k);
+}
+
+static void put_int(wbuf *b, unsigned field, int64_t v) {
+    put_varint(b, (uint64_t)field << 3);
+    put_varint(b, (uint64_t)v);
+}
+
+static void put_bytes(wbuf *b, unsigned field, const void *d, size_t n) {
+    put_varint(b, (uint64_t)field << 3 | 2);
+    put_varint(b, n);
+    put_raw(b, d, n);
+}
+
+static void put_str(wbuf *b, unsigned field, const char *s) { put_bytes(b, field, s, strlen(s)); }
+
+/* `sub` as a length-delimited field of `b`; `sub` is emptied for reuse */
+static void put_msg(wbuf *b, unsigned field, wbuf *sub) {
+    if (sub->oom) b->oom = 1;
+    put_bytes(b, field, sub->p, sub->n);
+    sub->n = 0;
+}
+
+typedef struct {
+    wbuf nodes, inits, body, attr;
+} writer;
+
+/* NodeProto: inputs (1), output (2), name (3) = output, op_type (4), attributes (5: name 1, i 3, type 20 = INT) */
+static const char *node(writer *w, const char *op, const char *const *inputs, const char *output, const char *key,
+                        int64_t value, const char *key2, int64_t value2) {
+    for (size_t i = 0; inputs[i]; i++) put_str(&w->body, 1, inputs[i]);
+    put_str(&w->body, 2, output);
+    put_str(&w->body, 3, output);
+    put_str(&w->body, 4, op);
+    const char *keys[2] = {key, key2};
+    int64_t values[2] = {value, value2};
+    for (int i = 0; i < 2 && keys[i]; i++) {
+        put_str(&w->attr, 1, keys[i]);
+        put_int(&w->attr, 3, values[i]);
+        put_int(&w->attr, 20, 2);
+        put_msg(&w->body, 5, &w->attr);
+    }
+    put_msg(&w->nodes, 1, &w->body);
+    return output;
+}
+
+#define IN(...) ((const char *const[]){__VA_ARGS__, NULL})
+#define NODE(op, inputs, output) node(w, op, inputs, output, NULL, 0, NULL, 0)
+#define NODE1(op, inputs, output, k, v) node(w, op, inputs, output, k, v, NULL, 0)
+
+/* TensorProto: dims (1), data_type (2), name (8), then raw_data (9) or external data (13: location, 14: EXTERNAL) */
+static const char *tensor_proto(writer *w, const char *name, int dtype, size_t ndims, size_t d0, size_t d1,
+                                const uint8_t *raw, size_t nraw) {
+    size_t dims[2] = {d0, d1};
+    for (size_t i = 0; i < ndims; i++) put_int(&w->body, 1, (int64_t)dims[i]);
+    put_int(&w->body, 2, dtype);
+    put_str(&w->body, 8, name);
+    if (raw) {
+        put_bytes(&w->body, 9, raw, nraw);
+    } else {
+        put_str(&w->attr, 1, "location");
+        put_str(&w->attr, 2, "danpack-bundle");
+        put_msg(&w->body, 13, &w->attr);
+        put_int(&w->body, 14, 1);
+    }
+    put_msg(&w->inits, 5, &w->body);
+    return name;
+}
+
+static const char *const_int64(writer *w, const char *name, size_t ndims, uint8_t value) {
+    const uint8_t raw[8] = {value, 0, 0, 0, 0, 0, 0, 0};
+    return tensor_proto(w, name, T_INT64, ndims, 1, 0, raw, 8);
+}
+
+/* ValueInfoProto: name (1), type (2: tensor_type 1: elem_type 1, shape 2: dims 1 each dim_value 1 or dim_param 2) */
+static void value_info(wbuf *graph, unsigned field, const char *name, int dtype, size_t classes) {
+    wbuf dim = {0}, shape = {0}, type = {0}, info = {0};
+    put_str(&dim, 2, "batch");
+    put_msg(&shape, 1, &dim);
+    if (!strcmp(name, "ids")) put_str(&dim, 2, "tokens");
+    else if (strcmp(name, "counts") != 0) put_int(&dim, 1, (int64_t)classes);
+    if (dim.n || dim.oom) put_msg(&shape, 1, &dim);
+    put_int(&type, 1, dtype);
+    put_msg(&type, 2, &shape);
+    put_msg(&dim, 1, &type); /* TypeProto.tensor_type */
+    put_str(&info, 1, name);
+    put_msg(&info, 2, &dim);
+    put_msg(graph, field, &info);
+    free(dim.p);
+    free(shape.p);
+    free(type.p);
+    free(info.p);
+}
+
+size_t dp_write_graph(size_t rows, size_t width, int quantized, size_t classes, const size_t *layers, size_t nlayers,
+                      uint8_t *out, size_t cap) {
+    writer ww = {{0}, {0}, {0}, {0}}, *w = &ww;
+    wbuf graph = {0}, model = {0};
+    const char *axis_0 = const_int64(w, "axis_0", 1, 0), *axis_1 = const_int64(w, "axis_1", 1, 1);
+    static const uint8_t one_f_raw[4] = {0x00, 0x00, 0x80, 0x3F}; /* 1.0f little-endian */
+    const char *one_f = tensor_proto(w, "one_f", T_FLOAT, 0, 0, 0, one_f_raw, 4);
+
+    /* 1. mask from counts: position < count -> (B, T) float */
+    const char *width_t = node(w, "Shape", IN("ids"), "width_t", "start", 1, "end", 2); /* (1,) */
+    const char *width_s = NODE("Squeeze", IN(width_t, axis_0), "width_s"); /* () */
+    const char *zero_i = const_int64(w, "zero_i", 0, 0), *one_i = const_int64(w, "one_i", 0, 1);
+    const char *positions = NODE("Range", IN(zero_i, width_s, one_i), "positions"); /* (T,) */
+    const char *pos_row = NODE("Unsqueeze", IN(positions, axis_0), "pos_row"); /* (1, T) */
+    const char *count_col = NODE("Unsqueeze", IN("counts", axis_1), "count_col"); /* (B, 1) */
+    const char *mask_b = NODE("Less", IN(pos_row, count_col), "mask_b");
+    const char *weight = NODE1("Cast", IN(mask_b), "mask", "to", T_FLOAT); /* (B, T) */
+
+    /* 2. per-token weight = mask * row scale / max(count, 1) -> (B, T) */
+    const char *table = tensor_proto(w, "table", quantized ? T_INT8 : T_FLOAT, 2, rows, width, NULL, 0);
+    if (quantized) {
+        const char *scales = tensor_proto(w, "scales", T_FLOAT, 1, rows, 0, NULL, 0);
+        const char *row_scales = NODE("Gather", IN(scales, "ids"), "row_scales");
+        weight = NODE("Mul", IN(weight, row_scales), "scaled_mask"); /* (B, T) */
+    }
+    const char *counts_f = NODE1("Cast", IN("counts"), "counts_f", "to", T_FLOAT);
+    const char *denom = NODE("Max", IN(counts_f, one_f), "denom"); /* (B,) */
+    const char *denom_col = NODE("Unsqueeze", IN(denom, axis_1), "denom_col");
+    weight = NODE("Div", IN(weight, denom_col), "token_weight"); /* (B, T) */
+
+    /* 3. gather rows, mean as a batched matmul: (B, 1, T) @ (B, T, W) -> (B, W) */
+    const char *rows_t = NODE("Gather", IN(table, "ids"), "rows"); /* (B, T, W) */
+    if (quantized) rows_t = NODE1("Cast", IN(rows_t), "rows_f", "to", T_FLOAT);
+    const char *weight3 = NODE("Unsqueeze", IN(weight, axis_1), "token_weight3"); /* (B, 1, T) */
+    const char *mean3 = NODE("MatMul", IN(weight3, rows_t), "mean3");
+    char x[40] = "mean", z[40], name[40], wname[40];
+    NODE("Squeeze", IN(mean3, axis_1), x); /* (B, W) */
+
+    /* 4. feed-forward stack: per layer {has weight, activation, out, in} */
+    for (size_t i = 0; i < nlayers; i++) {
+        const size_t *L = layers + 4 * i;
+        snprintf(name, sizeof(name), "layer.%zu.bias", i);
+        tensor_proto(w, name, T_FLOAT, 1, L[2], 0, NULL, 0);
+        snprintf(z, sizeof(z), "layer%zu_z", i);
+        if (L[0]) {
+            snprintf(wname, sizeof(wname), "layer.%zu.weight", i);
+            tensor_proto(w, wname, T_FLOAT, 2, L[2], L[3], NULL, 0);
+            node(w, "Gemm", IN(x, wname, name), z, "transB", 1, NULL, 0);
+        } else {
+            NODE("Add", IN(x, name), z);
+        }
+        if (L[1] == DP_ACT_RELU || L[1] == DP_ACT_TANH) {
+            snprintf(name, sizeof(name), "layer%zu_a", i);
+            NODE(L[1] == DP_ACT_RELU ? "Relu" : "Tanh", IN(z), name);
+            memcpy(z, name, sizeof(z));
+        }
+        memcpy(x, z, sizeof(x));
+    }
+    NODE("Identity", IN(x), "logits");
+    NODE1("Softmax", IN("logits"), "probs", "axis", -1);
+
+    if (w->nodes.oom || w->inits.oom) graph.oom = 1;
+    put_raw(&graph, w->nodes.p, w->nodes.n);
+    put_str(&graph, 2, "danpack_dan");
+    put_raw(&graph, w->inits.p, w->inits.n);
+    value_info(&graph, 11, "ids", T_INT64, classes);
+    value_info(&graph, 11, "counts", T_INT64, classes);
+    value_info(&graph, 12, "probs", T_FLOAT, classes);
+    value_info(&graph, 12, "logits", T_FLOAT, classes);
+    put_int(&model, 1, IR_VERSION);
+    put_str(&model, 2, "danpack");
+    put_msg(&model, 7, &graph);
+    put_str(&w->attr, 1, ""); /* OperatorSetIdProto: domain (1), version (2) */
+    put_int(&w->attr, 2, OPSET);
+    put_msg(&model, 8, &w->attr);
+    size_t len = model.oom ? 0 : model.n;
+    if (len && out) memcpy(out, model.p, len < cap ? len : cap);
+    free(w->nodes.p);
+    free(w->inits.p);
+    free(w->body.p);
+    free(w->attr.p);
+    free(graph.p);
+    free(model.p);
+    return len;
+}
+
+/* ---- reading, for the message (runtime/onnx_wire.py _fields) ---- */
 
 typedef struct {
     const uint8_t *p;
@@ -22,24 +237,18 @@ typedef struct {
 typedef struct {
     uint64_t field, value;
     int wire;
-    slice sub;
+    const uint8_t *v; /* the value's bytes (for a varint: its encoding) */
+    size_t vn;
 } pfield;
 
 static int varint(pbuf *b, uint64_t *out) {
     uint64_t v = 0;
-    int over = 0;
     for (int shift = 0; shift < 70; shift += 7) {
         if (b->pos >= b->n) return -1;
         uint8_t c = b->p[b->pos++];
-        if (shift < 64) {
-            uint64_t part = (uint64_t)(c & 0x7F) << shift;
-            if (shift > 57 && (c & 0x7F) >> (64 - shift)) over = 1;
-            v |= part;
-        } else if (c & 0x7F) {
-            over = 1;
-        }
+        if (shift < 64) v |= (uint64_t)(c & 0x7F) << shift;
         if (c < 0x80) {
-            *out = over ? UINT64_MAX : v;
+            *out = v;
             return 0;
         }
     }
@@ -49,269 +258,229 @@ static int varint(pbuf *b, uint64_t *out) {
 /* 1: a field, 0: end of message, -1: malformed */
 static int next(pbuf *b, pfield *f) {
     if (b->pos >= b->n) return 0;
-    uint64_t key;
+    uint64_t key, len = 0;
     if (varint(b, &key)) return -1;
     f->field = key >> 3;
     f->wire = (int)(key & 7);
     if (f->field == 0) return -1;
-    if (f->wire == 0) return varint(b, &f->value) ? -1 : 1;
-    if (f->wire == 1 || f->wire == 5) {
-        size_t k = f->wire == 1 ? 8 : 4;
-        if (k > b->n - b->pos) return -1;
-        b->pos += k;
-        return 1;
+    size_t start = b->pos;
+    if (f->wire == 0) {
+        if (varint(b, &f->value)) return -1;
+        len = b->pos - start;
+    } else if (f->wire == 1 || f->wire == 5) {
+        len = f->wire == 1 ? 8 : 4;
+    } else if (f->wire == 2) {
+        if (varint(b, &len)) return -1;
+        start = b->pos;
+    } else {
+        return -1;
     }
-    if (f->wire == 2) {
-        uint64_t len;
-        if (varint(b, &len) || len > b->n - b->pos) return -1;
-        f->sub.p = b->p + b->pos;
-        f->sub.n = (size_t)len;
-        b->pos += (size_t)len;
-        return 1;
-    }
-    return -1;
+    if (len > b->n - start) return -1;
+    f->v = b->p + start;
+    f->vn = (size_t)len;
+    b->pos = start + (size_t)len;
+    return 1;
 }
 
-/* Every field of a message is well-formed, and the listed string fields are length-delimited UTF-8. */
-static int check_message(slice m, const int *text, size_t ntext) {
-    pbuf b = {m.p, m.n, 0};
-    pfield f;
+/* the fields of a message (NULL when malformed); *n set */
+static pfield *fields_of(const uint8_t *p, size_t len, size_t *n) {
+    pbuf b = {p, len, 0};
+    pfield f, *v = NULL;
+    size_t cap = 0;
     int r;
+    *n = 0;
     while ((r = next(&b, &f)) == 1) {
-        for (size_t i = 0; i < ntext; i++) {
-            if (f.field != (uint64_t)text[i]) continue;
-            if (f.wire != 2 || !dp_utf8_valid(f.sub.p, f.sub.n)) return -1;
+        if (*n == cap) {
+            cap = cap ? 2 * cap : 16;
+            pfield *m = realloc(v, cap * sizeof(pfield));
+            if (!m) break;
+            v = m;
         }
+        v[(*n)++] = f;
     }
-    return r;
+    if (r != 0) {
+        free(v);
+        return NULL;
+    }
+    return v ? v : calloc(1, sizeof(pfield));
 }
 
-static const int T_MODEL[] = {2, 3, 4, 6}, T_OPSET[] = {1}, T_GRAPH[] = {2, 10}, T_NODE[] = {1, 2, 3, 4, 6, 7},
-                 T_ATTR[] = {1, 13, 21}, T_TENSOR[] = {8, 12}, T_VALUE[] = {1, 3};
-#define CHECK(m, t) check_message(m, t, sizeof(t) / sizeof(t[0]))
-
-typedef struct {
-    slice name;
-    size_t order;
-    uint64_t dtype;
-    size_t ndims;
-    uint64_t dims[2];
-    int many_dims;
-} ext;
-
-typedef struct {
-    slice *v;
-    size_t n, cap;
-} names;
-
-static int add(names *s, slice x) {
-    if (s->n == s->cap) {
-        size_t cap = s->cap ? 2 * s->cap : 16;
-        slice *v = realloc(s->v, cap * sizeof(slice));
-        if (!v) return -1;
-        s->v = v;
-        s->cap = cap;
-    }
-    s->v[s->n++] = x;
-    return 0;
+static int same_field(const pfield *a, const pfield *b) {
+    return a->field == b->field && a->wire == b->wire && a->vn == b->vn && (!a->vn || !memcmp(a->v, b->v, a->vn));
 }
 
-static int cmp_slice(const void *a, const void *b) {
-    const slice *x = a, *y = b;
-    size_t k = x->n < y->n ? x->n : y->n;
-    int c = k ? memcmp(x->p, y->p, k) : 0;
-    return c ? c : (x->n > y->n) - (x->n < y->n);
+static const char *model_field(uint64_t f) {
+    switch (f) {
+    case 1: return "ir_version";
+    case 2: return "producer_name";
+    case 3: return "producer_version";
+    case 4: return "domain";
+    case 5: return "model_version";
+    case 6: return "doc_string";
+    case 7: return "graph";
+    case 8: return "opset_import";
+    case 14: return "metadata_props";
+    case 20: return "training_info";
+    case 25: return "functions";
+    default: return NULL;
+    }
 }
 
-static int has(const names *s, const uint8_t *p, size_t n) {
-    slice key = {p, n};
-    return s->n && bsearch(&key, s->v, s->n, sizeof(slice), cmp_slice) != NULL;
+static const char *graph_field(uint64_t f) {
+    switch (f) {
+    case 1: return "node";
+    case 2: return "graph name";
+    case 5: return "initializer";
+    case 10: return "doc_string";
+    case 11: return "input";
+    case 12: return "output";
+    case 13: return "value_info";
+    case 14: return "quantization_annotation";
+    case 15: return "sparse_initializer";
+    default: return NULL;
+    }
 }
 
-static int has_str(const names *s, const char *z) { return has(s, (const uint8_t *)z, strlen(z)); }
-
-static int cmp_ext(const void *a, const void *b) {
-    const ext *x = a, *y = b;
-    int c = cmp_slice(&x->name, &y->name);
-    return c ? c : (x->order > y->order) - (x->order < y->order);
+static void kind(char *out, size_t cap, const char *known, uint64_t f) {
+    if (known) snprintf(out, cap, "%s", known);
+    else snprintf(out, cap, "field %llu", (unsigned long long)f);
 }
 
-static const char *const OPS[] = {"Add", "Cast", "Div", "Gather", "Gemm", "Identity", "Less", "MatMul", "Max", "Mul",
-                                  "Range", "Relu", "Shape", "Softmax", "Squeeze", "Tanh", "Unsqueeze"};
-
-static int known_op(slice op) {
-    for (size_t i = 0; i < sizeof(OPS) / sizeof(OPS[0]); i++)
-        if (strlen(OPS[i]) == op.n && memcmp(OPS[i], op.p, op.n) == 0) return 1;
-    return 0;
-}
-
-int dp_check_graph(const char *src, const uint8_t *g, size_t n, const tensor *ts, size_t nts, dp_error *err) {
-    names used = {0}, defined = {0}, inputs = {0}, outputs = {0};
-    ext *exts = NULL;
-    size_t nexts = 0, extcap = 0;
-    int rc = -1;
-    const char *why = "is not a well-formed ONNX model";
-    char detail[160] = "";
-    slice model = {g, n}, body = {0};
-    pbuf b = {g, n, 0};
-    pfield f;
-    int r, bodies = 0;
-    if (CHECK(model, T_MODEL)) goto done;
-    while ((r = next(&b, &f)) == 1) {
-        if (f.field == 8 && f.wire == 2 && CHECK(f.sub, T_OPSET)) goto done;
-        if (f.field == 7 && f.wire == 2) {
-            body = f.sub;
-            bodies++;
-        }
-    }
-    if (r < 0) goto done;
-    if (bodies != 1) {
-        snprintf(detail, sizeof(detail), " (%d graphs in the model, expected 1)", bodies);
-        goto done;
-    }
-    if (CHECK(body, T_GRAPH)) goto done;
-    b = (pbuf){body.p, body.n, 0};
-    while ((r = next(&b, &f)) == 1) {
-        if (f.wire != 2) continue;
-        if (f.field == 1) { /* NodeProto */
-            if (CHECK(f.sub, T_NODE)) goto done;
-            slice op = {(const uint8_t *)"", 0}, domain = {(const uint8_t *)"", 0};
-            pbuf nb = {f.sub.p, f.sub.n, 0};
-            pfield nf;
-            while (next(&nb, &nf) == 1) {
-                if (nf.field == 1 && add(&used, nf.sub)) goto oom;
-                if (nf.field == 2 && add(&defined, nf.sub)) goto oom;
-                if (nf.field == 4) op = nf.sub;
-                if (nf.field == 7) domain = nf.sub;
-                if (nf.field == 5 && nf.wire == 2 && CHECK(nf.sub, T_ATTR)) goto done;
-            }
-            int default_domain = domain.n == 0 || (domain.n == 7 && memcmp(domain.p, "ai.onnx", 7) == 0);
-            if (!default_domain || !known_op(op)) {
-                why = "uses an operator which danpack never writes";
-                snprintf(detail, sizeof(detail), " ('%.*s'; it writes only Add, Cast, Div, Gather, Gemm, Identity, Less, "
-                         "MatMul, Max, Mul, Range, Relu, Shape, Softmax, Squeeze, Tanh, Unsqueeze)",
-                         (int)(op.n > 40 ? 40 : op.n), (const char *)op.p);
-                goto done;
-            }
-        } else if (f.field == 5) { /* TensorProto initializer */
-            if (CHECK(f.sub, T_TENSOR)) goto done;
-            ext e = {{(const uint8_t *)"", 0}, nexts, 0, 0, {0, 0}, 0};
-            uint64_t location = 0;
-            pbuf tb = {f.sub.p, f.sub.n, 0};
-            pfield tf;
-            int tr;
-            while ((tr = next(&tb, &tf)) == 1) {
-                if (tf.field == 8) e.name = tf.sub;
-                else if (tf.field == 2 && tf.wire == 0) e.dtype = tf.value;
-                else if (tf.field == 14 && tf.wire == 0) location = tf.value;
-                else if (tf.field == 1 && tf.wire == 0) {
-                    if (e.ndims < 2) e.dims[e.ndims] = tf.value;
-                    else e.many_dims = 1;
-                    e.ndims++;
-                } else if (tf.field == 1 && tf.wire == 2) {
-                    pbuf db = {tf.sub.p, tf.sub.n, 0};
-                    while (db.pos < db.n) {
-                        uint64_t d;
-                        if (varint(&db, &d)) goto done;
-                        if (e.ndims < 2) e.dims[e.ndims] = d;
-                        else e.many_dims = 1;
-                        e.ndims++;
-                    }
-                }
-            }
-            if (tr < 0) goto done;
-            if (add(&defined, e.name)) goto oom;
-            if (location == 1) {
-                if (nexts == extcap) {
-                    size_t cap = extcap ? 2 * extcap : 8;
-                    ext *v = realloc(exts, cap * sizeof(ext));
-                    if (!v) goto oom;
-                    exts = v;
-                    extcap = cap;
-                }
-                exts[nexts++] = e;
-            }
-        } else if (f.field == 11 || f.field == 12) { /* ValueInfoProto */
-            if (CHECK(f.sub, T_VALUE)) goto done;
-            pbuf vb = {f.sub.p, f.sub.n, 0};
-            pfield vf;
-            while (next(&vb, &vf) == 1) {
-                if (vf.field != 1) continue;
-                if (add(f.field == 11 ? &inputs : &outputs, vf.sub) || add(&defined, vf.sub)) goto oom;
-            }
-        }
-    }
-    if (r < 0) goto done;
-    qsort(defined.v, defined.n, sizeof(slice), cmp_slice);
-    qsort(inputs.v, inputs.n, sizeof(slice), cmp_slice);
-    qsort(outputs.v, outputs.n, sizeof(slice), cmp_slice);
-    static const char *const need_in[] = {"ids", "counts"}, *const need_out[] = {"probs", "logits"};
-    for (int i = 0; i < 2; i++) {
-        if (!has_str(&inputs, need_in[i])) {
-            why = "has no input";
-            snprintf(detail, sizeof(detail), " '%s'", need_in[i]);
-            goto done;
-        }
-        if (!has_str(&outputs, need_out[i])) {
-            why = "has no output";
-            snprintf(detail, sizeof(detail), " '%s'", need_out[i]);
-            goto done;
-        }
-    }
-    for (size_t i = 0; i < used.n; i++) {
-        if (used.v[i].n && !has(&defined, used.v[i].p, used.v[i].n)) {
-            why = "uses a name which no input, initializer or node defines";
-            snprintf(detail, sizeof(detail), " ('%.*s')", (int)(used.v[i].n > 40 ? 40 : used.v[i].n), (const char *)used.v[i].p);
-            goto done;
-        }
-    }
-    /* external initializers: the last of a repeated name counts (as a Python dict) */
-    qsort(exts, nexts, sizeof(ext), cmp_ext);
+/* printable ASCII as it is, ' and \ escaped, every other byte as \xNN (inert on a terminal); in quotes or not */
+static void escape(char *out, size_t cap, const uint8_t *p, size_t n, int quoted) {
     size_t k = 0;
-    for (size_t i = 0; i < nexts; i++) {
-        if (i + 1 < nexts && cmp_slice(&exts[i].name, &exts[i + 1].name) == 0) continue;
-        exts[k++] = exts[i];
+    if (quoted) out[k++] = '\'';
+    for (size_t i = 0; i < n && k + 6 < cap; i++) {
+        if (p[i] == '\'' || p[i] == '\\') k += (size_t)snprintf(out + k, cap - k, "\\%c", p[i]);
+        else if (p[i] >= 0x20 && p[i] < 0x7F) out[k++] = (char)p[i];
+        else k += (size_t)snprintf(out + k, cap - k, "\\x%02x", p[i]);
     }
-    nexts = k;
-    qsort(used.v, used.n, sizeof(slice), cmp_slice);
-    for (size_t i = 0; i < nexts; i++) {
-        const ext *e = &exts[i];
-        const tensor *t = NULL;
-        for (size_t j = 0; j < nts && !t; j++)
-            if (ts[j].name_len == e->name.n && memcmp(ts[j].name, e->name.p, e->name.n) == 0) t = &ts[j];
-        int name_len = (int)(e->name.n > 40 ? 40 : e->name.n);
-        if (!t) {
-            why = "takes a tensor the bundle does not hold";
-            snprintf(detail, sizeof(detail), " ('%.*s')", name_len, (const char *)e->name.p);
-            goto done;
-        }
-        if (!has(&used, e->name.p, e->name.n)) {
-            why = "declares a tensor that no node uses";
-            snprintf(detail, sizeof(detail), " ('%.*s')", name_len, (const char *)e->name.p);
-            goto done;
-        }
-        int same = e->dtype == (t->int8 ? 3u : 1u) && e->ndims == t->ndim && !e->many_dims;
-        for (size_t d = 0; same && d < t->ndim; d++) same = e->dims[d] == (uint64_t)t->shape[d];
-        if (!same) {
-            why = "declares a tensor with another type or shape than the bundle holds";
-            snprintf(detail, sizeof(detail), " ('%.*s')", name_len, (const char *)e->name.p);
-            goto done;
+    if (quoted) out[k++] = '\'';
+    out[k] = 0;
+}
+
+/* one part of a GraphProto in words: its kind, operator and name (runtime/graph.py _describe) */
+static void describe(char *out, size_t cap, const pfield *f) {
+    char k[40], name[260] = "", op[200] = "";
+    kind(k, sizeof(k), graph_field(f->field), f->field);
+    uint64_t named = f->field == 1 ? 3 : f->field == 5 ? 8 : f->field >= 11 && f->field <= 13 ? 1 : 0;
+    if (f->wire != 2 || !named) {
+        snprintf(out, cap, "%s", k);
+        return;
+    }
+    size_t n;
+    pfield *parts = fields_of(f->v, f->vn, &n);
+    if (!parts) {
+        snprintf(out, cap, "%s (malformed)", k);
+        return;
+    }
+    int has_name = 0;
+    for (size_t i = 0; i < n; i++) {
+        if (parts[i].wire != 2) continue;
+        if (parts[i].field == named) {
+            escape(name, sizeof(name), parts[i].v, parts[i].vn < 60 ? parts[i].vn : 60, 1);
+            has_name = 1;
+        } else if (f->field == 1 && parts[i].field == 4) {
+            escape(op, sizeof(op), parts[i].v, parts[i].vn < 40 ? parts[i].vn : 40, 0);
         }
     }
-    if (nexts != nts) {
-        why = "does not use every tensor of the bundle";
+    free(parts);
+    if (!has_name) escape(name, sizeof(name), (const uint8_t *)"", 0, 1);
+    snprintf(out, cap, "%s %s%s%s", k, op, *op ? " " : "", name);
+}
+
+/* the first differing part of two serialised models in words (runtime/graph.py first_difference) */
+static void first_difference(char *out, size_t cap, const uint8_t *got_p, size_t got_n, const uint8_t *want_p,
+                             size_t want_n) {
+    size_t ng, nw, ngp = 0, nwp = 0;
+    pfield *got = fields_of(got_p, got_n, &ng), *want = fields_of(want_p, want_n, &nw), *gparts = NULL, *wparts = NULL;
+    char found[512], wanted[512];
+    if (!got || !want) {
+        snprintf(out, cap, "the model is not well-formed protobuf");
         goto done;
     }
-    rc = 0;
-    goto done;
-oom:
-    why = "could not be read (out of memory)";
+    snprintf(out, cap, "the model differs in its encoding");
+    for (size_t i = 0; i < (ng > nw ? ng : nw); i++) {
+        const pfield *g = i < ng ? &got[i] : NULL, *w = i < nw ? &want[i] : NULL;
+        if (g && w && same_field(g, w)) continue;
+        if (!g || !w || g->field != 7 || w->field != 7 || g->wire != 2) {
+            if (g) kind(found, sizeof(found), model_field(g->field), g->field);
+            else snprintf(found, sizeof(found), "nothing");
+            if (w) kind(wanted, sizeof(wanted), model_field(w->field), w->field);
+            else snprintf(wanted, sizeof(wanted), "nothing");
+            snprintf(out, cap, "model field %zu is %s%s, expected %s", i + 1, found,
+                     strcmp(found, wanted) ? "" : " with other content", wanted);
+            goto done;
+        }
+        if (!(gparts = fields_of(g->v, g->vn, &ngp))) {
+            snprintf(out, cap, "the graph is not well-formed protobuf");
+            goto done;
+        }
+        if (!(wparts = fields_of(w->v, w->vn, &nwp))) goto done;
+        snprintf(out, cap, "the graph differs in its encoding");
+        for (size_t j = 0; j < (ngp > nwp ? ngp : nwp); j++) {
+            const pfield *a = j < ngp ? &gparts[j] : NULL, *b = j < nwp ? &wparts[j] : NULL;
+            if (a && b && same_field(a, b)) continue;
+            if (a) describe(found, sizeof(found), a);
+            else snprintf(found, sizeof(found), "nothing");
+            if (b) describe(wanted, sizeof(wanted), b);
+            else snprintf(wanted, sizeof(wanted), "nothing");
+            if (a && b && a->field == b->field) {
+                char k[40];
+                size_t index = 0;
+                for (size_t q = 0; q <= j; q++) index += wparts[q].field == b->field;
+                kind(k, sizeof(k), graph_field(b->field), b->field);
+                if (!strcmp(found, wanted))
+                    snprintf(out, cap, "%s %zu (%s) differs in its inputs, attributes or contents", k, index, wanted);
+                else
+                    snprintf(out, cap, "%s %zu is %s, expected %s", k, index, found, wanted);
+            } else {
+                snprintf(out, cap, "part %zu of the graph is %s, expected %s", j + 1, found, wanted);
+            }
+            goto done;
+        }
+        goto done;
+    }
 done:
-    if (rc) dp_fail(err, "%s: graph %s%s; repack the model with `danpack pack`", src, why, detail);
-    free(used.v);
-    free(defined.v);
-    free(inputs.v);
-    free(outputs.v);
-    free(exts);
+    free(got);
+    free(want);
+    free(gparts);
+    free(wparts);
+}
+
+/* ---- the rule ---- */
+
+int dp_check_graph(const char *src, const uint8_t *g, size_t n, const dp_bundle *b, size_t ntensors, dp_error *err) {
+    size_t *layers = malloc(4 * b->nlayers * sizeof(size_t) + 1), expected_tensors = b->q ? 2 : 1;
+    if (!layers) return dp_fail(err, "%s: out of memory", src), -1;
+    for (size_t i = 0; i < b->nlayers; i++) {
+        const dp_layer *L = &b->layers[i];
+        size_t *d = layers + 4 * i;
+        d[0] = L->weight != NULL;
+        d[1] = (size_t)L->act;
+        d[2] = L->out;
+        d[3] = L->weight ? L->in : 0;
+        expected_tensors += L->weight ? 2 : 1;
+    }
+    size_t len = dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, NULL, 0);
+    uint8_t *want = len ? malloc(len) : NULL;
+    if (want) dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, want, len);
+    free(layers);
+    int rc = 0;
+    if (!want) {
+        dp_fail(err, "%s: out of memory", src);
+        rc = -1;
+    } else if (len != n || memcmp(want, g, n) != 0) {
+        char why[1200];
+        first_difference(why, sizeof(why), g, n, want, len);
+        dp_fail(err, "%s: graph is not the one danpack writes for this manifest: %s; repack the model with `danpack pack`",
+                src, why);
+        rc = -1;
+    } else if (ntensors != expected_tensors) { /* the graph takes exactly its tensors: any other is refused */
+        dp_fail(err, "%s: graph does not use every tensor of the bundle (%zu held, the graph takes %zu); repack the model "
+                     "with `danpack pack`", src, ntensors, expected_tensors);
+        rc = -1;
+    }
+    free(want);
     return rc;
 }
