@@ -287,3 +287,114 @@ def test_fast_path_gives_identical_ids_and_answers(bundles, texts, which):
     _, probs, python_known = clf.predict_known(texts)
     assert np.array_equal(fast, clf.predict_proba(texts)) and np.array_equal(fast_probs, probs)
     assert np.array_equal(known, python_known)
+
+
+# --- the canonical-graph rule in C (runtime/native/graph.c): the C writer's bytes are runtime/graph.py's ------------
+
+ACTIVATIONS = {None: 0, "relu": 1, "tanh": 2}  # bundle_impl.h DP_ACT_*
+
+
+@pytest.fixture(scope="module")
+def native_lib():
+    """libdanpack.so through ctypes, for its graph writer dp_write_graph (the reader's own, exported for this test)."""
+    import ctypes
+
+    subprocess.run(["make", "-s", "-C", str(NATIVE), "libdanpack.so"], check=True, capture_output=True)
+    lib = ctypes.CDLL(str(NATIVE / "libdanpack.so"))
+    size = ctypes.c_size_t
+    lib.dp_write_graph.restype = size
+    lib.dp_write_graph.argtypes = [size, size, ctypes.c_int, size, ctypes.POINTER(size), size, ctypes.c_char_p, size]
+    return lib
+
+
+def _c_graph(lib, spec) -> bytes:
+    import ctypes
+
+    flat = [n for (has_weight, act), (out, inp) in zip(spec.layers, spec.layer_shapes)
+            for n in (int(has_weight), ACTIVATIONS[act], out, inp)]
+    layers = (ctypes.c_size_t * max(len(flat), 1))(*flat)
+    args = (spec.rows, spec.width, int(spec.quantized), spec.classes, layers, len(spec.layers))
+    n = lib.dp_write_graph(*args, None, 0)
+    out = ctypes.create_string_buffer(n)
+    assert lib.dp_write_graph(*args, out, n) == n > 0
+    return out.raw
+
+
+@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(rows=st.integers(1, 3_000_000), width=st.integers(1, 1024), quantized=st.booleans(),
+       layers=st.lists(st.tuples(st.booleans(), st.sampled_from(list(ACTIVATIONS)), st.integers(1, 5000)), min_size=1,
+                       max_size=6), classes=st.integers(2, 1024))
+def test_c_graph_writer_gives_python_write_graphs_bytes(native_lib, rows, width, quantized, layers, classes):
+    from danpack.runtime.graph import GraphSpec, first_difference, write_graph
+
+    shapes, inp = [], width
+    for has_weight, _, out in layers:
+        shapes.append((out, inp if has_weight else 0))
+        inp = out
+    spec = GraphSpec(rows, width, quantized, tuple((w, a) for w, a, _ in layers), tuple(shapes), classes)
+    got, want = _c_graph(native_lib, spec), write_graph(spec)
+    assert got == want, first_difference(got, want)
+
+
+def _extra_models():
+    """Packs beside the test bundles: other layer counts (1 to 4), label counts (2, 7), activations and folding."""
+    from danpack.model import FloatModel, Layer
+
+    rng = np.random.default_rng(41)
+    maker = _load_module(NATIVE / "tests" / "make_test_bundles.py", "make_test_bundles")
+    tokens = maker.TOKENS[:-1]
+
+    def model(sizes, labels, activation):
+        dims, layers = (5, *sizes, len(labels)), []
+        for i in range(len(dims) - 1):
+            act = activation if i < len(dims) - 2 else None
+            layers.append(Layer(rng.normal(size=(dims[i + 1], dims[i])).astype(np.float32),
+                                rng.normal(size=dims[i + 1]).astype(np.float32), act))
+        return FloatModel(tokens, rng.normal(size=(len(tokens), 5)).astype(np.float32), tuple(layers), tuple(labels))
+
+    return {"one_layer_2": (model((), ("no", "yes"), None), "no", True),
+            "four_layers_7": (model((6, 4, 3), tuple(f"l{i}" for i in range(7)), "tanh"), "yes", True),
+            "two_layers_float": (model((4,), ("a", "b", "c", "d"), "relu"), "yes", False)}
+
+
+def test_every_bundle_holds_the_c_writers_graph(native_lib, bundles, program, tmp_path):
+    """The shipped demo bundles, every test variant (fold yes/no, int8 or float32, relu/tanh), the real-data bundle
+    and packs with 1 to 4 layers and 2 to 7 labels: the C writer gives the graph's bytes, and the C program loads them."""
+    from danpack.model import save_model
+    from danpack.pack.build import PackOptions, pack_model
+    from danpack.runtime.bundle import read_bundle
+    from danpack.runtime.graph import spec_from_tensors
+
+    paths = list(bundles)
+    for name, (model, fold, quantize) in _extra_models().items():
+        save_model(model, tmp_path / name)
+        pack_model(tmp_path / name, tmp_path / f"{name}.bundle", PackOptions(fold=fold, quantize=quantize, measure=False))
+        paths.append(tmp_path / f"{name}.bundle")
+    seen = set()
+    for path in paths:
+        b = read_bundle(path)
+        m = b.manifest
+        spec = spec_from_tensors(len(m["labels"]), m["table"]["dtype"] == "int8", m["layers"],
+                                 {k: t.shape for k, t in b.tensors.items()})
+        assert _c_graph(native_lib, spec) == b.graph, path.name
+        seen.add((len(spec.layers), spec.classes, spec.quantized, spec.layers[0][0]))
+        run = run_native(program, [path], b"great fast charger\n")
+        assert run.returncode == 0, (path.name, run.stderr)
+    assert {n for n, *_ in seen} >= {1, 3, 4} and {c for _, c, *_ in seen} >= {2, 3, 7}
+    assert {(q, w) for *_, q, w in seen} >= {(True, True), (True, False), (False, True), (False, False)}
+
+
+def test_crafted_graphs_are_refused_with_pythons_message(program):
+    """Every crafted graph of the corpus the Python reader refuses by the canonical-graph rule is refused by the C
+    program with the same words (tests/adversarial/expected.json holds the Python messages)."""
+    corpus = REPO / "tests" / "adversarial"
+    expected = json.loads((corpus / "expected.json").read_text())
+    checked = 0
+    for name, entry in expected.items():
+        if "is not the one danpack writes" not in (entry["decode_bundle"] or ""):
+            continue
+        run = run_native(program, [corpus / name], b"x\n")
+        assert run.returncode == 2 and run.stdout == b""
+        assert entry["decode_bundle"].format(source=corpus / name) in run.stderr.decode(), (name, run.stderr)
+        checked += 1
+    assert checked >= 7
