@@ -384,17 +384,106 @@ def test_every_bundle_holds_the_c_writers_graph(native_lib, bundles, program, tm
     assert {(q, w) for *_, q, w in seen} >= {(True, True), (True, False), (False, True), (False, False)}
 
 
-def test_crafted_graphs_are_refused_with_pythons_message(program):
-    """Every crafted graph of the corpus the Python reader refuses by the canonical-graph rule is refused by the C
-    program with the same words (tests/adversarial/expected.json holds the Python messages)."""
+def test_crafted_graphs_and_labels_are_refused_with_pythons_message(program):
+    """Every crafted graph of the corpus the Python reader refuses by the canonical-graph rule, and every crafted
+    label, is refused by the C program with the same words (tests/adversarial/expected.json holds Python's)."""
     corpus = REPO / "tests" / "adversarial"
     expected = json.loads((corpus / "expected.json").read_text())
     checked = 0
     for name, entry in expected.items():
-        if "is not the one danpack writes" not in (entry["decode_bundle"] or ""):
+        message = entry["decode_bundle"] or ""
+        if "is not the one danpack writes" not in message and "field 'labels' label" not in message \
+                and "field 'labels' repeats" not in message:
             continue
         run = run_native(program, [corpus / name], b"x\n")
         assert run.returncode == 2 and run.stdout == b""
         assert entry["decode_bundle"].format(source=corpus / name) in run.stderr.decode(), (name, run.stderr)
         checked += 1
-    assert checked >= 7
+    assert checked >= 13
+
+
+# --- labels: the C reader refuses what runtime/safe_text.py labels_problem refuses ------------------------------------
+
+def _c_load_error(lib, data: bytes) -> str | None:
+    """None when libdanpack loads the bundle bytes, else its message."""
+    import ctypes
+
+    lib.dp_load_bytes.restype = ctypes.c_void_p
+    lib.dp_load_bytes.argtypes = [ctypes.c_char_p, ctypes.c_size_t, ctypes.c_char_p, ctypes.c_char_p]
+    lib.dp_free.argtypes = [ctypes.c_void_p]
+    err = ctypes.create_string_buffer(512)
+    bundle = lib.dp_load_bytes(data, len(data), b"labels", err)
+    if bundle:
+        lib.dp_free(bundle)
+        return None
+    return err.value.decode("utf-8", "replace")
+
+
+@pytest.fixture(scope="module")
+def relabel(bundles):
+    """labels -> bundle bytes: the base test bundle with its three labels replaced and the checksum renewed."""
+    import msgpack
+
+    from danpack.pack.bundle import encode_bundle
+
+    outer = msgpack.unpackb(bundles[0].read_bytes(), raw=False)
+    body = msgpack.unpackb(outer["payload"], raw=False)
+
+    def make(labels):
+        body["manifest"]["labels"] = list(labels)
+        return encode_bundle(msgpack.packb(body, use_bin_type=True))
+
+    return make
+
+
+def _same_verdict(lib, data: bytes) -> tuple[str | None, str | None]:
+    from danpack.runtime.bundle import decode_bundle
+    from danpack.runtime.errors import BundleError
+
+    try:
+        decode_bundle(data, "labels")
+        python = None
+    except BundleError as e:
+        python = str(e)
+    native = _c_load_error(lib, data)
+    assert (python is None) == (native is None), (python, native)
+    if python is not None:  # the same rule fires: the same character and category, or the same kind of problem
+        for phrase in ("is empty", "characters long", "repeats the label", "holds U+"):
+            assert (phrase in python) == (phrase in native), (python, native)
+        if "holds U+" in python:
+            assert python.split("holds ")[1][:14] == native.split("holds ")[1][:14], (python, native)
+    return python, native
+
+
+LABEL_CHARS = st.characters(blacklist_categories=("Cs",))  # surrogates cannot travel in UTF-8
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(labels=st.lists(st.one_of(st.text(LABEL_CHARS, max_size=6), st.text(LABEL_CHARS, min_size=95, max_size=105),
+                                 st.sampled_from(["payment", "cable", "x", "\u00e9t\u00e9", "a b", "\u3000z"])),
+                       min_size=3, max_size=3))
+def test_random_labels_are_refused_by_c_as_by_python(native_lib, relabel, labels):
+    _same_verdict(native_lib, relabel(labels))
+
+
+def test_label_edge_code_points_match_safe_text(native_lib, relabel):
+    """Both ends of every unsafe range (each category of label_ranges.h and each unassigned range of the pinned
+    Unicode 14.0.0) and their neighbours: C refuses exactly the characters safe_text.first_unsafe names."""
+    from danpack.runtime.safe_text import first_unsafe
+    from danpack.runtime.unicode_pinned import UNASSIGNED
+
+    gen = _load_module(NATIVE / "gen_label_ranges.py", "gen_label_ranges")
+    ends = {e for a, b, _ in gen.ranges() for e in (a, b)} | {e for a, b in UNASSIGNED for e in (a, b)}
+    points = sorted({p for e in ends for p in (e - 1, e, e + 1) if 0 < p <= 0x10FFFF and not 0xD800 <= p <= 0xDFFF})
+    refused = 0
+    for p in points:
+        label = f"x{chr(p)}"
+        native = _c_load_error(native_lib, relabel(["payment", label, "cable"]))
+        python = first_unsafe(label)
+        assert (native is None) == (python is None), (hex(p), native)
+        if python is not None:
+            assert f"holds {python};" in native, (hex(p), native)
+            refused += 1
+    assert refused > 1000 and len(points) - refused > 500
+    for problem in ([""], ["a"] * 2, ["x" * 101]):  # empty, repeated, too long
+        _same_verdict(native_lib, relabel([*problem, "payment", "cable"][:3]))

@@ -10,6 +10,7 @@
 #include <zlib.h>
 
 #include "bundle_impl.h"
+#include "label_ranges.h"
 #include "msgpack.h"
 
 #define MAX_FILE_BYTES ((uint64_t)1 << 32)
@@ -335,22 +336,58 @@ static int too_deep(const dp_mp *v, int depth) {
  * separators, and the format characters a terminal or a bidi renderer acts on (soft hyphen, Arabic letter mark,
  * zero-width and directional marks, bidi embeddings, overrides and isolates, invisible operators, the byte-order
  * mark). A subset of Python's rule (every Cc, Cf, Zl, Zp, Co, Cs and Cn): the Python reader is the reference. */
-static int has_unsafe_char(const uint8_t *p, size_t len) {
+/* The first character of a (valid UTF-8) label that runtime/safe_text.py calls unsafe: its code point and general
+ * category, or 0 when there is none. Assigned ones from label_ranges.h, unassigned (Cn) from the Unicode tables. */
+static int first_unsafe(const uint8_t *p, size_t len, uint32_t *cp, const char **category) {
     for (size_t i = 0; i < len;) {
         uint32_t c = p[i];
         size_t n = c < 0x80 ? 1 : c < 0xE0 ? 2 : c < 0xF0 ? 3 : 4;
-        if (i + n > len) return 1;
-        if (n == 2) c = ((c & 0x1F) << 6) | (p[i + 1] & 0x3F);
-        if (n == 3) c = ((c & 0x0F) << 12) | ((uint32_t)(p[i + 1] & 0x3F) << 6) | (p[i + 2] & 0x3F);
-        if (n == 4) c = ((c & 0x07) << 18) | ((uint32_t)(p[i + 1] & 0x3F) << 12) | ((uint32_t)(p[i + 2] & 0x3F) << 6)
-                        | (p[i + 3] & 0x3F);
-        if (c < 0x20 || (c >= 0x7F && c <= 0x9F) || c == 0xAD || c == 0x061C || c == 0x180E
-            || (c >= 0x200B && c <= 0x200F) || (c >= 0x2028 && c <= 0x202E) || (c >= 0x2060 && c <= 0x2064)
-            || (c >= 0x2066 && c <= 0x206F) || c == 0xFEFF || (c >= 0xE000 && c <= 0xF8FF) || (c >= 0xFFF9 && c <= 0xFFFB))
-            return 1;
+        if (i + n > len) n = len - i;
+        for (size_t k = 1; k < n; k++) c = (c << 6) | (p[i + k] & 0x3F);
+        c &= n == 1 ? 0x7F : n == 2 ? 0x7FF : n == 3 ? 0xFFFF : 0x1FFFFF;
         i += n;
+        size_t lo = 0, hi = sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]);
+        while (lo < hi) { /* the first range ending at or after c */
+            size_t mid = lo + (hi - lo) / 2;
+            if (DP_UNSAFE_RANGES[mid].last < c) lo = mid + 1;
+            else hi = mid;
+        }
+        const char *cat = lo < sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]) && DP_UNSAFE_RANGES[lo].first <= c
+                        ? DP_UNSAFE_RANGES[lo].category : c >= 0x80 && (dp_props(c) & DP_P_UNASSIGNED) ? "Cn" : NULL;
+        if (cat) {
+            *cp = c;
+            *category = cat;
+            return 1;
+        }
     }
     return 0;
+}
+
+/* A label for a message as runtime/safe_text.py escape_text and repr show it: unsafe characters as \\uXXXX (astral
+ * ones as their UTF-16 pair), ' and \ escaped, the rest as it is; cut at about 200 bytes. */
+static void show_label(char *out, size_t cap, const uint8_t *p, size_t len) {
+    size_t k = 0;
+    out[k++] = '\'';
+    for (size_t i = 0; i < len && k + 16 < cap;) {
+        size_t n = p[i] < 0x80 ? 1 : p[i] < 0xE0 ? 2 : p[i] < 0xF0 ? 3 : 4;
+        if (i + n > len) n = len - i;
+        uint32_t c;
+        const char *cat;
+        if (first_unsafe(p + i, n, &c, &cat)) {
+            if (c < 0x10000) k += (size_t)snprintf(out + k, cap - k, "\\\\u%04x", (unsigned)c);
+            else k += (size_t)snprintf(out + k, cap - k, "\\\\u%04x\\\\u%04x", (unsigned)(0xD800 + ((c - 0x10000) >> 10)),
+                                       (unsigned)(0xDC00 + ((c - 0x10000) & 0x3FF)));
+        } else if (p[i] == '\'' || p[i] == '\\') {
+            out[k++] = '\\';
+            out[k++] = (char)p[i];
+        } else {
+            memcpy(out + k, p + i, n);
+            k += n;
+        }
+        i += n;
+    }
+    out[k++] = '\'';
+    out[k] = 0;
 }
 
 /* Characters of a UTF-8 string: its bytes that do not continue a sequence (Python counts str length so). */
@@ -482,15 +519,28 @@ static int check_manifest(const char *src, const dp_mp *m, const tensors *ts, dp
     int ok = labels && labels->type == MP_ARR && labels->len >= 2 && labels->len <= MAX_LABELS;
     for (size_t i = 0; ok && i < labels->len; i++) ok = labels->items[i].type == MP_STR;
     if (!ok) FAIL("field 'labels' must list 2 to %d label strings", MAX_LABELS);
+    char shown[256];
+    for (size_t i = 0; i < labels->len; i++) { /* runtime/safe_text.py labels_problem, in its order */
+        const dp_mp *l = &labels->items[i];
+        uint32_t cp;
+        const char *cat;
+        size_t chars = utf8_chars(l->p, l->len);
+        if (l->len == 0) FAIL("field 'labels' label %zu is empty", i + 1);
+        if (chars > MAX_LABEL_CHARS)
+            FAIL("field 'labels' label %zu is %zu characters long, at most %d allowed", i + 1, chars, MAX_LABEL_CHARS);
+        if (first_unsafe(l->p, l->len, &cp, &cat)) {
+            show_label(shown, sizeof(shown), l->p, l->len);
+            FAIL("field 'labels' label %zu (%s) holds U+%04X (%s); control, format, line-separator and unassigned "
+                 "characters are not allowed in labels", i + 1, shown, (unsigned)cp, cat);
+        }
+    }
     for (size_t i = 0; i < labels->len; i++) {
         const dp_mp *l = &labels->items[i];
-        if (l->len == 0) FAIL("label %zu is empty", i + 1);
-        if (utf8_chars(l->p, l->len) > MAX_LABEL_CHARS) FAIL("label %zu is longer than %d characters", i + 1, MAX_LABEL_CHARS);
-        if (has_unsafe_char(l->p, l->len))
-            FAIL("label %zu holds a control, format or line-separator character; they are not allowed in labels", i + 1);
         for (size_t j = 0; j < i; j++)
-            if (labels->items[j].len == l->len && !memcmp(labels->items[j].p, l->p, l->len))
-                FAIL("repeats the label %zu; labels must be unique", i + 1);
+            if (labels->items[j].len == l->len && !memcmp(labels->items[j].p, l->p, l->len)) {
+                show_label(shown, sizeof(shown), l->p, l->len);
+                FAIL("field 'labels' repeats the label %s; labels must be unique", shown);
+            }
     }
     if (check_tokenizer(src, dp_mp_get(m, "tokenizer"), &b->tok, err)) return -1;
     const dp_mp *oov = dp_mp_get(m, "oov"), *meta = dp_mp_get(m, "table"), *layers = dp_mp_get(m, "layers");

@@ -74,38 +74,68 @@ typedef struct {
     wbuf nodes, inits, body, attr;
 } writer;
 
-/* NodeProto: inputs (1), output (2), name (3) = output, op_type (4), attributes (5: name 1, i 3, type 20 = INT) */
-static const char *node(writer *w, const char *op, const char *const *inputs, const char *output, const char *key,
-                        int64_t value, const char *key2, int64_t value2) {
-    for (size_t i = 0; inputs[i]; i++) put_str(&w->body, 1, inputs[i]);
-    put_str(&w->body, 2, output);
-    put_str(&w->body, 3, output);
-    put_str(&w->body, 4, op);
-    const char *keys[2] = {key, key2};
-    int64_t values[2] = {value, value2};
-    for (int i = 0; i < 2 && keys[i]; i++) {
-        put_str(&w->attr, 1, keys[i]);
-        put_int(&w->attr, 3, values[i]);
+/* One NodeProto from a line "OP OUTPUT INPUT... [@KEY=INT ...]" (words split by single spaces): inputs (1), output
+ * (2), name (3) = output, op_type (4), attributes (5: name 1, i 3, type 20 = INT), in runtime/graph.py's order. */
+static void node(writer *w, const char *line) {
+    const char *word[8];
+    size_t len[8], n = 0;
+    for (const char *p = line; *p && n < 8; n++) {
+        size_t k = strcspn(p, " ");
+        word[n] = p;
+        len[n] = k;
+        p += k + (p[k] == ' ');
+    }
+    for (size_t i = 2; i < n && word[i][0] != '@'; i++) put_bytes(&w->body, 1, word[i], len[i]);
+    put_bytes(&w->body, 2, word[1], len[1]);
+    put_bytes(&w->body, 3, word[1], len[1]);
+    put_bytes(&w->body, 4, word[0], len[0]);
+    for (size_t i = 2; i < n; i++) {
+        if (word[i][0] != '@') continue;
+        size_t eq = strcspn(word[i], "=");
+        put_bytes(&w->attr, 1, word[i] + 1, eq - 1);
+        put_int(&w->attr, 3, strtoll(word[i] + eq + 1, NULL, 10));
         put_int(&w->attr, 20, 2);
         put_msg(&w->body, 5, &w->attr);
     }
     put_msg(&w->nodes, 1, &w->body);
-    return output;
 }
 
-#define IN(...) ((const char *const[]){__VA_ARGS__, NULL})
-#define NODE(op, inputs, output) node(w, op, inputs, output, NULL, 0, NULL, 0)
-#define NODE1(op, inputs, output, k, v) node(w, op, inputs, output, k, v, NULL, 0)
+/* The graph up to the mean, one node a line; "Q" lines only for an int8 table, "F" lines only for a float32 one.
+ * Shapes: mask (B, T) from position < count; token weight = mask [* row scale] / max(count, 1) (B, T); the mean
+ * as a batched matmul (B, 1, T) @ (B, T, W) -> (B, W). */
+static const char MEAN_NODES[] =
+    "* Shape width_t ids @start=1 @end=2\n"
+    "* Squeeze width_s width_t axis_0\n"
+    "* Range positions zero_i width_s one_i\n"
+    "* Unsqueeze pos_row positions axis_0\n"
+    "* Unsqueeze count_col counts axis_1\n"
+    "* Less mask_b pos_row count_col\n"
+    "* Cast mask mask_b @to=1\n"
+    "Q Gather row_scales scales ids\n"
+    "Q Mul scaled_mask mask row_scales\n"
+    "* Cast counts_f counts @to=1\n"
+    "* Max denom counts_f one_f\n"
+    "* Unsqueeze denom_col denom axis_1\n"
+    "Q Div token_weight scaled_mask denom_col\n"
+    "F Div token_weight mask denom_col\n"
+    "* Gather rows table ids\n"
+    "Q Cast rows_f rows @to=1\n"
+    "* Unsqueeze token_weight3 token_weight axis_1\n"
+    "Q MatMul mean3 token_weight3 rows_f\n"
+    "F MatMul mean3 token_weight3 rows\n"
+    "* Squeeze mean mean3 axis_1\n";
 
-/* TensorProto: dims (1), data_type (2), name (8), then raw_data (9) or external data (13: location, 14: EXTERNAL) */
-static const char *tensor_proto(writer *w, const char *name, int dtype, size_t ndims, size_t d0, size_t d1,
-                                const uint8_t *raw, size_t nraw) {
+/* TensorProto: dims (1), data_type (2), name (8), then raw_data (9: an int64 or float32 scalar constant, `bits`) or
+ * external data (13: location, 14: EXTERNAL) */
+static void tensor_proto(writer *w, const char *name, int dtype, size_t ndims, size_t d0, size_t d1, int raw,
+                         uint32_t bits) {
     size_t dims[2] = {d0, d1};
     for (size_t i = 0; i < ndims; i++) put_int(&w->body, 1, (int64_t)dims[i]);
     put_int(&w->body, 2, dtype);
     put_str(&w->body, 8, name);
     if (raw) {
-        put_bytes(&w->body, 9, raw, nraw);
+        const uint8_t le[8] = {(uint8_t)bits, (uint8_t)(bits >> 8), (uint8_t)(bits >> 16), (uint8_t)(bits >> 24)};
+        put_bytes(&w->body, 9, le, dtype == T_FLOAT ? 4 : 8);
     } else {
         put_str(&w->attr, 1, "location");
         put_str(&w->attr, 2, "danpack-bundle");
@@ -113,12 +143,6 @@ static const char *tensor_proto(writer *w, const char *name, int dtype, size_t n
         put_int(&w->body, 14, 1);
     }
     put_msg(&w->inits, 5, &w->body);
-    return name;
-}
-
-static const char *const_int64(writer *w, const char *name, size_t ndims, uint8_t value) {
-    const uint8_t raw[8] = {value, 0, 0, 0, 0, 0, 0, 0};
-    return tensor_proto(w, name, T_INT64, ndims, 1, 0, raw, 8);
 }
 
 /* ValueInfoProto: name (1), type (2: tensor_type 1: elem_type 1, shape 2: dims 1 each dim_value 1 or dim_param 2) */
@@ -145,62 +169,45 @@ size_t dp_write_graph(size_t rows, size_t width, int quantized, size_t classes, 
                       uint8_t *out, size_t cap) {
     writer ww = {{0}, {0}, {0}, {0}}, *w = &ww;
     wbuf graph = {0}, model = {0};
-    const char *axis_0 = const_int64(w, "axis_0", 1, 0), *axis_1 = const_int64(w, "axis_1", 1, 1);
-    static const uint8_t one_f_raw[4] = {0x00, 0x00, 0x80, 0x3F}; /* 1.0f little-endian */
-    const char *one_f = tensor_proto(w, "one_f", T_FLOAT, 0, 0, 0, one_f_raw, 4);
-
-    /* 1. mask from counts: position < count -> (B, T) float */
-    const char *width_t = node(w, "Shape", IN("ids"), "width_t", "start", 1, "end", 2); /* (1,) */
-    const char *width_s = NODE("Squeeze", IN(width_t, axis_0), "width_s"); /* () */
-    const char *zero_i = const_int64(w, "zero_i", 0, 0), *one_i = const_int64(w, "one_i", 0, 1);
-    const char *positions = NODE("Range", IN(zero_i, width_s, one_i), "positions"); /* (T,) */
-    const char *pos_row = NODE("Unsqueeze", IN(positions, axis_0), "pos_row"); /* (1, T) */
-    const char *count_col = NODE("Unsqueeze", IN("counts", axis_1), "count_col"); /* (B, 1) */
-    const char *mask_b = NODE("Less", IN(pos_row, count_col), "mask_b");
-    const char *weight = NODE1("Cast", IN(mask_b), "mask", "to", T_FLOAT); /* (B, T) */
-
-    /* 2. per-token weight = mask * row scale / max(count, 1) -> (B, T) */
-    const char *table = tensor_proto(w, "table", quantized ? T_INT8 : T_FLOAT, 2, rows, width, NULL, 0);
-    if (quantized) {
-        const char *scales = tensor_proto(w, "scales", T_FLOAT, 1, rows, 0, NULL, 0);
-        const char *row_scales = NODE("Gather", IN(scales, "ids"), "row_scales");
-        weight = NODE("Mul", IN(weight, row_scales), "scaled_mask"); /* (B, T) */
+    char line[160], name[40], x[40] = "mean", z[40];
+    tensor_proto(w, "axis_0", T_INT64, 1, 1, 0, 1, 0);
+    tensor_proto(w, "axis_1", T_INT64, 1, 1, 0, 1, 1);
+    tensor_proto(w, "one_f", T_FLOAT, 0, 0, 0, 1, 0x3F800000u); /* 1.0f */
+    tensor_proto(w, "zero_i", T_INT64, 0, 0, 0, 1, 0);
+    tensor_proto(w, "one_i", T_INT64, 0, 0, 0, 1, 1);
+    tensor_proto(w, "table", quantized ? T_INT8 : T_FLOAT, 2, rows, width, 0, 0);
+    if (quantized) tensor_proto(w, "scales", T_FLOAT, 1, rows, 0, 0, 0);
+    for (const char *p = MEAN_NODES; *p; p += strcspn(p, "\n") + 1) {
+        size_t k = strcspn(p, "\n");
+        if (*p == '*' || *p == (quantized ? 'Q' : 'F')) {
+            snprintf(line, sizeof(line), "%.*s", (int)(k - 2), p + 2);
+            node(w, line);
+        }
     }
-    const char *counts_f = NODE1("Cast", IN("counts"), "counts_f", "to", T_FLOAT);
-    const char *denom = NODE("Max", IN(counts_f, one_f), "denom"); /* (B,) */
-    const char *denom_col = NODE("Unsqueeze", IN(denom, axis_1), "denom_col");
-    weight = NODE("Div", IN(weight, denom_col), "token_weight"); /* (B, T) */
-
-    /* 3. gather rows, mean as a batched matmul: (B, 1, T) @ (B, T, W) -> (B, W) */
-    const char *rows_t = NODE("Gather", IN(table, "ids"), "rows"); /* (B, T, W) */
-    if (quantized) rows_t = NODE1("Cast", IN(rows_t), "rows_f", "to", T_FLOAT);
-    const char *weight3 = NODE("Unsqueeze", IN(weight, axis_1), "token_weight3"); /* (B, 1, T) */
-    const char *mean3 = NODE("MatMul", IN(weight3, rows_t), "mean3");
-    char x[40] = "mean", z[40], name[40], wname[40];
-    NODE("Squeeze", IN(mean3, axis_1), x); /* (B, W) */
-
-    /* 4. feed-forward stack: per layer {has weight, activation, out, in} */
+    /* the feed-forward stack: per layer {has weight, activation, out, in} */
     for (size_t i = 0; i < nlayers; i++) {
         const size_t *L = layers + 4 * i;
         snprintf(name, sizeof(name), "layer.%zu.bias", i);
-        tensor_proto(w, name, T_FLOAT, 1, L[2], 0, NULL, 0);
-        snprintf(z, sizeof(z), "layer%zu_z", i);
+        tensor_proto(w, name, T_FLOAT, 1, L[2], 0, 0, 0);
         if (L[0]) {
-            snprintf(wname, sizeof(wname), "layer.%zu.weight", i);
-            tensor_proto(w, wname, T_FLOAT, 2, L[2], L[3], NULL, 0);
-            node(w, "Gemm", IN(x, wname, name), z, "transB", 1, NULL, 0);
+            snprintf(name, sizeof(name), "layer.%zu.weight", i);
+            tensor_proto(w, name, T_FLOAT, 2, L[2], L[3], 0, 0);
+            snprintf(line, sizeof(line), "Gemm layer%zu_z %s layer.%zu.weight layer.%zu.bias @transB=1", i, x, i, i);
         } else {
-            NODE("Add", IN(x, name), z);
+            snprintf(line, sizeof(line), "Add layer%zu_z %s layer.%zu.bias", i, x, i);
         }
+        node(w, line);
+        snprintf(z, sizeof(z), "layer%zu_z", i);
         if (L[1] == DP_ACT_RELU || L[1] == DP_ACT_TANH) {
-            snprintf(name, sizeof(name), "layer%zu_a", i);
-            NODE(L[1] == DP_ACT_RELU ? "Relu" : "Tanh", IN(z), name);
-            memcpy(z, name, sizeof(z));
+            snprintf(line, sizeof(line), "%s layer%zu_a %s", L[1] == DP_ACT_RELU ? "Relu" : "Tanh", i, z);
+            node(w, line);
+            snprintf(z, sizeof(z), "layer%zu_a", i);
         }
         memcpy(x, z, sizeof(x));
     }
-    NODE("Identity", IN(x), "logits");
-    NODE1("Softmax", IN("logits"), "probs", "axis", -1);
+    snprintf(line, sizeof(line), "Identity logits %s", x);
+    node(w, line);
+    node(w, "Softmax probs logits @axis=-1");
 
     if (w->nodes.oom || w->inits.oom) graph.oom = 1;
     put_raw(&graph, w->nodes.p, w->nodes.n);
