@@ -539,3 +539,40 @@ def test_golden_kit_passes_on_the_c_program(program, bundles, headlines_bundle, 
     assert other.exit_code == 2 and "is not the golden file's" in other.output, other.output
     missing = _golden("golden", "--verify", golden, "--run", tmp_path / "no-such-program", headlines_bundle)
     assert missing.exit_code == 2 and "cannot run the program" in missing.output, missing.output
+
+
+def test_graph_differences_are_named_as_python_names_them(native_lib, bundles):
+    """Graphs edited part by part (each part of the graph deleted, repeated, or swapped with the next; the model
+    cut at several lengths): the C reader refuses each, naming the difference as runtime/graph.py first_difference."""
+    import msgpack
+
+    from danpack.pack.bundle import encode_bundle
+    from danpack.runtime.graph import first_difference
+    from danpack.runtime.onnx_wire import _fields, put_bytes, put_int
+
+    outer = msgpack.unpackb(bundles[0].read_bytes(), raw=False)
+    body = msgpack.unpackb(outer["payload"], raw=False)
+    canonical = body["graph"]
+    top = [(n, w, v if w == 0 else bytes(v)) for n, w, v in _fields(memoryview(canonical))]
+    graph_body = next(v for n, _, v in top if n == 7)
+    parts = [put_bytes(n, bytes(v)) for n, _, v in _fields(memoryview(graph_body))]  # every graph part is a message
+
+    def edited(new_parts):
+        """The model with its graph made of `new_parts` (the writer's encoding: put_int / put_bytes)."""
+        return b"".join(put_int(n, v) if w == 0 else put_bytes(n, b"".join(new_parts) if n == 7 else v) for n, w, v in top)
+
+    assert edited(parts) == canonical
+    variants = []
+    for j in range(len(parts)):
+        variants += [edited(parts[:j] + parts[j + 1:]), edited(parts[: j + 1] + parts[j:])]
+        if j + 1 < len(parts) and parts[j] != parts[j + 1]:
+            variants.append(edited(parts[:j] + [parts[j + 1], parts[j]] + parts[j + 2:]))
+    variants += [canonical[:n] for n in (0, 1, 5, 12, len(canonical) // 2, len(canonical) - 1)]
+    variants += [canonical + put_bytes(14, b"x"), canonical.replace(b"danpack_dan", b"danpack_dam")]
+    for graph in variants:
+        body["graph"] = graph
+        native = _c_load_error(native_lib, encode_bundle(msgpack.packb(body, use_bin_type=True)))
+        want = first_difference(graph, canonical)
+        assert native is not None and want is not None
+        want = want.split(" (")[0] if "well-formed" in want else want
+        assert f"graph is not the one danpack writes for this manifest: {want[:300]}" in native, (want, native)

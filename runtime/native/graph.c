@@ -289,66 +289,31 @@ static int next(pbuf *b, pfield *f) {
     return 1;
 }
 
-/* the fields of a message (NULL when malformed); *n set */
-static pfield *fields_of(const uint8_t *p, size_t len, size_t *n) {
+/* 1 when a message is well-formed protobuf (every field, not the sub-messages) */
+static int well_formed(const uint8_t *p, size_t len) {
     pbuf b = {p, len, 0};
-    pfield f, *v = NULL;
-    size_t cap = 0;
+    pfield f;
     int r;
-    *n = 0;
-    while ((r = next(&b, &f)) == 1) {
-        if (*n == cap) {
-            cap = cap ? 2 * cap : 16;
-            pfield *m = realloc(v, cap * sizeof(pfield));
-            if (!m) break;
-            v = m;
-        }
-        v[(*n)++] = f;
-    }
-    if (r != 0) {
-        free(v);
-        return NULL;
-    }
-    return v ? v : calloc(1, sizeof(pfield));
+    while ((r = next(&b, &f)) == 1) continue;
+    return r == 0;
 }
 
 static int same_field(const pfield *a, const pfield *b) {
     return a->field == b->field && a->wire == b->wire && a->vn == b->vn && (!a->vn || !memcmp(a->v, b->v, a->vn));
 }
 
-static const char *model_field(uint64_t f) {
-    switch (f) {
-    case 1: return "ir_version";
-    case 2: return "producer_name";
-    case 3: return "producer_version";
-    case 4: return "domain";
-    case 5: return "model_version";
-    case 6: return "doc_string";
-    case 7: return "graph";
-    case 8: return "opset_import";
-    case 14: return "metadata_props";
-    case 20: return "training_info";
-    case 25: return "functions";
-    default: return NULL;
-    }
-}
+static const char *const MODEL_FIELDS[] = {NULL, "ir_version", "producer_name", "producer_version", "domain",
+                                           "model_version", "doc_string", "graph", "opset_import"};
+static const char *const GRAPH_FIELDS[] = {NULL, "node", "graph name", NULL, NULL, "initializer", NULL, NULL, NULL,
+                                           NULL, "doc_string", "input", "output", "value_info",
+                                           "quantization_annotation", "sparse_initializer"};
 
-static const char *graph_field(uint64_t f) {
-    switch (f) {
-    case 1: return "node";
-    case 2: return "graph name";
-    case 5: return "initializer";
-    case 10: return "doc_string";
-    case 11: return "input";
-    case 12: return "output";
-    case 13: return "value_info";
-    case 14: return "quantization_annotation";
-    case 15: return "sparse_initializer";
-    default: return NULL;
-    }
-}
-
-static void kind(char *out, size_t cap, const char *known, uint64_t f) {
+/* a field's name in runtime/graph.py's words (_MODEL_FIELDS / _GRAPH_FIELDS), or "field N" */
+static void kind(char *out, size_t cap, int graph, uint64_t f) {
+    const char *known = NULL;
+    if (graph && f < sizeof(GRAPH_FIELDS) / sizeof(GRAPH_FIELDS[0])) known = GRAPH_FIELDS[f];
+    if (!graph && f < sizeof(MODEL_FIELDS) / sizeof(MODEL_FIELDS[0])) known = MODEL_FIELDS[f];
+    if (!graph && (f == 14 || f == 20 || f == 25)) known = f == 14 ? "metadata_props" : f == 20 ? "training_info" : "functions";
     if (known) snprintf(out, cap, "%s", known);
     else snprintf(out, cap, "field %llu", (unsigned long long)f);
 }
@@ -366,93 +331,87 @@ static void escape(char *out, size_t cap, const uint8_t *p, size_t n, int quoted
     out[k] = 0;
 }
 
-/* one part of a GraphProto in words: its kind, operator and name (runtime/graph.py _describe) */
+/* one part of a GraphProto in words: its kind, operator and name (runtime/graph.py _describe), or "nothing" */
 static void describe(char *out, size_t cap, const pfield *f) {
-    char k[40], name[260] = "", op[200] = "";
-    kind(k, sizeof(k), graph_field(f->field), f->field);
+    char k[40], name[260], op[200] = "";
+    if (!f) {
+        snprintf(out, cap, "nothing");
+        return;
+    }
+    kind(k, sizeof(k), 1, f->field);
     uint64_t named = f->field == 1 ? 3 : f->field == 5 ? 8 : f->field >= 11 && f->field <= 13 ? 1 : 0;
     if (f->wire != 2 || !named) {
         snprintf(out, cap, "%s", k);
         return;
     }
-    size_t n;
-    pfield *parts = fields_of(f->v, f->vn, &n);
-    if (!parts) {
+    if (!well_formed(f->v, f->vn)) {
         snprintf(out, cap, "%s (malformed)", k);
         return;
     }
-    int has_name = 0;
-    for (size_t i = 0; i < n; i++) {
-        if (parts[i].wire != 2) continue;
-        if (parts[i].field == named) {
-            escape(name, sizeof(name), parts[i].v, parts[i].vn < 60 ? parts[i].vn : 60, 1);
-            has_name = 1;
-        } else if (f->field == 1 && parts[i].field == 4) {
-            escape(op, sizeof(op), parts[i].v, parts[i].vn < 40 ? parts[i].vn : 40, 0);
-        }
+    escape(name, sizeof(name), (const uint8_t *)"", 0, 1);
+    pbuf b = {f->v, f->vn, 0};
+    pfield part;
+    while (next(&b, &part) == 1) {
+        if (part.wire != 2) continue;
+        if (part.field == named) escape(name, sizeof(name), part.v, part.vn < 60 ? part.vn : 60, 1);
+        else if (f->field == 1 && part.field == 4) escape(op, sizeof(op), part.v, part.vn < 40 ? part.vn : 40, 0);
     }
-    free(parts);
-    if (!has_name) escape(name, sizeof(name), (const uint8_t *)"", 0, 1);
     snprintf(out, cap, "%s %s%s%s", k, op, *op ? " " : "", name);
 }
 
-/* the first differing part of two serialised models in words (runtime/graph.py first_difference) */
+/* The first differing part of two serialised models in words (runtime/graph.py first_difference), read field by
+ * field in step (no list of fields is built, so a crafted graph of many tiny fields costs no memory). */
 static void first_difference(char *out, size_t cap, const uint8_t *got_p, size_t got_n, const uint8_t *want_p,
                              size_t want_n) {
-    size_t ng, nw, ngp = 0, nwp = 0;
-    pfield *got = fields_of(got_p, got_n, &ng), *want = fields_of(want_p, want_n, &nw), *gparts = NULL, *wparts = NULL;
     char found[512], wanted[512];
-    if (!got || !want) {
+    pbuf gb = {got_p, got_n, 0}, wb = {want_p, want_n, 0};
+    pfield g, w;
+    int graph = 0;
+    if (!well_formed(got_p, got_n)) {
         snprintf(out, cap, "the model is not well-formed protobuf");
-        goto done;
+        return;
     }
-    snprintf(out, cap, "the model differs in its encoding");
-    for (size_t i = 0; i < (ng > nw ? ng : nw); i++) {
-        const pfield *g = i < ng ? &got[i] : NULL, *w = i < nw ? &want[i] : NULL;
-        if (g && w && same_field(g, w)) continue;
-        if (!g || !w || g->field != 7 || w->field != 7 || g->wire != 2) {
-            if (g) kind(found, sizeof(found), model_field(g->field), g->field);
+    size_t seen[16] = {0}; /* graph parts written so far, by field number (the writer uses 1, 2, 5, 11, 12) */
+    for (size_t i = 0;; i++) {
+        int has_g = next(&gb, &g) == 1, has_w = next(&wb, &w) == 1;
+        if (!has_g && !has_w) break;
+        if (graph && has_w && w.field < 16) seen[w.field]++;
+        if (has_g && has_w && same_field(&g, &w)) continue;
+        if (graph) { /* inside the two graphs */
+            describe(found, sizeof(found), has_g ? &g : NULL);
+            describe(wanted, sizeof(wanted), has_w ? &w : NULL);
+            if (has_g && has_w && g.field == w.field) {
+                char k[40];
+                kind(k, sizeof(k), 1, w.field);
+                if (!strcmp(found, wanted))
+                    snprintf(out, cap, "%s %zu (%s) differs in its inputs, attributes or contents", k, seen[w.field % 16],
+                             wanted);
+                else
+                    snprintf(out, cap, "%s %zu is %s, expected %s", k, seen[w.field % 16], found, wanted);
+            } else {
+                snprintf(out, cap, "part %zu of the graph is %s, expected %s", i + 1, found, wanted);
+            }
+            return;
+        }
+        if (!has_g || !has_w || g.field != 7 || w.field != 7 || g.wire != 2) {
+            if (has_g) kind(found, sizeof(found), 0, g.field);
             else snprintf(found, sizeof(found), "nothing");
-            if (w) kind(wanted, sizeof(wanted), model_field(w->field), w->field);
+            if (has_w) kind(wanted, sizeof(wanted), 0, w.field);
             else snprintf(wanted, sizeof(wanted), "nothing");
             snprintf(out, cap, "model field %zu is %s%s, expected %s", i + 1, found,
                      strcmp(found, wanted) ? "" : " with other content", wanted);
-            goto done;
+            return;
         }
-        if (!(gparts = fields_of(g->v, g->vn, &ngp))) {
+        if (!well_formed(g.v, g.vn)) {
             snprintf(out, cap, "the graph is not well-formed protobuf");
-            goto done;
+            return;
         }
-        if (!(wparts = fields_of(w->v, w->vn, &nwp))) goto done;
-        snprintf(out, cap, "the graph differs in its encoding");
-        for (size_t j = 0; j < (ngp > nwp ? ngp : nwp); j++) {
-            const pfield *a = j < ngp ? &gparts[j] : NULL, *b = j < nwp ? &wparts[j] : NULL;
-            if (a && b && same_field(a, b)) continue;
-            if (a) describe(found, sizeof(found), a);
-            else snprintf(found, sizeof(found), "nothing");
-            if (b) describe(wanted, sizeof(wanted), b);
-            else snprintf(wanted, sizeof(wanted), "nothing");
-            if (a && b && a->field == b->field) {
-                char k[40];
-                size_t index = 0;
-                for (size_t q = 0; q <= j; q++) index += wparts[q].field == b->field;
-                kind(k, sizeof(k), graph_field(b->field), b->field);
-                if (!strcmp(found, wanted))
-                    snprintf(out, cap, "%s %zu (%s) differs in its inputs, attributes or contents", k, index, wanted);
-                else
-                    snprintf(out, cap, "%s %zu is %s, expected %s", k, index, found, wanted);
-            } else {
-                snprintf(out, cap, "part %zu of the graph is %s, expected %s", j + 1, found, wanted);
-            }
-            goto done;
-        }
-        goto done;
+        gb = (pbuf){g.v, g.vn, 0}; /* the two graphs differ: go into them */
+        wb = (pbuf){w.v, w.vn, 0};
+        graph = 1;
+        i = (size_t)-1;
     }
-done:
-    free(got);
-    free(want);
-    free(gparts);
-    free(wparts);
+    snprintf(out, cap, graph ? "the graph differs in its encoding" : "the model differs in its encoding");
 }
 
 /* ---- the rule ---- */
