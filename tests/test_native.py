@@ -473,7 +473,9 @@ def test_label_edge_code_points_match_safe_text(native_lib, relabel):
     from danpack.runtime.unicode_pinned import UNASSIGNED
 
     gen = _load_module(NATIVE / "gen_label_ranges.py", "gen_label_ranges")
-    ends = {e for a, b, _ in gen.ranges() for e in (a, b)} | {e for a, b in UNASSIGNED for e in (a, b)}
+    table = gen.ranges()
+    assert gen.header_text(table) == (NATIVE / "label_ranges.h").read_text(), "regenerate label_ranges.h"
+    ends = {e for a, b, _ in table for e in (a, b)} | {e for a, b in UNASSIGNED for e in (a, b)}
     points = sorted({p for e in ends for p in (e - 1, e, e + 1) if 0 < p <= 0x10FFFF and not 0xD800 <= p <= 0xDFFF})
     refused = 0
     for p in points:
