@@ -428,12 +428,16 @@ int dp_check_graph(const char *src, const uint8_t *g, size_t n, const dp_bundle 
         d[3] = L->weight ? L->in : 0;
         expected_tensors += L->weight ? 2 : 1;
     }
-    size_t len = dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, NULL, 0);
-    uint8_t *want = len ? malloc(len) : NULL;
-    if (want) dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, want, len);
+    size_t cap = 2048 + 256 * b->nlayers, len = 0; /* room for the whole graph: written once */
+    uint8_t *want = malloc(cap);
+    if (want) len = dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, want, cap);
+    if (want && len > cap) { /* not expected: write it again into its size */
+        free(want);
+        if ((want = malloc(len))) dp_write_graph(b->rows, b->width, b->q != NULL, b->nlabels, layers, b->nlayers, want, len);
+    }
     free(layers);
     int rc = 0;
-    if (!want) {
+    if (!want || !len) {
         dp_fail(err, "%s: out of memory", src);
         rc = -1;
     } else if (len != n || memcmp(want, g, n) != 0) {
