@@ -42,6 +42,8 @@ void sb_json_utf8(sbuf *b, const char *s, size_t n);
 void sb_json_value(sbuf *b, const jdoc *doc, size_t node);
 /* float32 as numpy's str() writes it (shortest digits that read back as the same float32) */
 void sb_f32(sbuf *b, float v);
+/* the same through snprintf + strtof only (the reference sb_f32's tests compare against) */
+void sb_f32_slow(sbuf *b, float v);
 const jnode *dp_json_node(const jdoc *doc, size_t index); /* index + 1 as stored in first/next */
 int dp_cps_eq_utf8(const uint32_t *s, size_t n, const char *z, size_t zn);
 
