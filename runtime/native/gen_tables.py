@@ -137,6 +137,7 @@ def main() -> None:
     out.append(f"#define DP_POOL_COUNT {len(pool)}")
     out.append("static const uint16_t dp_pool[] = {" + ",".join(map(str, pool)) + "};")
     pairs.sort()
+    assert min(b for _, b, _ in pairs) >= 0x300  # unicode.c's compose_pair and dp_normalize rely on it
     out.append(f"#define DP_COMPOSE_COUNT {len(pairs)}")
     out.append("static const dp_compose_row dp_compose[] = {" + ",".join("{%d,%d,%d}" % r for r in pairs) + "};")
     print("\n".join(wrap(line) for line in out))

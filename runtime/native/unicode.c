@@ -209,6 +209,7 @@ static uint32_t compose_pair(uint32_t a, uint32_t b) {
         return HANGUL_S + ((a - HANGUL_L) * 21 + (b - HANGUL_V)) * 28;
     if (a >= HANGUL_S && a < HANGUL_S + HANGUL_COUNT && (a - HANGUL_S) % 28 == 0 && b > HANGUL_T && b < HANGUL_T + 28)
         return a + (b - HANGUL_T);
+    if (b < 0x300) return 0; /* no composition has a second character below U+0300 (gen_tables.py pairs) */
     size_t lo = 0, hi = DP_COMPOSE_COUNT;
     while (lo < hi) {
         size_t mid = lo + (hi - lo) / 2;
@@ -342,9 +343,26 @@ int dp_normalize(const uint32_t *in, size_t n, int form, int kase, dp_u32buf *ou
     const uint32_t *src = in;
     size_t len = n;
     if (form != DP_NORM_NONE && !all_ascii(in, n)) { /* ASCII is in every normal form already */
+        /* Piece by piece: an ASCII character has combining class 0, has no other normal form and never composes
+         * with what precedes it (every second character of a composition is U+0300 or above), so the text may be
+         * cut before each one. ASCII runs are copied; each non-ASCII run is normalised with the ASCII character
+         * before it (which may compose with it). `out` holds the piece meanwhile. */
         int compat = form == DP_NORM_NFKC || form == DP_NORM_NFKD;
-        if (decompose(in, n, compat, tmp)) return -1;
-        if (form == DP_NORM_NFC || form == DP_NORM_NFKC) compose(tmp);
+        tmp->n = 0;
+        if (dp_u32_reserve(tmp, n)) return -1;
+        size_t i = 0;
+        while (i < n) {
+            size_t j = i;
+            while (j < n && in[j] < 0x80 && (j + 1 == n || in[j + 1] < 0x80)) j++;
+            if (j > i && push_seq(tmp, in + i, j - i)) return -1;
+            if (j == n) break;
+            i = j++; /* the piece: in[i] (ASCII or not) and the non-ASCII characters after it */
+            while (j < n && in[j] >= 0x80) j++;
+            if (decompose(in + i, j - i, compat, out)) return -1;
+            if (form == DP_NORM_NFC || form == DP_NORM_NFKC) compose(out);
+            if (push_seq(tmp, out->v, out->n)) return -1;
+            i = j;
+        }
         src = tmp->v;
         len = tmp->n;
     }
