@@ -16,6 +16,7 @@ import re
 import sys
 import unicodedata
 
+from danpack.runtime.safe_text import _unsafe
 from danpack.runtime.tokenize import APOSTROPHES, INVISIBLE, MARKS
 
 UNICODE_VERSION = "14.0.0"
@@ -37,6 +38,7 @@ BITS = {
     "NFKD": 1 << 10,  # NFKD of the character differs from it
     "LOWER": 1 << 11,  # str.lower changes it
     "FOLD": 1 << 12,  # str.casefold changes it
+    "UNSAFE": 1 << 13,  # runtime.safe_text escapes it: not printable and not a space separator (Zs)
 }
 
 
@@ -76,6 +78,8 @@ def main() -> None:
         p |= BITS["IGNORABLE"] if ign else 0
         if unicodedata.category(ch) == "Cn":
             p |= BITS["UNASSIGNED"]
+        if _unsafe(ch):
+            p |= BITS["UNSAFE"]
         if 0xD800 <= cp <= 0xDFFF:  # lone surrogates: no normal form or case of their own
             props[cp] = p
             continue
