@@ -295,11 +295,25 @@ void sb_put(sbuf *b, const char *s, size_t n) {
         b->p = p;
         b->cap = cap;
     }
-    memcpy(b->p + b->n, s, n);
+    if (s) memcpy(b->p + b->n, s, n); /* s NULL: room only, the caller writes the bytes */
     b->n += n;
 }
 
 void sb_str(sbuf *b, const char *z) { sb_put(b, z, strlen(z)); }
+
+/* runtime/safe_text.py escape_text: what str.isprintable() refuses, space separators aside, as \uXXXX (astral
+ * characters as their UTF-16 pair); applied after json.dumps's own escapes, as Python's stream writer does */
+void sb_json_unsafe(sbuf *b, uint32_t c) {
+    char tmp[16];
+    if (c >= 0x10000) {
+        c -= 0x10000;
+        snprintf(tmp, sizeof(tmp), "\\u%04x\\u%04x", 0xD800u + (c >> 10), 0xDC00u + (c & 0x3FFu));
+        sb_put(b, tmp, 12);
+    } else {
+        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
+        sb_put(b, tmp, 6);
+    }
+}
 
 static void put_escaped(sbuf *b, uint32_t c) {
     char tmp[16];
@@ -313,27 +327,24 @@ static void put_escaped(sbuf *b, uint32_t c) {
     case '\f': sb_put(b, "\\f", 2); return;
     default: break;
     }
-    if (c < 0x20) {
-        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
-        sb_put(b, tmp, 6);
-    } else if (c >= 0xD800 && c <= 0xDFFF) { /* json.dumps keeps it; encode("utf-8", "backslashreplace") escapes it */
-        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
-        sb_put(b, tmp, 6);
-    } else {
-        sb_put(b, tmp, dp_utf8_put(c, tmp));
-    }
+    if (c < 0x20 || (!b->keep_unsafe && (c == 0x7F || (c > 0x7F && (dp_props(c) & DP_P_UNSAFE))))) sb_json_unsafe(b, c);
+    else sb_put(b, tmp, dp_utf8_put(c, tmp));
 }
 
 void sb_json_cps(sbuf *b, const uint32_t *s, size_t n) {
     sb_put(b, "\"", 1);
-    for (size_t i = 0; i < n; i++) {
-        uint32_t c = s[i];
-        if (c >= 0x20 && c < 0x80 && c != '"' && c != '\\') {
-            char ch = (char)c;
-            sb_put(b, &ch, 1);
-        } else {
-            put_escaped(b, c);
+    size_t i = 0;
+    while (i < n) {
+        size_t j = i; /* a run of printable ASCII other than the quote and backslash: copied as bytes */
+        while (j < n && s[j] >= 0x20 && s[j] < 0x7F && s[j] != '"' && s[j] != '\\') j++;
+        if (j > i && !b->failed) {
+            sb_put(b, NULL, j - i);
+            if (b->failed) return;
+            char *o = b->p + b->n - (j - i);
+            for (size_t k = i; k < j; k++) *o++ = (char)s[k];
         }
+        if (j < n) put_escaped(b, s[j++]);
+        i = j;
     }
     sb_put(b, "\"", 1);
 }
