@@ -30,7 +30,7 @@ void dp_scratch_free(dp_scratch *s) {
     free(s);
 }
 
-void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, float *probs) {
+static void forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, float *probs, float *logits) {
     size_t W = b->width;
     double *acc = s->acc;
     float *x = s->x, *y = s->y;
@@ -79,6 +79,7 @@ void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, 
         memcpy(x, y, L->out * sizeof(float));
         width = L->out;
     }
+    if (logits) memcpy(logits, x, width * sizeof(float));
     float top = x[0];
     for (size_t c = 1; c < width; c++)
         if (x[c] > top) top = x[c];
@@ -88,6 +89,10 @@ void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, 
         sum += probs[c];
     }
     for (size_t c = 0; c < width; c++) probs[c] /= sum;
+}
+
+void dp_forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t n, float *probs) {
+    forward(b, s, ids, n, probs, NULL);
 }
 
 /* Tokens of code points -> ids in s->ids (after the unknown-word policy); emit, when given, sees every token. */
@@ -207,4 +212,27 @@ long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, co
     }
     dp_scratch_free(own);
     return rc < 0 ? rc : (long long)total;
+}
+
+int dp_classify_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                     float *probs, float *logits, dp_error *err) {
+    dp_scratch *own = NULL;
+    if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
+    int rc = 0;
+    for (size_t i = 0; i < n && !rc; i++) {
+        size_t count;
+        if (offsets[i] < 0 || offsets[i + 1] < offsets[i]) {
+            dp_fail(err, "text %zu: offsets out of order", i);
+            rc = -1;
+        } else if (dp_utf8_decode((const uint8_t *)data + offsets[i], (size_t)(offsets[i + 1] - offsets[i]),
+                                  &s->tok.cps) ||
+                   dp_encode_cps(b, s, s->tok.cps.v, s->tok.cps.n, &count, NULL, NULL, NULL, err)) {
+            dp_fail(err, "out of memory");
+            rc = -1;
+        } else {
+            forward(b, s, s->ids, count, probs + i * b->nlabels, logits ? logits + i * b->nlabels : NULL);
+        }
+    }
+    dp_scratch_free(own);
+    return rc;
 }
