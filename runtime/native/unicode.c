@@ -16,7 +16,6 @@ typedef struct {
 
 #include "unicode_tables.h"
 
-#define BLOCK_MASK ((1u << DP_BLOCK_SHIFT) - 1u)
 #define CP_MASK 0x1FFFFFu
 #define HANGUL_S 0xAC00u
 #define HANGUL_L 0x1100u
@@ -24,18 +23,25 @@ typedef struct {
 #define HANGUL_T 0x11A7u
 #define HANGUL_COUNT 11172u
 
+/* a three-stage table of unicode_tables.h: top (per 2^(B+M) code points) -> mid (per 2^B) -> block */
+#define STAGE3(name, NAME, c)                                                                                          \
+    name##_blocks[((uint32_t)name##_mid[((uint32_t)name##_top[(c) >> (NAME##_BLOCK_SHIFT + NAME##_MID_SHIFT)]           \
+                                         << NAME##_MID_SHIFT) +                                                        \
+                                        (((c) >> NAME##_BLOCK_SHIFT) & ((1u << NAME##_MID_SHIFT) - 1u))]               \
+                   << NAME##_BLOCK_SHIFT) +                                                                            \
+                  ((c) & ((1u << NAME##_BLOCK_SHIFT) - 1u))]
+
 const char *dp_unicode_version(void) { return DP_UNICODE_VERSION; }
 
 uint16_t dp_props(uint32_t c) {
+    if (c < 0x80) return dp_ascii_props[c];
     if (c > 0x10FFFF) return 0;
-    uint32_t at = c & BLOCK_MASK;
-    return (uint16_t)(dp_cls_blocks[((uint32_t)dp_cls_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] |
-                      dp_flags_blocks[((uint32_t)dp_flags_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] << 8);
+    return (uint16_t)(STAGE3(dp_cls, DP_CLS, c) | STAGE3(dp_flags, DP_FLAGS, c) << 8);
 }
 
 static uint8_t ccc(uint32_t c) {
     if (c > 0x10FFFF) return 0;
-    return dp_ccc_blocks[((uint32_t)dp_ccc_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + (c & BLOCK_MASK)];
+    return STAGE3(dp_ccc, DP_CCC, c);
 }
 
 int dp_u32_reserve(dp_u32buf *b, size_t need) {
