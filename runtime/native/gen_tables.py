@@ -109,7 +109,8 @@ def main() -> None:
     out += three_stage("dp_cls", [p & 0xFF for p in props])  # the character classes
     out += three_stage("dp_flags", [p >> 8 for p in props])  # unassigned, unsafe, has a normal form / case change
     out += three_stage("dp_ccc", ccc)
-    out.append("static const uint16_t dp_ascii_props[128] = {" + ",".join(map(str, props[:128])) + "};")
+    # included by unicode.c only: the one definition of the ASCII props internal.h declares
+    out.append("const uint16_t dp_ascii_props[128] = {" + ",".join(map(str, props[:128])) + "};")
     pool: list[int] = []
 
     def put(text: str) -> tuple[int, int]:

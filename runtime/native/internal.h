@@ -33,6 +33,8 @@ enum {
     DP_P_UNSAFE = 1 << 13 /* runtime/safe_text.py escapes it as \uXXXX: not printable, not a space separator */
 };
 uint16_t dp_props(uint32_t c);
+extern const uint16_t dp_ascii_props[128]; /* dp_props of ASCII, for the inline test below */
+static inline uint16_t dp_props_inline(uint32_t c) { return c < 0x80 ? dp_ascii_props[c] : dp_props(c); }
 const char *dp_unicode_version(void);
 /* in -> out (out emptied first): normal form, then case; -1 when out of memory */
 int dp_normalize(const uint32_t *in, size_t n, int form, int kase, dp_u32buf *out, dp_u32buf *tmp);

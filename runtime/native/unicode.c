@@ -315,8 +315,9 @@ static int change_case(const uint32_t *in, size_t n, int kase, dp_u32buf *out) {
     uint16_t bit = kase == DP_CASE_LOWER ? DP_P_LOWER : DP_P_FOLD;
     for (size_t i = 0; i < n; i++) {
         uint32_t c = in[i];
-        if (c < 0x80) {
-            if (dp_u32_push(out, c >= 'A' && c <= 'Z' ? c + 32 : c)) return -1;
+        if (c < 0x80) { /* room for n reserved above; only non-ASCII mappings grow the text */
+            if (out->n == out->cap && dp_u32_reserve(out, out->n + 1)) return -1;
+            out->v[out->n++] = c >= 'A' && c <= 'Z' ? c + 32 : c;
             continue;
         }
         if (!(dp_props(c) & bit)) {
