@@ -70,7 +70,15 @@ static void forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t
         }
     }
     float count = n ? (float)n : 1.0f;
-    for (size_t d = 0; d < W; d++) x[d] = (float)acc[d] / count; /* (W,) mean */
+    size_t d0 = 0;
+#if defined(__SSE2__)
+    __m128 cnt = _mm_set1_ps(count); /* float32 of each sum, divided in float32: four at a time */
+    for (; d0 + 4 <= W; d0 += 4) {
+        __m128 lo = _mm_cvtpd_ps(_mm_loadu_pd(acc + d0)), hi = _mm_cvtpd_ps(_mm_loadu_pd(acc + d0 + 2));
+        _mm_storeu_ps(x + d0, _mm_div_ps(_mm_movelh_ps(lo, hi), cnt));
+    }
+#endif
+    for (size_t d = d0; d < W; d++) x[d] = (float)acc[d] / count; /* (W,) mean */
     size_t width = W;
     for (size_t l = 0; l < b->nlayers; l++) {
         const dp_layer *L = &b->layers[l];
@@ -137,7 +145,11 @@ int dp_encode_cps(const dp_bundle *b, dp_scratch *s, const uint32_t *cps, size_t
             w->bytecap = need;
         }
         size_t len = 0;
-        for (size_t i = 0; i < sp->len; i++) len += dp_utf8_put(w->norm.v[sp->start + i], w->bytes + len);
+        const uint32_t *cp = w->norm.v + sp->start;
+        for (size_t i = 0; i < sp->len; i++) {
+            if (cp[i] < 0x80) w->bytes[len++] = (char)cp[i];
+            else len += dp_utf8_put(cp[i], w->bytes + len);
+        }
         long row = dp_vocab_find(b, (const uint8_t *)w->bytes, len);
         if (row >= 0) found++;
         else row = b->oov_row;

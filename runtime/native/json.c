@@ -471,7 +471,9 @@ static int shortest_f32_fast(float v, char *digits, int *exp10) {
     float below = nextafterf(v, 0.0f), above = nextafterf(v, INFINITY);
     if (isinf(above)) return 0;
     double mid_lo = (a + (double)below) / 2, mid_hi = (a + (double)above) / 2; /* exact in double */
-    int e10 = (int)floor(log10(a));
+    int e2;
+    frexp(a, &e2); /* a in [2^(e2-1), 2^e2): floor(log10(a)) is this or one more; candidate() finds which */
+    int e10 = (int)floor((e2 - 1) * 0.30102999566398120);
     uint64_t best = 0;
     int best_e = 0;
     int lo = 1, hi = 9; /* the slow path's bisection, step for step */
