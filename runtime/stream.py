@@ -160,10 +160,10 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
         formatter = JsonlFormatter(classifier.labels, config.top_k)
     # the native records stand in for predict_known's encoder and the Python records: only for the stock Classifier
     stock = isinstance(classifier, Classifier) and type(classifier).predict_known is Classifier.predict_known
-    native = None if not stock else NativeStream.open(classifier.native, jsonl=config.jsonl, text_field=config.text_field,
-                               id_field=config.id_field, tsv=config.output == "tsv", top_k=config.top_k,
-                               max_line_bytes=config.max_line_bytes, classify_empty=config.classify_empty,
-                               skip_empty=config.skip_empty)
+    native = None if not stock else NativeStream.open(
+        classifier.native, jsonl=config.jsonl, text_field=config.text_field, id_field=config.id_field,
+        tsv=config.output == "tsv", top_k=config.top_k, max_line_bytes=config.max_line_bytes,
+        classify_empty=config.classify_empty, skip_empty=config.skip_empty)
     start = time.perf_counter()
     records = errors = batches = 0
 
