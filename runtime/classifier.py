@@ -121,9 +121,10 @@ class Classifier:
         return self.bundle.manifest
 
     def run(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
-        """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call."""
+        """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call; fewer than
+        MIN_TEXTS texts on the numpy backend in one native call when the compiled part is there (describe())."""
         texts = as_texts(texts)
-        if len(texts) < MIN_TEXTS and texts and self._native_forward:  # a single text: one C call, no numpy pass
+        if len(texts) < MIN_TEXTS and texts and self._native_forward:  # e.g. one text: one C call, no numpy pass
             answered = self.native.classify(texts, len(self.labels))
             if answered is not None:
                 return answered
