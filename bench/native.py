@@ -38,11 +38,16 @@ PY_WRAPPER = ("import re, sys\nfrom danpack.runtime.stream import main\ncode = m
               "print(f'peak resident {hwm.group(1)} kB', file=sys.stderr)\nsys.exit(code)\n")
 
 
-def run(cmd: list[str]) -> tuple[float, int, float]:
-    """(wall seconds, peak resident kB, CPU seconds) of one child process, output discarded. CPU time (user +
-    system, from os.wait4) is the steadier figure on a shared machine."""
+STREAM_RATE = re.compile(r"([\d,]+) lines/s")  # danpack-run --verbose: lines/s inside the stream (start-up left out)
+ISSUE_LINES_PER_S = 102_000  # danpack-run as issue 17 measured it before the native runtime
+
+
+def run(cmd: list[str], env: dict | None = None) -> tuple[float, int, float, float | None]:
+    """(wall seconds, peak resident kB, CPU seconds, the program's own lines/s or None) of one child process,
+    output discarded. CPU time (user + system, from os.wait4) is the steadier figure on a shared machine."""
     start = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    proc = subprocess.Popen(cmd, stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE,
+                            env=None if env is None else {**os.environ, **env})
     err = proc.stderr.read()
     proc.stderr.close()
     _, status, usage = os.wait4(proc.pid, 0)
@@ -51,7 +56,9 @@ def run(cmd: list[str]) -> tuple[float, int, float]:
     found = PEAK.search(err.decode(errors="replace"))
     if proc.returncode not in (0, 1) or found is None:
         raise RuntimeError(f"{cmd[0]} exited {proc.returncode}: {err.decode(errors='replace')[-500:]}")
-    return wall, int(found.group(1)), usage.ru_utime + usage.ru_stime
+    rate = STREAM_RATE.search(err.decode(errors="replace"))
+    return wall, int(found.group(1)), usage.ru_utime + usage.ru_stime, (
+        float(rate.group(1).replace(",", "")) if rate else None)
 
 
 def prepare(lines: int) -> dict:
@@ -124,12 +131,15 @@ def main(argv: list[str] | None = None) -> int:
     w = prepare(args.lines)
     prog = str(NATIVE / "danpack-run-native")
     py_run = [sys.executable, "-c", PY_WRAPPER]
+    py_off = "danpack-run, numpy backend, Python records (DANPACK_NATIVE=0)"
     contenders = {
         "C program (danpack-run-native)": [prog, str(w["bundle"]), str(w["corpus"]), "--verbose"],
         "bare C floor (bench/native_floor.c)": [str(w["floor"]), str(w["dump"]), str(w["corpus"])],
-        "danpack-run, numpy backend": [*py_run, str(w["bundle"]), str(w["corpus"]), "--backend", "numpy", "--batch", "256", "--lenient"],
-        "danpack-run, onnxruntime backend": [*py_run, str(w["bundle"]), str(w["corpus"]), "--batch", "256", "--lenient"],
+        "danpack-run, numpy backend": [*py_run, str(w["bundle"]), str(w["corpus"]), "--backend", "numpy", "--batch", "256", "--lenient", "--verbose"],
+        "danpack-run, onnxruntime backend": [*py_run, str(w["bundle"]), str(w["corpus"]), "--batch", "256", "--lenient", "--verbose"],
+        py_off: [*py_run, str(w["bundle"]), str(w["corpus"]), "--backend", "numpy", "--batch", "256", "--lenient", "--verbose"],
     }
+    envs = {py_off: {"DANPACK_NATIVE": "0"}}
     cold = {
         "C program": [prog, str(w["bundle"]), str(w["one"]), "--verbose"],
         "bare C floor": [str(w["floor"]), str(w["dump"]), str(w["one"])],
@@ -140,7 +150,7 @@ def main(argv: list[str] | None = None) -> int:
     start = {k: [] for k in cold}
     for r in range(args.rounds):
         for key, cmd in contenders.items():
-            stream[key].append(run(cmd))
+            stream[key].append(run(cmd, envs.get(key)))
         for key, cmd in cold.items():
             for _ in range(5 if "C" in key else 1):
                 start[key].append(run(cmd))
@@ -161,13 +171,15 @@ def main(argv: list[str] | None = None) -> int:
         f"{os.cpu_count()} cores shared, Python {platform.python_version()}; demo sentiment bundle "
         f"({w['bundle'].stat().st_size:,} bytes) over {n:,} demo stream comments. Medians of {args.rounds} interleaved rounds; "
         "each program is a fresh process with its output discarded (rates include start-up).", "",
-        "| contender | lines/s (wall) | lines per CPU second | CPU time vs C program | peak resident |",
-        "|---|---:|---:|---:|---:|",
+        "| contender | lines/s (wall) | lines per CPU second | CPU time vs C program | in-stream lines/s (--verbose) | peak resident |",
+        "|---|---:|---:|---:|---:|---:|",
     ]
+    inner = {k: statistics.median(x[3] for x in v) if all(x[3] for x in v) else None for k, v in stream.items()}
     for key in contenders:
         hwm = statistics.median(x[1] for x in stream[key])
+        own = f"{inner[key]:,.0f}" if inner[key] else "-"
         lines.append(f"| {key} | {rate[key]:,.0f} | {cpu_rate[key]:,.0f} | {cpu_rate[c_key] / cpu_rate[key]:.2f}x | "
-                     f"{hwm / 1024:.1f} MB |")
+                     f"{own} | {hwm / 1024:.1f} MB |")
     lines += ["", "| cold start: load + first answer (one line, whole process) | wall | CPU | peak resident |",
               "|---|---:|---:|---:|"]
     for key, v in start.items():
@@ -182,6 +194,15 @@ def main(argv: list[str] | None = None) -> int:
         "", f"- C program per text (CPU): {cpu_rate[floor_key] / cpu_rate[c_key]:.2f}x the bare floor's time "
         f"(target within 1.5x); {cpu_rate[c_key] / cpu_rate['danpack-run, onnxruntime backend']:.1f}x `danpack-run` "
         f"(onnxruntime), {cpu_rate[c_key] / cpu_rate['danpack-run, numpy backend']:.1f}x (numpy) (target >= 10x).",
+        f"- `danpack-run` in the stream (--verbose, start-up left out): {inner['danpack-run, numpy backend'] or 0:,.0f} lines/s "
+        f"(numpy), {inner['danpack-run, onnxruntime backend'] or 0:,.0f} (onnxruntime): "
+        f"{(inner['danpack-run, numpy backend'] or 0) / ISSUE_LINES_PER_S:.2f}x / "
+        f"{(inner['danpack-run, onnxruntime backend'] or 0) / ISSUE_LINES_PER_S:.2f}x the issue's {ISSUE_LINES_PER_S:,} "
+        f"(target >= 2.5x); {(inner['danpack-run, numpy backend'] or 0) / (inner[py_off] or 1):.2f}x the Python records "
+        "(DANPACK_NATIVE=0) in this run.",
+        f"- Python API at batch 1: {api[(1, 'numpy', True)] / api[(1, 'numpy', False)]:.2f}x (numpy, native forward "
+        f"pass) and {api[(1, 'onnxruntime', True)] / api[(1, 'onnxruntime', False)]:.2f}x (onnxruntime) the Python "
+        "path's throughput (target >= 2x).",
         f"- Binary: {binary:,} bytes as built"
         + (f", {stripped.stat().st_size:,} bytes stripped" if strip_ok else "") + " (Unicode tables included; target <= 300 KB).",
     ]

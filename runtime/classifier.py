@@ -12,7 +12,7 @@ from .backends import BACKENDS, open_backend
 from .bundle import Bundle, read_bundle
 from .encode import Encoder
 from .errors import BundleError, DanpackError
-from .fastpath import NativeEncoder
+from .fastpath import MIN_TEXTS, NativeEncoder
 from .forward import encode_batch
 from .tokenize import Tokenizer
 
@@ -51,10 +51,19 @@ class Classifier:
         self.native, self.fast_path = (NativeEncoder.open(native_path) if native_path is not None
                                        else (None, "python (no bundle file to hand to the native runtime)"))
 
+    @property
+    def _native_forward(self) -> bool:
+        """Whether calls of fewer than fastpath.MIN_TEXTS texts run the native forward pass: with the numpy backend
+        only (its answers depend on the batch at the 1e-7 level already; onnxruntime is kept as chosen)."""
+        return self.native is not None and self.backend.name == "numpy"
+
     def describe(self) -> dict:
-        """What runs: the backend, which encoder (the native fast path or Python, and why), the bundle's sha256."""
-        return {"backend": self.backend.name, "encoder": self.fast_path, "labels": list(self.labels),
-                "sha256": self.bundle.sha256}
+        """What runs: the backend, which encoder (the native fast path or Python, and why), which forward pass, the
+        bundle's sha256."""
+        forward = (f"native below {MIN_TEXTS} texts in predict/predict_proba, else {self.backend.name}"
+                   if self._native_forward else self.backend.name)
+        return {"backend": self.backend.name, "encoder": self.fast_path, "forward": forward,
+                "labels": list(self.labels), "sha256": self.bundle.sha256}
 
     def _encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
         """(B,) texts -> (B, T) ids and (B,) counts: natively when the fast path is open, else in Python."""
@@ -112,8 +121,13 @@ class Classifier:
         return self.bundle.manifest
 
     def run(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
-        """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call."""
+        """(B,) texts -> ((B, C) probabilities, (B, C) logits), CALL_TEXTS texts per backend call; fewer than
+        MIN_TEXTS texts on the numpy backend in one native call when the compiled part is there (describe())."""
         texts = as_texts(texts)
+        if len(texts) < MIN_TEXTS and texts and self._native_forward:  # e.g. one text: one C call, no numpy pass
+            answered = self.native.classify(texts, len(self.labels))
+            if answered is not None:
+                return answered
         if len(texts) <= CALL_TEXTS:
             return self.backend.run(*self._encode(texts))  # (B, T) ids, (B,) counts in
         parts = [self.backend.run(*self._encode(texts[i : i + CALL_TEXTS]))

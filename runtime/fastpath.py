@@ -54,7 +54,25 @@ def _open_library() -> ctypes.CDLL | None:
     lib.dp_scratch_free.restype, lib.dp_scratch_free.argtypes = None, [p]
     lib.dp_encode_flat.restype = ctypes.c_longlong
     lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, ctypes.POINTER(_Error)]
+    err = ctypes.POINTER(_Error)
+    lib.dp_classify_flat.restype = ctypes.c_int
+    lib.dp_classify_flat.argtypes = [p, p, ctypes.c_char_p, p, size, p, p, err]
+    lib.dp_stream_new.restype, lib.dp_stream_new.argtypes = p, [p, ctypes.POINTER(_StreamOptions), err]
+    lib.dp_stream_free.restype, lib.dp_stream_free.argtypes = None, [p]
+    lib.dp_stream_parse.restype = ctypes.c_longlong
+    lib.dp_stream_parse.argtypes = [p, ctypes.c_char_p, i64, ctypes.c_char_p, size, size, err]
+    lib.dp_stream_ids.restype, lib.dp_stream_ids.argtypes = size, [p, i64, i64, i64]
+    lib.dp_stream_format.restype = ctypes.c_int
+    lib.dp_stream_format.argtypes = [p, p, ctypes.POINTER(ctypes.c_void_p), ctypes.POINTER(size), ctypes.POINTER(size), err]
     return lib
+
+
+class _StreamOptions(ctypes.Structure):
+    """runtime/native/stream.h dp_stream_options"""
+
+    _fields_ = [("jsonl", ctypes.c_int), ("tsv", ctypes.c_int), ("classify_empty", ctypes.c_int),
+                ("skip_empty", ctypes.c_int), ("text_field", ctypes.c_char_p), ("id_field", ctypes.c_char_p),
+                ("top_k", ctypes.c_size_t), ("max_line_bytes", ctypes.c_size_t)]
 
 
 class NativeEncoder:
@@ -96,6 +114,27 @@ class NativeEncoder:
                 self._scratches.append(scratch)
             self._local.scratch = scratch
         return scratch
+
+    def classify(self, texts: Sequence[str], labels: int) -> tuple[np.ndarray, np.ndarray] | None:
+        """(B,) texts -> ((B, C) probabilities, (B, C) logits) by the native forward pass (gather, mean, layers,
+        softmax in C: within 1e-6 of the numpy backend, not bit for bit); None when a text is not UTF-8-encodable.
+        Made for few texts: one ctypes call, no numpy work but the two result arrays."""
+        try:
+            parts = [t.encode("utf-8") for t in texts]
+        except UnicodeEncodeError:
+            return None
+        offsets = (ctypes.c_int64 * (len(parts) + 1))()
+        total = 0
+        for i, part in enumerate(parts):
+            total += len(part)
+            offsets[i + 1] = total
+        probs = np.empty((len(parts), labels), dtype=np.float32)  # (B, C)
+        logits = np.empty((len(parts), labels), dtype=np.float32)  # (B, C)
+        err = _Error()
+        if self._lib.dp_classify_flat(self._handle, self._scratch(), parts[0] if len(parts) == 1 else b"".join(parts),
+                                      offsets, len(parts), probs.ctypes.data, logits.ctypes.data, ctypes.byref(err)):
+            raise MemoryError(err.message.decode("utf-8", "replace"))
+        return probs, logits
 
     def encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray] | None:
         """(B,) texts -> (B, T) int64 ids (padding 0) and (B,) int64 counts; None when a text is not UTF-8-encodable."""
@@ -140,3 +179,65 @@ def pad(flat: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     ids = np.zeros((len(counts), max(width, 1)), dtype=np.int64)  # (B, T)
     ids[np.arange(ids.shape[1])[None, :] < counts[:, None]] = flat  # row-major fill of each row's first n slots
     return ids, counts
+
+
+class NativeStream:
+    """`danpack-run`'s records by the native library (runtime/native/stream.c, the C program's own record code):
+    a batch of raw lines -> parsed records and their ids (`parse`), the backend's probabilities -> output bytes
+    (`format`). The same bytes as runtime/stream_records.py (tests/test_native.py), which stays the fallback."""
+
+    def __init__(self, encoder: NativeEncoder, handle: int) -> None:
+        self._lib, self._encoder, self._handle = encoder._lib, encoder, handle  # the encoder keeps the bundle alive
+        self._err = _Error()
+
+    @classmethod
+    def open(cls, encoder: "NativeEncoder | None", *, jsonl: bool, text_field: str, id_field: str | None, tsv: bool,
+             top_k: int | None, max_line_bytes: int, classify_empty: bool, skip_empty: bool) -> "NativeStream | None":
+        """A native stream for these options, or None (no compiled part, or a field name that is not UTF-8)."""
+        if encoder is None:
+            return None
+        try:
+            fields = text_field.encode("utf-8"), None if id_field is None else id_field.encode("utf-8")
+        except UnicodeEncodeError:
+            return None
+        if b"\0" in fields[0] or (fields[1] is not None and b"\0" in fields[1]):
+            return None
+        opts = _StreamOptions(int(jsonl), int(tsv), int(classify_empty), int(skip_empty), fields[0], fields[1],
+                              top_k or 0, max_line_bytes)
+        err = _Error()
+        handle = encoder._lib.dp_stream_new(encoder._handle, ctypes.byref(opts), ctypes.byref(err))
+        return cls(encoder, handle) if handle else None
+
+    def __del__(self) -> None:
+        if getattr(self, "_handle", None):
+            self._lib.dp_stream_free(self._handle)
+            self._handle = None
+
+    def parse(self, lines: list, first_line: int, overlong: object) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Raw lines (bytes, or the `overlong` marker) numbered from first_line -> the classifiable records' flat ids
+        (sum n,), counts (N,) and known-token counts (N,), all int64."""
+        flags = None
+        if lines.count(overlong):
+            flags = bytes(x is overlong for x in lines)
+            lines = [b"" if x is overlong else x for x in lines]
+        offsets = np.zeros(len(lines) + 1, dtype=np.int64)  # (B + 1,)
+        np.cumsum(np.fromiter(map(len, lines), dtype=np.int64, count=len(lines)), out=offsets[1:])
+        ok = self._lib.dp_stream_parse(self._handle, b"".join(lines), offsets.ctypes.data, flags, len(lines),
+                                       first_line, ctypes.byref(self._err))
+        if ok < 0:
+            raise MemoryError(self._err.message.decode("utf-8", "replace"))
+        total = self._lib.dp_stream_ids(self._handle, None, None, None)
+        flat = np.empty(max(total, 1), dtype=np.int64)  # (sum n,)
+        counts, known = np.empty(ok, dtype=np.int64), np.empty(ok, dtype=np.int64)  # (N,) each
+        self._lib.dp_stream_ids(self._handle, flat.ctypes.data, counts.ctypes.data, known.ctypes.data)
+        return flat[:total], counts, known
+
+    def format(self, probs: np.ndarray | None) -> tuple[bytes, int]:
+        """(N, C) float32 probabilities of the classifiable records -> (output bytes, error records)."""
+        if probs is not None:
+            probs = np.ascontiguousarray(probs, dtype=np.float32)  # (N, C)
+        out, size, errors = ctypes.c_void_p(), ctypes.c_size_t(), ctypes.c_size_t()
+        if self._lib.dp_stream_format(self._handle, None if probs is None else probs.ctypes.data, ctypes.byref(out),
+                                      ctypes.byref(size), ctypes.byref(errors), ctypes.byref(self._err)):
+            raise MemoryError(self._err.message.decode("utf-8", "replace"))
+        return ctypes.string_at(out, size.value), errors.value

@@ -22,10 +22,11 @@ from typing import BinaryIO
 import numpy as np
 
 from .backends import BACKENDS
-from .classifier import Classifier, load
+from .classifier import CALL_TEXTS, Classifier, load
 from .errors import DanpackError
+from .fastpath import NativeStream, pad
 from .formats import choose_format
-from .stream_lines import read_batches
+from .stream_lines import OVERLONG, read_batches
 from .stream_records import JsonlFormatter, Skipped, TsvFormatter, make_parser
 
 PROG = "danpack-run"
@@ -157,6 +158,12 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
         formatter = TsvFormatter(classifier.labels, config.top_k, config.id_field, config.header)
     else:
         formatter = JsonlFormatter(classifier.labels, config.top_k)
+    # the native records stand in for predict_known's encoder and the Python records: only for the stock Classifier
+    stock = isinstance(classifier, Classifier) and type(classifier).predict_known is Classifier.predict_known
+    native = None if not stock else NativeStream.open(
+        classifier.native, jsonl=config.jsonl, text_field=config.text_field, id_field=config.id_field,
+        tsv=config.output == "tsv", top_k=config.top_k, max_line_bytes=config.max_line_bytes,
+        classify_empty=config.classify_empty, skip_empty=config.skip_empty)
     start = time.perf_counter()
     records = errors = batches = 0
 
@@ -168,17 +175,43 @@ def classify_stream(classifier: Classifier, source: BinaryIO, sink: BinaryIO,
             with _stop_signals_held():
                 sink.write(formatter.header)
         for lines in read_batches(source, config.batch, config.max_wait_ms / 1000.0, config.max_line_bytes, wake_fd):
-            parsed = [_parse_one(parse, raw, records + i) for i, raw in enumerate(lines, start=1)]
-            data, failed = answer_batch(classifier, formatter, parsed)
+            answered = None if native is None else _answer_native(classifier, native, lines, records + 1)
+            if answered is None:  # no compiled part, or the native batch failed: the Python records
+                parsed = [_parse_one(parse, raw, records + i) for i, raw in enumerate(lines, start=1)]
+                answered = answer_batch(classifier, formatter, parsed)
+            data, failed = answered
+            count = len(lines)
             with _stop_signals_held():  # one write and one flush per batch
                 sink.write(data)
                 sink.flush()
-                records += len(parsed)
+                records += count
                 errors += failed
                 batches += 1
     except KeyboardInterrupt as e:
         raise StreamInterrupted(stats(), signal.SIGTERM if isinstance(e, Terminated) else signal.SIGINT) from None
     return stats()
+
+
+def _answer_native(classifier: Classifier, native: NativeStream, lines: list, first_line: int) -> tuple[bytes, int] | None:
+    """A batch through the native records (runtime/native/stream.c) and the classifier's own backend, called on
+    the same groups of CALL_TEXTS records as Classifier.predict_known, so the probabilities and bytes are those of
+    the Python records; None when anything fails (the caller answers the batch the Python way, record by record
+    where it must)."""
+    try:
+        flat, counts, known = native.parse(lines, first_line, OVERLONG)  # (sum n,), (N,), (N,)
+        probs = None
+        if len(counts):
+            parts, start = [], 0
+            ends = np.cumsum(counts)  # (N,)
+            for i in range(0, len(counts), CALL_TEXTS):
+                part = counts[i : i + CALL_TEXTS]
+                stop = int(ends[i + len(part) - 1])
+                parts.append(classifier.backend.run(*pad(flat[start:stop], part))[0])  # (b, C)
+                start = stop
+            probs = np.concatenate(parts) if len(parts) > 1 else parts[0]  # (N, C)
+        return native.format(probs)
+    except Exception:
+        return None
 
 
 def _cause(e: BaseException) -> str:

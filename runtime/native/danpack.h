@@ -53,6 +53,10 @@ int dp_classify_batch(const dp_bundle *bundle, dp_scratch *scratch, const char *
 long long dp_encode_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets,
                          size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err);
 
+/* n texts as for dp_encode_flat -> n x dp_label_count() probabilities and (unless NULL) logits, row-major. */
+int dp_classify_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets, size_t n,
+                     float *probs, float *logits, dp_error *err);
+
 /* One text -> probabilities and the number of its tokens with a row of their own (danpack-run's known_tokens). */
 int dp_classify_known(const dp_bundle *bundle, dp_scratch *scratch, const char *text, size_t len, float *probs,
                       size_t *known, dp_error *err);

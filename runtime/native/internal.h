@@ -29,9 +29,12 @@ enum { DP_CASE_KEEP, DP_CASE_LOWER, DP_CASE_FOLD };
 enum {
     DP_P_ALNUM = 1 << 0, DP_P_WORD = 1 << 1, DP_P_SPACE = 1 << 2, DP_P_MARK = 1 << 3, DP_P_JOINER = 1 << 4,
     DP_P_SINGLE = 1 << 5, DP_P_CASED = 1 << 6, DP_P_IGNORABLE = 1 << 7, DP_P_UNASSIGNED = 1 << 8,
-    DP_P_NFD = 1 << 9, DP_P_NFKD = 1 << 10, DP_P_LOWER = 1 << 11, DP_P_FOLD = 1 << 12
+    DP_P_NFD = 1 << 9, DP_P_NFKD = 1 << 10, DP_P_LOWER = 1 << 11, DP_P_FOLD = 1 << 12,
+    DP_P_UNSAFE = 1 << 13 /* runtime/safe_text.py escapes it as \uXXXX: not printable, not a space separator */
 };
 uint16_t dp_props(uint32_t c);
+extern const uint16_t dp_ascii_props[128]; /* dp_props of ASCII, for the inline test below */
+static inline uint16_t dp_props_inline(uint32_t c) { return c < 0x80 ? dp_ascii_props[c] : dp_props(c); }
 const char *dp_unicode_version(void);
 /* in -> out (out emptied first): normal form, then case; -1 when out of memory */
 int dp_normalize(const uint32_t *in, size_t n, int form, int kase, dp_u32buf *out, dp_u32buf *tmp);

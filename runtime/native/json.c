@@ -295,11 +295,25 @@ void sb_put(sbuf *b, const char *s, size_t n) {
         b->p = p;
         b->cap = cap;
     }
-    memcpy(b->p + b->n, s, n);
+    if (s) memcpy(b->p + b->n, s, n); /* s NULL: room only, the caller writes the bytes */
     b->n += n;
 }
 
 void sb_str(sbuf *b, const char *z) { sb_put(b, z, strlen(z)); }
+
+/* runtime/safe_text.py escape_text: what str.isprintable() refuses, space separators aside, as \uXXXX (astral
+ * characters as their UTF-16 pair); applied after json.dumps's own escapes, as Python's stream writer does */
+void sb_json_unsafe(sbuf *b, uint32_t c) {
+    char tmp[16];
+    if (c >= 0x10000) {
+        c -= 0x10000;
+        snprintf(tmp, sizeof(tmp), "\\u%04x\\u%04x", 0xD800u + (c >> 10), 0xDC00u + (c & 0x3FFu));
+        sb_put(b, tmp, 12);
+    } else {
+        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
+        sb_put(b, tmp, 6);
+    }
+}
 
 static void put_escaped(sbuf *b, uint32_t c) {
     char tmp[16];
@@ -313,27 +327,24 @@ static void put_escaped(sbuf *b, uint32_t c) {
     case '\f': sb_put(b, "\\f", 2); return;
     default: break;
     }
-    if (c < 0x20) {
-        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
-        sb_put(b, tmp, 6);
-    } else if (c >= 0xD800 && c <= 0xDFFF) { /* json.dumps keeps it; encode("utf-8", "backslashreplace") escapes it */
-        snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
-        sb_put(b, tmp, 6);
-    } else {
-        sb_put(b, tmp, dp_utf8_put(c, tmp));
-    }
+    if (c < 0x20 || (!b->keep_unsafe && (c == 0x7F || (c > 0x7F && (dp_props(c) & DP_P_UNSAFE))))) sb_json_unsafe(b, c);
+    else sb_put(b, tmp, dp_utf8_put(c, tmp));
 }
 
 void sb_json_cps(sbuf *b, const uint32_t *s, size_t n) {
     sb_put(b, "\"", 1);
-    for (size_t i = 0; i < n; i++) {
-        uint32_t c = s[i];
-        if (c >= 0x20 && c < 0x80 && c != '"' && c != '\\') {
-            char ch = (char)c;
-            sb_put(b, &ch, 1);
-        } else {
-            put_escaped(b, c);
+    size_t i = 0;
+    while (i < n) {
+        size_t j = i; /* a run of printable ASCII other than the quote and backslash: copied as bytes */
+        while (j < n && s[j] >= 0x20 && s[j] < 0x7F && s[j] != '"' && s[j] != '\\') j++;
+        if (j > i && !b->failed) {
+            sb_put(b, NULL, j - i);
+            if (b->failed) return;
+            char *o = b->p + b->n - (j - i);
+            for (size_t k = i; k < j; k++) *o++ = (char)s[k];
         }
+        if (j < n) put_escaped(b, s[j++]);
+        i = j;
     }
     sb_put(b, "\"", 1);
 }
@@ -407,7 +418,99 @@ static void put_scientific(sbuf *b, const char *digits, int e) {
     sb_str(b, tmp);
 }
 
-void sb_f32(sbuf *b, float v) {
+/* ---- the fast exact path for float32 ----
+ * The same digits as shortest(v, 1, ...), found without printf / strtof: for a precision p the slow path prints
+ * the p-digit rounding of v (correctly rounded, ties to even) and reads it back with strtof (correctly rounded to
+ * float32). Here the p-digit candidate D is round(v * 10^k) computed in double, and "reads back as v" is "D / 10^k
+ * lies strictly between the midpoints from v to its float32 neighbours". Both are decided only when the double
+ * arithmetic (at most three roundings, relative error < 4e-16) cannot change the answer: a scaled value within
+ * that error of a rounding tie, a midpoint or a power of ten makes the call return 0 and the slow path decide. */
+
+static const double POW10[23] = {1e0,  1e1,  1e2,  1e3,  1e4,  1e5,  1e6,  1e7,  1e8,  1e9,  1e10, 1e11,
+                                 1e12, 1e13, 1e14, 1e15, 1e16, 1e17, 1e18, 1e19, 1e20, 1e21, 1e22};
+#define SCALE_EPS 1e-15 /* relative error bound of scale() (3 roundings of 2^-53), with room to spare */
+
+/* x * 10^k (|k| <= 44) with at most two roundings; exact powers of ten only */
+static int scale(double x, int k, double *out) {
+    if (k > 44 || k < -22) return 0;
+    if (k > 22) x *= POW10[22], k -= 22;
+    *out = k >= 0 ? x * POW10[k] : x / POW10[-k];
+    return 1;
+}
+
+/* 1: the p-digit rounding of a (digits *d, exponent of the first digit *e) is decided; 0: too close to call */
+static int candidate(double a, int e10, int p, uint64_t *d, int *e) {
+    double s;
+    if (!scale(a, p - 1 - e10, &s)) return 0;
+    double lo = POW10[p - 1], hi = POW10[p];
+    if (fabs(s - lo) <= lo * SCALE_EPS * 4 || fabs(s - hi) <= hi * SCALE_EPS * 4) return 0; /* e10 itself unsure */
+    if (s < lo || s >= hi) return -1; /* e10 off by one: the caller fixes it */
+    double f = floor(s), frac = s - f;
+    if (fabs(frac - 0.5) <= s * SCALE_EPS) return 0; /* a tie, or too near one: ties-to-even needs exact digits */
+    uint64_t n = (uint64_t)f + (frac > 0.5);
+    *e = e10;
+    if (n == (uint64_t)hi) n /= 10, (*e)++; /* 9.99 -> 10.0: one digit more in front */
+    *d = n;
+    return 1;
+}
+
+/* 1 / 0: D * 10^(e - p + 1) reads back as v / does not; -1: too close to a midpoint to call */
+static int reads_back(uint64_t d, int e, int p, double mid_lo, double mid_hi) {
+    double lo, hi;
+    int k = p - 1 - e;
+    if (!scale(mid_lo, k, &lo) || !scale(mid_hi, k, &hi)) return -1;
+    double x = (double)d;
+    if (fabs(x - lo) <= lo * SCALE_EPS * 2 || fabs(x - hi) <= hi * SCALE_EPS * 2) return -1;
+    return x > lo && x < hi;
+}
+
+/* shortest(v, 1, ...) without printf; 0 when the slow path must decide */
+static int shortest_f32_fast(float v, char *digits, int *exp10) {
+    double a = (double)v;
+    if (!(a >= 1.1754943508222875e-38) || !(a <= 1e30)) return 0; /* subnormal, huge, NaN: the slow path */
+    float below = nextafterf(v, 0.0f), above = nextafterf(v, INFINITY);
+    if (isinf(above)) return 0;
+    double mid_lo = (a + (double)below) / 2, mid_hi = (a + (double)above) / 2; /* exact in double */
+    int e2;
+    frexp(a, &e2); /* a in [2^(e2-1), 2^e2): floor(log10(a)) is this or one more; candidate() finds which */
+    int e10 = (int)floor((e2 - 1) * 0.30102999566398120);
+    uint64_t best = 0;
+    int best_e = 0;
+    int lo = 1, hi = 9; /* the slow path's bisection, step for step */
+    uint64_t cand[10];
+    int cand_e[10], known[10] = {0};
+    while (lo <= hi) {
+        int mid = lo == hi ? lo : (lo + hi) / 2;
+        uint64_t d;
+        int e, c = candidate(a, e10, mid, &d, &e);
+        if (c < 0) { /* the decimal exponent was off by one: find it from this precision */
+            double s;
+            if (!scale(a, mid - 1 - e10, &s)) return 0;
+            e10 += s >= POW10[mid] ? 1 : -1;
+            c = candidate(a, e10, mid, &d, &e);
+        }
+        if (c != 1) return 0;
+        int r = reads_back(d, e, mid, mid_lo, mid_hi);
+        if (r < 0) return 0;
+        cand[mid] = d, cand_e[mid] = e, known[mid] = r + 1;
+        if (lo == hi) break;
+        if (r) hi = mid;
+        else lo = mid + 1;
+    }
+    if (known[lo] != 2) return 0; /* the slow path uses precision 9 even when it does not read back */
+    best = cand[lo], best_e = cand_e[lo];
+    char tmp[24];
+    int n = 0;
+    while (best) tmp[n++] = (char)('0' + best % 10), best /= 10;
+    int k = 0;
+    while (n > 0) digits[k++] = tmp[--n];
+    while (k > 1 && digits[k - 1] == '0') k--;
+    digits[k] = 0;
+    *exp10 = best_e;
+    return 1;
+}
+
+static void put_f32(sbuf *b, float v, int fast) {
     if (isnan(v)) return sb_str(b, "nan");
     if (isinf(v)) return sb_str(b, v < 0 ? "-inf" : "inf");
     if (signbit(v)) sb_put(b, "-", 1);
@@ -415,10 +518,14 @@ void sb_f32(sbuf *b, float v) {
     if (a == 0.0) return sb_str(b, "0.0");
     char digits[40];
     int e;
-    shortest(a, 1, digits, &e);
+    if (!fast || !shortest_f32_fast(fabsf(v), digits, &e)) shortest(a, 1, digits, &e);
     if (a < 1e16 && a >= 1e-4) put_positional(b, digits, e);
     else put_scientific(b, digits, e);
 }
+
+void sb_f32(sbuf *b, float v) { put_f32(b, v, 1); }
+
+void sb_f32_slow(sbuf *b, float v) { put_f32(b, v, 0); }
 
 /* float as Python's repr() writes it */
 static void sb_f64(sbuf *b, double v) {

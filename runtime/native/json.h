@@ -32,16 +32,21 @@ typedef struct {
     char *p;
     size_t n, cap;
     int failed; /* out of memory */
+    int keep_unsafe; /* JSON strings as json.dumps alone writes them (no \uXXXX for what escape_text escapes) */
 } sbuf;
 void sb_put(sbuf *b, const char *s, size_t n);
 void sb_str(sbuf *b, const char *z);
 /* a JSON string of code points (lone surrogates as \udXXX, as Python's backslashreplace writes them) */
 void sb_json_cps(sbuf *b, const uint32_t *s, size_t n);
 void sb_json_utf8(sbuf *b, const char *s, size_t n);
+/* one character runtime/safe_text.py escapes (DP_P_UNSAFE, or a control character) as \uXXXX (astral: a pair) */
+void sb_json_unsafe(sbuf *b, uint32_t c);
 /* a value as json.dumps writes it (objects with repeated keys as the dict Python builds) */
 void sb_json_value(sbuf *b, const jdoc *doc, size_t node);
 /* float32 as numpy's str() writes it (shortest digits that read back as the same float32) */
 void sb_f32(sbuf *b, float v);
+/* the same through snprintf + strtof only (the reference sb_f32's tests compare against) */
+void sb_f32_slow(sbuf *b, float v);
 const jnode *dp_json_node(const jdoc *doc, size_t index); /* index + 1 as stored in first/next */
 int dp_cps_eq_utf8(const uint32_t *s, size_t n, const char *z, size_t zn);
 

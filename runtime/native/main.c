@@ -13,8 +13,7 @@
 
 #include <sys/stat.h>
 
-#include "bundle_impl.h"
-#include "json.h"
+#include "stream.h"
 
 #define PROG "danpack-run-native"
 #define CHUNK_BYTES 65536
@@ -45,12 +44,10 @@ typedef struct {
     dp_scratch *s;
     dp_tok_spec spec;
     dp_tok_work work;
+    dp_stream *st;
     float *probs;
-    size_t *order;
     sbuf out;
-    jdoc doc;
-    dp_u32buf cps;
-    size_t records, errors, known;
+    size_t records, errors;
     int out_fd, write_failed;
 } runner;
 
@@ -100,265 +97,6 @@ static int flush_out(runner *r) {
     return 0;
 }
 
-static void tsv_cps(sbuf *b, const uint32_t *s, size_t n) {
-    char tmp[16];
-    for (size_t i = 0; i < n; i++) {
-        uint32_t c = s[i];
-        if (c == '\\') sb_put(b, "\\\\", 2);
-        else if (c == '\t') sb_put(b, "\\t", 2);
-        else if (c == '\n') sb_put(b, "\\n", 2);
-        else if (c == '\r') sb_put(b, "\\r", 2);
-        else if (c >= 0xD800 && c <= 0xDFFF) {
-            snprintf(tmp, sizeof(tmp), "\\u%04x", (unsigned)c);
-            sb_put(b, tmp, 6);
-        } else {
-            sb_put(b, tmp, dp_utf8_put(c, tmp));
-        }
-    }
-}
-
-static void tsv_utf8(sbuf *b, const char *s, size_t n) {
-    for (size_t i = 0; i < n; i++) {
-        char c = s[i];
-        if (c == '\\') sb_put(b, "\\\\", 2);
-        else if (c == '\t') sb_put(b, "\\t", 2);
-        else if (c == '\n') sb_put(b, "\\n", 2);
-        else if (c == '\r') sb_put(b, "\\r", 2);
-        else sb_put(b, &c, 1);
-    }
-}
-
-static void put_line_no(sbuf *b, size_t line) {
-    char tmp[32];
-    snprintf(tmp, sizeof(tmp), "%zu", line);
-    sb_str(b, tmp);
-}
-
-/* the object's members as a Python dict after pop(text_field): for each distinct key, first position, last value */
-typedef struct {
-    size_t key, value; /* node indices */
-} kv;
-
-static int same_key(const jdoc *d, size_t a, size_t b) {
-    const jnode *x = &d->nodes[a], *y = &d->nodes[b];
-    return x->len == y->len && memcmp(d->cps.v + x->off, d->cps.v + y->off, x->len * sizeof(uint32_t)) == 0;
-}
-
-static int key_is(const jdoc *d, size_t k, const char *z) {
-    const jnode *x = &d->nodes[k];
-    return dp_cps_eq_utf8(d->cps.v + x->off, x->len, z, strlen(z));
-}
-
-typedef struct {
-    const jdoc *d;
-    size_t key, order;
-} ent;
-
-static int cmp_ent(const void *x, const void *y) {
-    const ent *a = x, *b = y;
-    const jnode *ka = &a->d->nodes[a->key], *kb = &b->d->nodes[b->key];
-    const uint32_t *sa = a->d->cps.v + ka->off, *sb = b->d->cps.v + kb->off;
-    size_t n = ka->len < kb->len ? ka->len : kb->len;
-    for (size_t i = 0; i < n; i++)
-        if (sa[i] != sb[i]) return sa[i] < sb[i] ? -1 : 1;
-    if (ka->len != kb->len) return ka->len < kb->len ? -1 : 1;
-    return (a->order > b->order) - (a->order < b->order);
-}
-
-/* Members of the root object (deduplicated, text field left out) into *out (malloc'd); count in *n. Quadratic
- * only in the number of repeated keys' checks against reserved names; dedup by sorting keys. */
-static int members(const jdoc *d, const char *skip, kv **out, size_t *n) {
-    const jnode *root = &d->nodes[0];
-    size_t m = root->count / 2, k = 0;
-    kv *all = malloc((m ? m : 1) * sizeof(kv));
-    if (!all) return -1;
-    for (size_t i = root->first; i; i = d->nodes[d->nodes[i - 1].next - 1].next) {
-        all[k].key = i - 1;
-        all[k].value = d->nodes[i - 1].next - 1;
-        k++;
-    }
-    /* dedup: keep first position, last value (sorting indices by key, then order) */
-    size_t *idx = malloc((m ? m : 1) * sizeof(size_t));
-    if (!idx) {
-        free(all);
-        return -1;
-    }
-    for (size_t i = 0; i < m; i++) idx[i] = i;
-    ent *e = malloc((m ? m : 1) * sizeof(ent));
-    if (!e) {
-        free(all);
-        free(idx);
-        return -1;
-    }
-    for (size_t i = 0; i < m; i++) e[i] = (ent){d, all[i].key, i};
-    qsort(e, m, sizeof(ent), cmp_ent);
-    size_t *last = idx; /* reuse: last[order of first] = order of last, or SIZE_MAX */
-    for (size_t i = 0; i < m; i++) last[i] = SIZE_MAX;
-    for (size_t i = 0; i < m;) {
-        size_t j = i;
-        while (j + 1 < m && same_key(d, e[j + 1].key, e[i].key)) j++;
-        last[e[i].order] = e[j].order;
-        i = j + 1;
-    }
-    size_t w = 0;
-    for (size_t i = 0; i < m; i++) {
-        if (last[i] == SIZE_MAX) continue;
-        if (skip && key_is(d, all[i].key, skip)) continue;
-        all[w].key = all[i].key;
-        all[w].value = all[last[i]].value;
-        w++;
-    }
-    free(e);
-    free(idx);
-    *out = all;
-    *n = w;
-    return 0;
-}
-
-static const char *const RESERVED[] = {"line", "label", "probs", "known_tokens", "no_known_token", "error", "skipped"};
-
-static int reserved(const uint32_t *s, size_t n) {
-    for (int i = 0; i < 7; i++)
-        if (dp_cps_eq_utf8(s, n, RESERVED[i], strlen(RESERVED[i]))) return 1;
-    return 0;
-}
-
-static int in_extra(const jdoc *d, const kv *ex, size_t n, const uint32_t *s, size_t len) {
-    for (size_t i = 0; i < n; i++) {
-        const jnode *k = &d->nodes[ex[i].key];
-        if (k->len == len && memcmp(d->cps.v + k->off, s, len * sizeof(uint32_t)) == 0) return 1;
-    }
-    return 0;
-}
-
-/* `,"key":value` for each passthrough field, reserved names renamed input_<name> (runtime/stream_records.py) */
-static void put_extras(runner *r, const kv *ex, size_t n) {
-    const jdoc *d = &r->doc;
-    dp_u32buf name = {0};
-    for (size_t i = 0; i < n; i++) {
-        const jnode *k = &d->nodes[ex[i].key];
-        const uint32_t *key = d->cps.v + k->off;
-        sb_put(&r->out, ",", 1);
-        if (!reserved(key, k->len)) {
-            sb_json_cps(&r->out, key, k->len);
-        } else {
-            name.n = 0;
-            for (size_t j = 0; j < k->len; j++) dp_u32_push(&name, key[j]);
-            do {
-                static const uint32_t prefix[] = {'i', 'n', 'p', 'u', 't', '_'};
-                dp_u32buf next = {0};
-                for (int j = 0; j < 6; j++) dp_u32_push(&next, prefix[j]);
-                for (size_t j = 0; j < name.n; j++) dp_u32_push(&next, name.v[j]);
-                free(name.v);
-                name = next;
-            } while (name.v && (reserved(name.v, name.n) || in_extra(d, ex, n, name.v, name.n)));
-            if (!name.v) {
-                r->out.failed = 1;
-                break;
-            }
-            sb_json_cps(&r->out, name.v, name.n);
-        }
-        sb_put(&r->out, ":", 1);
-        sb_json_value(&r->out, d, ex[i].value);
-    }
-    free(name.v);
-}
-
-static void put_error_text(runner *r, const char *msg) {
-    if (r->o.tsv) tsv_utf8(&r->out, msg, strlen(msg));
-    else sb_json_utf8(&r->out, msg, strlen(msg));
-}
-
-/* one output record; kvs: passthrough fields (JSONL) or NULL; msg: the error (or with skipped, the reason the record
- * was passed over on request), or NULL with r->probs and r->known filled */
-static void emit_kind(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg, int skipped) {
-    sbuf *b = &r->out;
-    size_t C = r->b ? dp_label_count(r->b) : 0, k = r->o.top_k ? r->o.top_k : (r->o.tsv ? 1 : C);
-    char tmp[48];
-    if (msg && !skipped) r->errors++;
-    if (!r->o.tsv) {
-        sb_str(b, "{\"line\":");
-        put_line_no(b, line);
-        if (has_obj) put_extras(r, ex, nex);
-        if (msg) {
-            sb_str(b, skipped ? ",\"skipped\":" : ",\"error\":");
-            put_error_text(r, msg);
-            sb_str(b, "}\n");
-            return;
-        }
-    } else {
-        put_line_no(b, line);
-        if (r->o.id_field) {
-            sb_put(b, "\t", 1);
-            for (size_t i = 0; has_obj && i < nex; i++) {
-                if (!key_is(&r->doc, ex[i].key, r->o.id_field)) continue;
-                const jnode *v = &r->doc.nodes[ex[i].value];
-                if (v->type == J_STR) {
-                    tsv_cps(b, r->doc.cps.v + v->off, v->len);
-                } else if (v->type != J_NULL) {
-                    sbuf tmp = {0};
-                    sb_json_value(&tmp, &r->doc, ex[i].value);
-                    tsv_utf8(b, tmp.p, tmp.n);
-                    if (tmp.failed) b->failed = 1;
-                    free(tmp.p);
-                }
-            }
-        }
-        if (msg) {
-            for (size_t i = 0; i < 2 * k + 1; i++) sb_put(b, "\t", 1); /* label/probability pairs, known_tokens */
-            sb_put(b, "\t", 1);
-            if (skipped) sb_str(b, "skipped: ");
-            put_error_text(r, msg);
-            sb_put(b, "\n", 1);
-            return;
-        }
-    }
-    /* rank: stable by descending probability, ties in label order */
-    size_t *ord = r->order;
-    for (size_t c = 0; c < C; c++) {
-        size_t j = c;
-        while (j > 0 && r->probs[ord[j - 1]] < r->probs[c]) {
-            ord[j] = ord[j - 1];
-            j--;
-        }
-        ord[j] = c;
-    }
-    size_t best = ord[0];
-    size_t len;
-    const char *name;
-    if (!r->o.tsv) {
-        sb_str(b, ",\"label\":");
-        name = dp_label(r->b, best, &len);
-        sb_json_utf8(b, name, len);
-        sb_str(b, ",\"probs\":{");
-        for (size_t i = 0; i < k; i++) {
-            size_t c = r->o.top_k ? ord[i] : i;
-            if (i) sb_put(b, ",", 1);
-            name = dp_label(r->b, c, &len);
-            sb_json_utf8(b, name, len);
-            sb_put(b, ":", 1);
-            sb_f32(b, r->probs[c]);
-        }
-        snprintf(tmp, sizeof(tmp), "},\"known_tokens\":%zu,\"no_known_token\":%s}\n", r->known,
-                 r->known ? "false" : "true");
-        sb_str(b, tmp);
-    } else {
-        for (size_t i = 0; i < k; i++) {
-            sb_put(b, "\t", 1);
-            name = dp_label(r->b, ord[i], &len);
-            tsv_utf8(b, name, len);
-            sb_put(b, "\t", 1);
-            sb_f32(b, r->probs[ord[i]]);
-        }
-        snprintf(tmp, sizeof(tmp), "\t%zu\t\n", r->known);
-        sb_str(b, tmp);
-    }
-}
-
-static void emit(runner *r, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg) {
-    emit_kind(r, line, ex, nex, has_obj, msg, 0);
-}
-
 /* ---- records ---- */
 
 static void put_token_json(sbuf *b, const char *tok, size_t len) {
@@ -394,11 +132,14 @@ static void on_token(void *ctx, const char *token, size_t len, long id) {
     sb_str(&t->ids, tmp);
 }
 
-static int tokens_record(runner *r, size_t line, const uint32_t *cps, size_t n) {
-    sbuf *b = &r->out;
+/* --tokens: the record of one classifiable text (a dp_text_fn) */
+static int tokens_record(void *ctx, sbuf *b, size_t line, const uint32_t *cps, size_t n) {
+    runner *r = ctx;
     dp_error err;
     sb_str(b, "{\"line\":");
-    put_line_no(b, line);
+    char num[32];
+    snprintf(num, sizeof(num), "%zu", line);
+    sb_str(b, num);
     sb_str(b, ",\"tokens\":[");
     tok_ctx t = {b, {0}, 0};
     int rc;
@@ -422,129 +163,21 @@ static int tokens_record(runner *r, size_t line, const uint32_t *cps, size_t n) 
     return rc;
 }
 
-/* Python's repr() of a short ASCII-ish name, for messages */
-static void repr(char *out, size_t cap, const char *s) {
-    int dq = strchr(s, '\'') && !strchr(s, '"');
-    char q = dq ? '"' : '\'';
-    size_t k = 0;
-    out[k++] = q;
-    for (; *s && k + 6 < cap; s++) {
-        unsigned char c = (unsigned char)*s;
-        if (c == '\\' || c == (unsigned char)q) out[k++] = '\\', out[k++] = (char)c;
-        else if (c == '\n') out[k++] = '\\', out[k++] = 'n';
-        else if (c == '\r') out[k++] = '\\', out[k++] = 'r';
-        else if (c == '\t') out[k++] = '\\', out[k++] = 't';
-        else if (c < 0x20 || c == 0x7F) k += (size_t)snprintf(out + k, cap - k, "\\x%02x", c);
-        else out[k++] = (char)c;
-    }
-    out[k++] = q;
-    out[k] = 0;
-}
-
-static const char *json_type(int t) {
-    switch (t) {
-    case J_OBJ: return "an object";
-    case J_ARR: return "an array";
-    case J_STR: return "a string";
-    case J_INT: case J_FLOAT: return "a number";
-    case J_TRUE: case J_FALSE: return "a boolean";
-    default: return "null";
-    }
-}
-
 /* one input line (without its newline); overlong: the line passed --max-line-bytes and was not kept */
 static int record(runner *r, const uint8_t *raw, size_t len, int overlong) {
-    size_t line = ++r->records;
-    char msg[256];
+    size_t line = ++r->records, errors, count;
+    int64_t offsets[2] = {0, (int64_t)len};
+    uint8_t over = (uint8_t)(overlong != 0);
     dp_error err;
-    int allow_empty = !r->o.jsonl && r->o.classify_empty;
-    if (!overlong && len && raw[len - 1] == '\r') len--;
-    if (!overlong && line == 1 && len >= 3 && memcmp(raw, "\xef\xbb\xbf", 3) == 0) raw += 3, len -= 3;
-    if (overlong || len > r->o.max_line_bytes) {
-        snprintf(msg, sizeof(msg), "line longer than %zu bytes (skipped)", r->o.max_line_bytes);
-        emit(r, line, NULL, 0, 0, msg);
-        return 0;
+    long long ok = dp_stream_parse(r->st, raw ? (const char *)raw : "", offsets, &over, 1, line, &err);
+    if (ok < 0) return -1;
+    if (ok == 1) {
+        const size_t *ids = dp_stream_record_ids(r->st, 0, &count);
+        dp_forward(r->b, r->s, ids, count, r->probs);
     }
-    if (!len && !allow_empty) {
-        emit_kind(r, line, NULL, 0, 0, "empty line", r->o.skip_empty);
-        return 0;
-    }
-    if (memchr(raw, 0, len)) {
-        emit(r, line, NULL, 0, 0, "NUL byte in line");
-        return 0;
-    }
-    size_t i = 0; /* first invalid byte, as Python's UnicodeDecodeError.start */
-    while (i < len) {
-        if (raw[i] < 0x80) {
-            i++;
-            continue;
-        }
-        size_t k = 1;
-        while (k < 4 && i + k <= len && !dp_utf8_valid(raw + i, k)) k++;
-        if (i + k > len || !dp_utf8_valid(raw + i, k)) break;
-        i += k;
-    }
-    if (i < len) {
-        snprintf(msg, sizeof(msg), "not valid UTF-8 (byte %zu)", i + 1);
-        emit(r, line, NULL, 0, 0, msg);
-        return 0;
-    }
-    if (dp_utf8_decode(raw, len, &r->cps)) return -1;
-    const uint32_t *text = r->cps.v;
-    size_t tlen = r->cps.n;
-    kv *ex = NULL;
-    size_t nex = 0;
-    int has_obj = 0, rc = 0;
-    if (r->o.jsonl) {
-        int pr = dp_json_parse(&r->doc, r->cps.v, r->cps.n);
-        if (pr == -2) return -1;
-        if (pr) {
-            emit(r, line, NULL, 0, 0, r->doc.error);
-            return 0;
-        }
-        if (r->doc.nodes[0].type != J_OBJ) {
-            snprintf(msg, sizeof(msg), "JSON value is %s, expected an object", json_type(r->doc.nodes[0].type));
-            emit(r, line, NULL, 0, 0, msg);
-            return 0;
-        }
-        /* the text field: its last occurrence (a Python dict) */
-        const jnode *field = NULL;
-        const jnode *root = &r->doc.nodes[0];
-        for (size_t k = root->first; k; k = r->doc.nodes[r->doc.nodes[k - 1].next - 1].next)
-            if (key_is(&r->doc, k - 1, r->o.text_field)) field = &r->doc.nodes[r->doc.nodes[k - 1].next - 1];
-        if (members(&r->doc, r->o.text_field, &ex, &nex)) return -1;
-        has_obj = 1;
-        char name[200];
-        repr(name, sizeof(name), r->o.text_field);
-        if (!field) {
-            snprintf(msg, sizeof(msg), "field %s is missing", name);
-            emit(r, line, ex, nex, 1, msg);
-            goto done;
-        }
-        if (field->type != J_STR) {
-            snprintf(msg, sizeof(msg), "field %s is %s, expected a string", name, json_type(field->type));
-            emit(r, line, ex, nex, 1, msg);
-            goto done;
-        }
-        text = r->doc.cps.v + field->off;
-        tlen = field->len;
-        for (size_t k = 0; k < tlen; k++) {
-            if (text[k] == 0) {
-                snprintf(msg, sizeof(msg), "field %s holds a NUL character", name);
-                emit(r, line, ex, nex, 1, msg);
-                goto done;
-            }
-        }
-    }
-    if (r->o.tokens_mode) {
-        rc = tokens_record(r, line, text, tlen);
-    } else {
-        rc = dp_classify_cps(r->b, r->s, text, tlen, r->probs, &r->known, &err);
-        if (!rc) emit(r, line, ex, nex, has_obj, NULL);
-    }
-done:
-    free(ex);
-    return rc;
+    if (dp_stream_format_into(r->st, r->probs, &r->out, &errors)) return -1;
+    r->errors += errors;
+    return 0;
 }
 
 /* Peak resident memory in kB (Linux /proc/self/status VmHWM), 0 when unknown: the --verbose summary shows it. */
@@ -860,28 +493,24 @@ int main(int argc, char **argv) {
         }
         r.s = dp_scratch_new(r.b);
         r.probs = malloc(C * sizeof(float));
-        r.order = malloc(C * sizeof(size_t));
-        if (!r.s || !r.probs || !r.order) {
+        if (!r.s || !r.probs) {
             say("error: out of memory%s%s", "", "");
             status = EXIT_USAGE;
             goto end;
         }
     }
-    r.out_fd = 1;
-    if (o->header) {
-        sb_str(&r.out, "line\t");
-        if (o->id_field) {
-            tsv_utf8(&r.out, o->id_field, strlen(o->id_field));
-            sb_put(&r.out, "\t", 1);
-        }
-        sb_str(&r.out, "label\tprobability");
-        for (size_t i = 2; i <= (o->top_k ? o->top_k : 1); i++) {
-            char tmp[64];
-            snprintf(tmp, sizeof(tmp), "\tlabel_%zu\tprobability_%zu", i, i);
-            sb_str(&r.out, tmp);
-        }
-        sb_str(&r.out, "\tknown_tokens\terror\n");
+    dp_stream_options so = {o->jsonl, o->tsv, o->classify_empty, o->skip_empty, o->text_field, o->id_field,
+                            o->top_k, o->max_line_bytes};
+    dp_error serr;
+    r.st = dp_stream_new(r.b, &so, &serr);
+    if (!r.st) {
+        say("error: %s%s", serr.message, "");
+        status = EXIT_USAGE;
+        goto end;
     }
+    if (o->tokens_mode) dp_stream_on_text(r.st, tokens_record, &r);
+    r.out_fd = 1;
+    if (o->header) dp_stream_header(r.st, &r.out);
     int rc = run_stream(&r, fd);
     if (r.write_failed == EPIPE) {
         status = EXIT_SIGPIPE;
@@ -910,9 +539,7 @@ end:
     if (fd > 0) close(fd);
     free(r.out.p);
     free(r.probs);
-    free(r.order);
-    free(r.cps.v);
-    dp_json_free(&r.doc);
+    dp_stream_free(r.st);
     dp_tok_work_free(&r.work);
     dp_scratch_free(r.s);
     dp_free(r.b);

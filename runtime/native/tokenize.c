@@ -35,12 +35,12 @@ static int add_span(dp_tok_work *w, size_t start, size_t len) {
 /* words-v1: [^\W_](?:[^\W_]|MARK)*(?:[APOSTROPHES-](?:[^\W_]|MARK)+)* | one SINGLE character */
 static size_t words_v1(const uint32_t *s, size_t n, size_t i, size_t *start) {
     for (; i < n; i++) {
-        uint16_t p = dp_props(s[i]);
+        uint16_t p = dp_props_inline(s[i]);
         if (p & DP_P_ALNUM) {
             size_t j = i + 1;
             for (;;) {
-                while (j < n && (dp_props(s[j]) & (DP_P_ALNUM | DP_P_MARK))) j++;
-                if (j + 1 < n && (dp_props(s[j]) & DP_P_JOINER) && (dp_props(s[j + 1]) & (DP_P_ALNUM | DP_P_MARK))) {
+                while (j < n && (dp_props_inline(s[j]) & (DP_P_ALNUM | DP_P_MARK))) j++;
+                if (j + 1 < n && (dp_props_inline(s[j]) & DP_P_JOINER) && (dp_props_inline(s[j + 1]) & (DP_P_ALNUM | DP_P_MARK))) {
                     j += 2;
                     continue;
                 }
@@ -60,9 +60,9 @@ static size_t words_v1(const uint32_t *s, size_t n, size_t i, size_t *start) {
 
 /* spaces-v1: \S+ */
 static size_t spaces_v1(const uint32_t *s, size_t n, size_t i, size_t *start) {
-    while (i < n && (dp_props(s[i]) & DP_P_SPACE)) i++;
+    while (i < n && (dp_props_inline(s[i]) & DP_P_SPACE)) i++;
     size_t j = i;
-    while (j < n && !(dp_props(s[j]) & DP_P_SPACE)) j++;
+    while (j < n && !(dp_props_inline(s[j]) & DP_P_SPACE)) j++;
     *start = i;
     return j - i;
 }
@@ -70,10 +70,10 @@ static size_t spaces_v1(const uint32_t *s, size_t n, size_t i, size_t *start) {
 /* wordpunct-v1: \w+ | [^\w\s] */
 static size_t wordpunct_v1(const uint32_t *s, size_t n, size_t i, size_t *start) {
     for (; i < n; i++) {
-        uint16_t p = dp_props(s[i]);
+        uint16_t p = dp_props_inline(s[i]);
         if (p & DP_P_WORD) {
             size_t j = i + 1;
-            while (j < n && (dp_props(s[j]) & DP_P_WORD)) j++;
+            while (j < n && (dp_props_inline(s[j]) & DP_P_WORD)) j++;
             *start = i;
             return j - i;
         }
@@ -91,10 +91,10 @@ int dp_tokenize_cps(const dp_tok_spec *spec, const uint32_t *cps, size_t n, dp_t
     /* Unicode pinned to 14.0.0 (runtime/tokenize.py): a code point unassigned there is a space before
      * normalisation, so hosts with newer tables tokenize every text alike. ASCII is always assigned. */
     size_t k = 0;
-    while (k < n && (cps[k] < 0x80 || !(dp_props(cps[k]) & DP_P_UNASSIGNED))) k++;
+    while (k < n && (cps[k] < 0x80 || !(dp_props_inline(cps[k]) & DP_P_UNASSIGNED))) k++;
     if (k < n) {
         if (dp_u32_reserve(&w->pin, n)) return -1;
-        for (size_t j = 0; j < n; j++) w->pin.v[j] = cps[j] >= 0x80 && (dp_props(cps[j]) & DP_P_UNASSIGNED) ? 0x20 : cps[j];
+        for (size_t j = 0; j < n; j++) w->pin.v[j] = cps[j] >= 0x80 && (dp_props_inline(cps[j]) & DP_P_UNASSIGNED) ? 0x20 : cps[j];
         w->pin.n = n;
         cps = w->pin.v;
     }

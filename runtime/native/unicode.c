@@ -16,7 +16,6 @@ typedef struct {
 
 #include "unicode_tables.h"
 
-#define BLOCK_MASK ((1u << DP_BLOCK_SHIFT) - 1u)
 #define CP_MASK 0x1FFFFFu
 #define HANGUL_S 0xAC00u
 #define HANGUL_L 0x1100u
@@ -24,18 +23,25 @@ typedef struct {
 #define HANGUL_T 0x11A7u
 #define HANGUL_COUNT 11172u
 
+/* a three-stage table of unicode_tables.h: top (per 2^(B+M) code points) -> mid (per 2^B) -> block */
+#define STAGE3(name, NAME, c)                                                                                          \
+    name##_blocks[((uint32_t)name##_mid[((uint32_t)name##_top[(c) >> (NAME##_BLOCK_SHIFT + NAME##_MID_SHIFT)]           \
+                                         << NAME##_MID_SHIFT) +                                                        \
+                                        (((c) >> NAME##_BLOCK_SHIFT) & ((1u << NAME##_MID_SHIFT) - 1u))]               \
+                   << NAME##_BLOCK_SHIFT) +                                                                            \
+                  ((c) & ((1u << NAME##_BLOCK_SHIFT) - 1u))]
+
 const char *dp_unicode_version(void) { return DP_UNICODE_VERSION; }
 
 uint16_t dp_props(uint32_t c) {
+    if (c < 0x80) return dp_ascii_props[c];
     if (c > 0x10FFFF) return 0;
-    uint32_t at = c & BLOCK_MASK;
-    return (uint16_t)(dp_cls_blocks[((uint32_t)dp_cls_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] |
-                      dp_flags_blocks[((uint32_t)dp_flags_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + at] << 8);
+    return (uint16_t)(STAGE3(dp_cls, DP_CLS, c) | STAGE3(dp_flags, DP_FLAGS, c) << 8);
 }
 
 static uint8_t ccc(uint32_t c) {
     if (c > 0x10FFFF) return 0;
-    return dp_ccc_blocks[((uint32_t)dp_ccc_index[c >> DP_BLOCK_SHIFT] << DP_BLOCK_SHIFT) + (c & BLOCK_MASK)];
+    return STAGE3(dp_ccc, DP_CCC, c);
 }
 
 int dp_u32_reserve(dp_u32buf *b, size_t need) {
@@ -209,6 +215,7 @@ static uint32_t compose_pair(uint32_t a, uint32_t b) {
         return HANGUL_S + ((a - HANGUL_L) * 21 + (b - HANGUL_V)) * 28;
     if (a >= HANGUL_S && a < HANGUL_S + HANGUL_COUNT && (a - HANGUL_S) % 28 == 0 && b > HANGUL_T && b < HANGUL_T + 28)
         return a + (b - HANGUL_T);
+    if (b < 0x300) return 0; /* no composition has a second character below U+0300 (gen_tables.py pairs) */
     size_t lo = 0, hi = DP_COMPOSE_COUNT;
     while (lo < hi) {
         size_t mid = lo + (hi - lo) / 2;
@@ -308,8 +315,9 @@ static int change_case(const uint32_t *in, size_t n, int kase, dp_u32buf *out) {
     uint16_t bit = kase == DP_CASE_LOWER ? DP_P_LOWER : DP_P_FOLD;
     for (size_t i = 0; i < n; i++) {
         uint32_t c = in[i];
-        if (c < 0x80) {
-            if (dp_u32_push(out, c >= 'A' && c <= 'Z' ? c + 32 : c)) return -1;
+        if (c < 0x80) { /* room for n reserved above; only non-ASCII mappings grow the text */
+            if (out->n == out->cap && dp_u32_reserve(out, out->n + 1)) return -1;
+            out->v[out->n++] = c >= 'A' && c <= 'Z' ? c + 32 : c;
             continue;
         }
         if (!(dp_props(c) & bit)) {
@@ -342,9 +350,26 @@ int dp_normalize(const uint32_t *in, size_t n, int form, int kase, dp_u32buf *ou
     const uint32_t *src = in;
     size_t len = n;
     if (form != DP_NORM_NONE && !all_ascii(in, n)) { /* ASCII is in every normal form already */
+        /* Piece by piece: an ASCII character has combining class 0, has no other normal form and never composes
+         * with what precedes it (every second character of a composition is U+0300 or above), so the text may be
+         * cut before each one. ASCII runs are copied; each non-ASCII run is normalised with the ASCII character
+         * before it (which may compose with it). `out` holds the piece meanwhile. */
         int compat = form == DP_NORM_NFKC || form == DP_NORM_NFKD;
-        if (decompose(in, n, compat, tmp)) return -1;
-        if (form == DP_NORM_NFC || form == DP_NORM_NFKC) compose(tmp);
+        tmp->n = 0;
+        if (dp_u32_reserve(tmp, n)) return -1;
+        size_t i = 0;
+        while (i < n) {
+            size_t j = i;
+            while (j < n && in[j] < 0x80 && (j + 1 == n || in[j + 1] < 0x80)) j++;
+            if (j > i && push_seq(tmp, in + i, j - i)) return -1;
+            if (j == n) break;
+            i = j++; /* the piece: in[i] (ASCII or not) and the non-ASCII characters after it */
+            while (j < n && in[j] >= 0x80) j++;
+            if (decompose(in + i, j - i, compat, out)) return -1;
+            if (form == DP_NORM_NFC || form == DP_NORM_NFKC) compose(out);
+            if (push_seq(tmp, out->v, out->n)) return -1;
+            i = j;
+        }
         src = tmp->v;
         len = tmp->n;
     }
