@@ -133,3 +133,34 @@ def test_render_results_names_machine_targets_and_misses():
     assert "### Missed targets" in text and "**GloVe bundle agreement**" in text
     assert "## 1. Demo sentiment" in text and "| bundle | 42.8 kB |" in text
     assert render_markdown(targets_table(targets)).count("MISSED") == sum(t.met is False for t in targets)
+
+
+def test_hostile_bounds_child_measures_a_refusal_and_the_memory_it_took(tmp_path):
+    # bench.hostile_bounds: one fresh child per attack; its figures must see a real allocation (a crafted bundle
+    # carrying a 16 MiB inline constant is read whole before the graph comparison refuses it)
+    import onnx
+
+    from bench import hostile_bounds as hb
+
+    corpus = hb._corpus_maker()
+    base = corpus.build_base_bundle(tmp_path)
+    heavy = tmp_path / "heavy.bundle"
+    heavy.write_bytes(corpus.with_graph(base, lambda m: m.graph.initializer.append(
+        onnx.numpy_helper.from_array(np.ones(4 << 20, np.float32), "ballast"))))
+    attack = hb.Attack("g", "heavy", "load", (str(heavy),), (str(heavy),))
+    result = hb.run_attack(attack, tmp_path / "run")
+    assert result["outcome"].startswith("refused (BundleError): {source}: graph is not the one danpack writes")
+    assert 16 << 20 <= result["extra"] <= 10 * heavy.stat().st_size and 0 <= result["cpu"] < 5
+    assert hb.within_rule(heavy.stat().st_size, result) == (True, True)
+    assert hb.within_rule(1000, {"extra": 33 << 20, "cpu": 0.1}) == (False, True)  # 32 MiB allowance
+    assert hb.within_rule(4 << 20, {"extra": 33 << 20, "cpu": 1.0}) == (True, True)  # 10 x 4 MiB
+    assert hb.within_rule(2048, {"extra": 0, "cpu": 2.5}) == (True, False)  # 1 s per KB: 2 s
+
+
+def test_hostile_vocab_probe_codes_budget():
+    from bench.hostile_vocab_probe import coded_texts, codes_budget
+
+    assert codes_budget(32) == 33 and codes_budget(32 * 512) == 5609  # empty code, 32 of weight 1, 496, 4960, 120
+    texts = coded_texts(600, 512)
+    membership = {row: tuple(b for b, t in enumerate(texts) if row in t) for row in range(600)}
+    assert len(set(membership.values())) == 600 and coded_texts(400_000, 512) is None

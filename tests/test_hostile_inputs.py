@@ -8,11 +8,13 @@ escape sequences (ESC [ 2 J clears a terminal, OSC 0 sets a window title, U+009B
 
 from __future__ import annotations
 
+import ctypes
 import json
 import os
 import signal
 import subprocess
 import sys
+import tracemalloc
 import zipfile
 from pathlib import Path
 
@@ -207,48 +209,155 @@ def _damage(raw: bytearray, data) -> bytearray:
     return raw
 
 
-FUZZ_PEAK_KIB = 256 * 1024  # peak RSS growth allowed over a whole fuzz run of files of a few KB
+def _add_deflated_zeros(path: Path, name: str, size: int) -> None:
+    """Append a deflated member of `size` zero bytes behind an .npy header (about 1,000 to 1 on disk)."""
+    with zipfile.ZipFile(path, "a", compression=zipfile.ZIP_DEFLATED) as archive:
+        with archive.open(f"{name}.npy", "w") as f:
+            np.lib.format.write_array_header_1_0(f, {"descr": "<f4", "fortran_order": False, "shape": (size // 4,)})
+            f.write(bytes(size))
 
 
+def _deflate_members(path: Path) -> None:
+    """Rewrite a zip archive (a torch.save file) with every member deflated: the same records, far fewer bytes
+    when they hold zeros."""
+    with zipfile.ZipFile(path) as src:
+        members = [(info.filename, src.read(info)) for info in src.infolist()]
+    with zipfile.ZipFile(path, "w") as dst:
+        for name, data in members:
+            dst.writestr(name, data, compress_type=zipfile.ZIP_DEFLATED)
+
+
+# Memory of one loader call, per example: the Python heap's peak (tracemalloc traces numpy's arrays too) and the
+# resident high-water growth (proc(5) VmHWM, reset through /proc/self/clear_refs; it also sees what C++ libraries
+# such as torch allocate outside Python's allocator). Each must stay within LOADER_FACTOR times the bytes the
+# loader is handed plus a fixed allowance. Measured over these fuzz runs: at most about 37 KB of heap and 57 KB of
+# resident growth beyond LOADER_FACTOR x the input (zip directory, JSON, arrays, allocator pages); the
+# allowances leave room for other allocators and Python versions, and stay far below the bombs drawn (1-16 MiB).
+LOADER_FACTOR = 4  # "no more than a few times the file's size" (issue 15)
+HEAP_ALLOWANCE = 128 << 10  # bytes of Python heap beyond LOADER_FACTOR x the input
+RESIDENT_ALLOWANCE = 2 << 20  # bytes of resident growth beyond LOADER_FACTOR x the input
+
+
+def _status_bytes(key: str) -> int:
+    for line in Path("/proc/self/status").read_text().splitlines():
+        if line.startswith(key + ":"):
+            return int(line.split()[1]) * 1024
+    raise AssertionError(f"{key} missing from /proc/self/status")
+
+
+def _run_expecting_refusal(call) -> None:
+    try:
+        call()
+    except DanpackError:
+        pass
+
+
+def _memory_of(call) -> tuple[int, int]:
+    """(Python heap peak, resident high-water growth) in bytes of `call()` (a DanpackError is expected), from two
+    runs: one untraced for the resident growth (tracemalloc's own tables would count), one under tracemalloc.
+    Freed memory the C allocator still holds is handed back first (glibc malloc_trim), or a call could reuse an
+    earlier example's pages without its resident size growing."""
+    ctypes.CDLL(None).malloc_trim(0)
+    Path("/proc/self/clear_refs").write_text("5")  # VmHWM := VmRSS (Linux 4.0+)
+    resident = _status_bytes("VmRSS")
+    _run_expecting_refusal(call)
+    resident = _status_bytes("VmHWM") - resident
+    tracing = tracemalloc.is_tracing()
+    if not tracing:
+        tracemalloc.start()
+    tracemalloc.reset_peak()
+    base = tracemalloc.get_traced_memory()[0]
+    try:
+        _run_expecting_refusal(call)
+    finally:
+        heap = tracemalloc.get_traced_memory()[1] - base
+        if not tracing:
+            tracemalloc.stop()
+    return heap, resident
+
+
+def _assert_within_bound(what: str, input_bytes: int, heap: int, resident: int) -> None:
+    assert heap <= LOADER_FACTOR * input_bytes + HEAP_ALLOWANCE, \
+        f"{what}: {heap:,} bytes of Python heap for {input_bytes:,} bytes of input"
+    assert resident <= LOADER_FACTOR * input_bytes + RESIDENT_ALLOWANCE, \
+        f"{what}: {resident:,} bytes of resident growth for {input_bytes:,} bytes of input"
+
+
+@pytest.fixture(scope="module")
+def warm_loaders(tmp_path_factory):
+    """Each loader once on a valid and once on a damaged file before the fuzz: imports and the code pages a library
+    faults in on its first success or error path (libtorch's exception path alone is about 2 MiB) are no
+    example's."""
+    torch = pytest.importorskip("torch")
+    from danpack.convert.from_torch import read_checkpoint, read_labels
+
+    root = tmp_path_factory.mktemp("warm")
+    torch.save({"emb.weight": torch.randn(12, 4)}, root / "a.pt")
+    (root / "labels.json").write_text('["a", "b"]', encoding="utf-8")
+    calls = [lambda: read_checkpoint(root / "a.pt"), lambda: read_labels(str(root / "labels.json"))]
+    for fmt in ("npz", "safetensors"):
+        folder = save_model(make_float_model(vocab_size=12, dim=4, hidden=(3,)), root / fmt, weights_format=fmt)
+        calls.append(lambda folder=folder: load_model(folder))
+    files = [root / "a.pt", root / "labels.json", root / "npz" / "weights.npz", root / "safetensors" / "weights.safetensors"]
+    for call in calls:
+        call()
+    for path in files:
+        path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
+    for call in calls:
+        _run_expecting_refusal(call)
+    (root / "b.pt").write_bytes(b"PK\x03\x04" + bytes(range(256)) * 8)
+    with pytest.raises(Exception):  # noqa: B017 (libtorch's own error path, which the check above spares it)
+        torch.load(root / "b.pt", weights_only=True)
+
+
+@pytest.mark.filterwarnings("ignore:Duplicate name:UserWarning")  # zipfile, on the bomb named like a tensor
 @settings(max_examples=80, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(which=st.sampled_from(["dan.json", "tokens.txt", "weights.npz", "weights.safetensors"]), data=st.data())
-def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, which, data):
-    # any bytes cut, flipped or spliced into one file of a model folder: a ModelError, never another exception,
-    # and never more memory than a small multiple of the files (the peak is checked over the whole run)
+def test_property_damaged_model_folder_is_a_model_error(tmp_path_factory, warm_loaders, which, data):
+    # any bytes cut, flipped or spliced into one file of a model folder, or a deflated bomb added to the npz:
+    # a ModelError, never another exception, and within a few times the folder's bytes in memory
     root = tmp_path_factory.mktemp("fuzz")
     fmt = "safetensors" if which.endswith("safetensors") else "npz"
     folder = save_model(make_float_model(vocab_size=12, dim=4, hidden=(3,)), root / "model", weights_format=fmt)
     path = folder / which
-    path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
-    before = _peak_rss_kib()
-    try:
-        load_model(folder)
-    except DanpackError:
-        pass
-    assert _peak_rss_kib() - before < FUZZ_PEAK_KIB
+    if which == "weights.npz" and data.draw(st.booleans()):
+        _add_deflated_zeros(path, data.draw(st.sampled_from(["ballast", "embedding", "layer.0.weight"])),
+                            data.draw(st.integers(1 << 20, 16 << 20)))
+    else:
+        path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
+    heap, resident = _memory_of(lambda: load_model(folder))
+    _assert_within_bound(which, sum(p.stat().st_size for p in folder.iterdir()), heap, resident)
 
 
 @pytest.mark.filterwarnings("ignore:Detected pickle protocol:UserWarning")  # torch on a damaged file's header
 @settings(max_examples=30, deadline=None, database=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(which=st.sampled_from(["pt", "vocab.json", "labels.json"]), data=st.data())
-def test_property_damaged_checkpoint_vocab_and_labels_are_checkpoint_errors(tmp_path_factory, which, data):
+def test_property_damaged_checkpoint_vocab_and_labels_are_checkpoint_errors(tmp_path_factory, warm_loaders, which,
+                                                                             data):
     torch = pytest.importorskip("torch")
-    from danpack.convert.from_torch import CheckpointError, read_checkpoint, read_labels, read_vocab_source
+    from danpack.convert.from_torch import read_checkpoint, read_labels, read_vocab_source
 
     root = tmp_path_factory.mktemp("fuzz")
     path = root / ("a.pt" if which == "pt" else which)
     if which == "pt":
-        torch.save({"emb.weight": torch.randn(12, 4), "out.weight": torch.randn(3, 4), "out.bias": torch.randn(3)}, path)
+        kind = data.draw(st.sampled_from(["damaged", "deflated", "view"]))
+        side = 4 if kind == "damaged" else data.draw(st.sampled_from([1024, 2048]))  # zeros: 4 or 16 MiB as float32
+        seeded = torch.Generator().manual_seed(side)  # the same bytes each time hypothesis replays an example
+        emb = torch.zeros(1).expand(side, side) if kind == "view" else torch.zeros(side, side)  # view: stride 0
+        torch.save({"emb.weight": emb, "out.weight": torch.randn(3, side, generator=seeded),
+                    "out.bias": torch.randn(3, generator=seeded)}, path)
+        if kind == "deflated":  # every record deflated: a few KB on disk
+            _deflate_members(path)
+        if kind == "damaged":
+            if data.draw(st.booleans()):
+                _deflate_members(path)
+            path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
     else:
         path.write_text(json.dumps([f"w{i}" for i in range(12)]), encoding="utf-8")
-    path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
-    before = _peak_rss_kib()
-    try:
-        {"pt": read_checkpoint, "vocab.json": read_vocab_source, "labels.json": read_labels}[which](
-            path if which != "labels.json" else str(path))
-    except (CheckpointError, DanpackError):
-        pass
-    assert _peak_rss_kib() - before < FUZZ_PEAK_KIB
+        path.write_bytes(bytes(_damage(bytearray(path.read_bytes()), data)))
+    load = {"pt": read_checkpoint, "vocab.json": read_vocab_source, "labels.json": read_labels}[which]
+    heap, resident = _memory_of(lambda: load(path if which != "labels.json" else str(path)))
+    _assert_within_bound(which, path.stat().st_size, heap, resident)  # a CheckpointError is a DanpackError
 
 
 # --- no litter ----------------------------------------------------------------------------------------------------
@@ -298,6 +407,23 @@ def test_stride_zero_view_is_refused_before_it_is_materialised(tmp_path):
                                               r"claims 40,000,000,000 bytes over a storage of 4"):
         read_checkpoint(path)
     assert _peak_rss_kib() - before < 64 * 1024
+
+
+def test_deflated_checkpoint_records_are_sized_before_torch_inflates_them(tmp_path):
+    # found while bounding the loaders' memory: torch.load inflates a deflated zip record into memory before any
+    # tensor can be checked (here 64 MiB of zeros in a ~100 KB file)
+    torch = pytest.importorskip("torch")
+    from danpack.convert.from_torch import CheckpointError, read_checkpoint
+
+    path = tmp_path / "a.pt"
+    torch.save({"emb.weight": torch.zeros(4096, 4096), "out.weight": torch.zeros(3, 4096)}, path)
+    _deflate_members(path)
+    assert path.stat().st_size < 200_000
+    heap, resident = _memory_of(lambda: read_checkpoint(path))
+    with pytest.raises(CheckpointError, match=r"a.pt: its zip records inflate to 67,\d{3},\d{3} bytes, more than the "
+                                              r"file's [\d,]+ \(torch.save stores records uncompressed"):
+        read_checkpoint(path)
+    _assert_within_bound("pt", path.stat().st_size, heap, resident)
 
 
 def test_layout_search_is_bounded_and_points_at_layer_keys(tmp_path):

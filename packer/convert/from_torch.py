@@ -13,6 +13,7 @@ import json
 import os
 import re
 import struct
+import zipfile
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -197,8 +198,29 @@ def _read_safetensors(path: Path) -> Checkpoint:
     return Checkpoint(path, "safetensors", tensors, dtypes, shapes, key_order_kept=False)
 
 
+def _check_zip_records(path: Path) -> None:
+    """Size a torch.save archive's records before torch reads them: torch inflates a deflated record into memory
+    before any tensor can be checked (a 40 KB file held 16 MiB of zeros), while torch.save stores its records
+    uncompressed, so together they never declare more bytes than the file holds (zip central directory)."""
+    with path.open("rb") as f:
+        if f.read(4) != b"PK\x03\x04":  # torch reads any other file as its older, uncompressed format
+            return
+    try:
+        with zipfile.ZipFile(path) as archive:
+            declared = sum(info.file_size for info in archive.infolist())
+    except Exception as e:  # zipfile raises BadZipFile, NotImplementedError, struct.error ... on damaged headers
+        raise CheckpointError(f"{path}: cannot be read as a torch.save checkpoint (zip: {type(e).__name__}: {e}); "
+                              "the file may be truncated: save model.state_dict() again") from e
+    size = path.stat().st_size
+    if declared > size:
+        raise CheckpointError(f"{path}: its zip records inflate to {declared:,} bytes, more than the file's {size:,} "
+                              "(torch.save stores records uncompressed; a compressed one is sized before it is "
+                              "inflated and refused): save model.state_dict() again with torch.save")
+
+
 def _read_torch(path: Path, state_key: str | None) -> Checkpoint:
     torch = _import_torch(f"{path}: reading a torch.save checkpoint")
+    _check_zip_records(path)
     try:
         obj = torch.load(str(path), map_location="cpu", weights_only=True)
     except Exception as e:  # the weights-only unpickler's refusal, or RuntimeError/EOFError/KeyError on damage
