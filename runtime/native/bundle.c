@@ -332,12 +332,10 @@ static int too_deep(const dp_mp *v, int depth) {
     return 0;
 }
 
-/* A label holds a character runtime/safe_text.py calls unsafe: C0 and C1 controls, the line and paragraph
- * separators, and the format characters a terminal or a bidi renderer acts on (soft hyphen, Arabic letter mark,
- * zero-width and directional marks, bidi embeddings, overrides and isolates, invisible operators, the byte-order
- * mark). A subset of Python's rule (every Cc, Cf, Zl, Zp, Co, Cs and Cn): the Python reader is the reference. */
-/* The first character of a (valid UTF-8) label that runtime/safe_text.py calls unsafe: its code point and general
- * category, or 0 when there is none. Assigned ones from label_ranges.h, unassigned (Cn) from the Unicode tables. */
+/* The first character of a (valid UTF-8) label that runtime/safe_text.py calls unsafe (the UNSAFE property of
+ * unicode_tables.h, generated from safe_text's own rule, as the record writer escapes): its code point and general
+ * category for the message, or 0 when there is none. Categories: Cn from the UNASSIGNED property, the rest from
+ * label_ranges.h. */
 static int first_unsafe(const uint8_t *p, size_t len, uint32_t *cp, const char **category) {
     for (size_t i = 0; i < len;) {
         uint32_t c = p[i];
@@ -346,19 +344,21 @@ static int first_unsafe(const uint8_t *p, size_t len, uint32_t *cp, const char *
         for (size_t k = 1; k < n; k++) c = (c << 6) | (p[i + k] & 0x3F);
         c &= n == 1 ? 0x7F : n == 2 ? 0x7FF : n == 3 ? 0xFFFF : 0x1FFFFF;
         i += n;
-        size_t lo = 0, hi = sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]);
-        while (lo < hi) { /* the first range ending at or after c */
-            size_t mid = lo + (hi - lo) / 2;
-            if (DP_UNSAFE_RANGES[mid].last < c) lo = mid + 1;
-            else hi = mid;
+        if (!(dp_props(c) & DP_P_UNSAFE)) continue;
+        const char *cat = "Cn";
+        if (!(dp_props(c) & DP_P_UNASSIGNED)) {
+            size_t lo = 0, hi = sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]);
+            while (lo < hi) { /* the first range ending at or after c */
+                size_t mid = lo + (hi - lo) / 2;
+                if (DP_UNSAFE_RANGES[mid].last < c) lo = mid + 1;
+                else hi = mid;
+            }
+            cat = lo < sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]) && DP_UNSAFE_RANGES[lo].first <= c
+                      ? DP_UNSAFE_RANGES[lo].category : "C?";
         }
-        const char *cat = lo < sizeof(DP_UNSAFE_RANGES) / sizeof(DP_UNSAFE_RANGES[0]) && DP_UNSAFE_RANGES[lo].first <= c
-                        ? DP_UNSAFE_RANGES[lo].category : c >= 0x80 && (dp_props(c) & DP_P_UNASSIGNED) ? "Cn" : NULL;
-        if (cat) {
-            *cp = c;
-            *category = cat;
-            return 1;
-        }
+        *cp = c;
+        *category = cat;
+        return 1;
     }
     return 0;
 }

@@ -1,11 +1,11 @@
-"""Generate runtime/native/label_ranges.h: the assigned code points a label must not hold, as ranges.
+"""Generate runtime/native/label_ranges.h: the general category of each assigned code point a label must not hold.
 
 A label is refused when it holds a character runtime/safe_text.py calls unsafe (not printable and not a space
-separator): control (Cc), format (Cf), line and paragraph separators (Zl, Zp), surrogates (Cs), private use (Co)
-and unassigned code points (Cn). The native reader takes Cn from its Unicode tables (unicode_tables.h's UNASSIGNED
-property, the same Unicode 14.0.0 ranges as runtime/unicode_pinned.py) and the other categories from this file's
-29 ranges (about 350 bytes). The set is read off safe_text itself, so the two readers apply one rule; this script
-checks that, with the Cn ranges of unicode_pinned.py, the ranges cover exactly safe_text's unsafe characters.
+separator). The native reader decides that with the UNSAFE property of unicode_tables.h (generated from safe_text's
+own rule, the same bit the record writer escapes by) and only names the category from here: Cn from the UNASSIGNED
+property, control (Cc), format (Cf), line and paragraph separators (Zl, Zp), surrogates (Cs) and private use (Co)
+from this file's 29 ranges (about 350 bytes). This script checks that, with the Cn ranges of unicode_pinned.py,
+the ranges cover exactly safe_text's unsafe characters, so every unsafe character gets its category.
 
 Regenerate (checked in; CI does not run it):
     python runtime/native/gen_label_ranges.py > runtime/native/label_ranges.h
