@@ -541,11 +541,12 @@ static void sb_f64(sbuf *b, double v) {
 
 typedef struct {
     const jdoc *doc;
-    size_t key, value, order;
-} member;
+    size_t key, order;
+} keyed;
 
-static int cmp_member(const void *x, const void *y) {
-    const member *a = x, *c = y;
+/* by key (code points), then by position */
+static int cmp_keyed(const void *x, const void *y) {
+    const keyed *a = x, *c = y;
     const jnode *ka = &a->doc->nodes[a->key], *kc = &c->doc->nodes[c->key];
     const uint32_t *sa = a->doc->cps.v + ka->off, *sc = c->doc->cps.v + kc->off;
     size_t n = ka->len < kc->len ? ka->len : kc->len;
@@ -553,6 +554,45 @@ static int cmp_member(const void *x, const void *y) {
         if (sa[i] != sc[i]) return sa[i] < sc[i] ? -1 : 1;
     if (ka->len != kc->len) return ka->len < kc->len ? -1 : 1;
     return (a->order > c->order) - (a->order < c->order);
+}
+
+static int same_key(const jdoc *d, size_t a, size_t b) {
+    const jnode *x = &d->nodes[a], *y = &d->nodes[b];
+    return x->len == y->len && memcmp(d->cps.v + x->off, d->cps.v + y->off, x->len * sizeof(uint32_t)) == 0;
+}
+
+int dp_json_members(const jdoc *doc, size_t object, jmember **out, size_t *n) {
+    const jnode *v = &doc->nodes[object];
+    size_t m = v->count / 2, i = 0;
+    jmember *all = malloc((m ? m : 1) * sizeof(jmember));
+    keyed *sorted = malloc((m ? m : 1) * sizeof(keyed));
+    size_t *last = malloc((m ? m : 1) * sizeof(size_t)); /* last[position of a key's first member]: its last */
+    if (!all || !sorted || !last) {
+        free(all);
+        free(sorted);
+        free(last);
+        return -1;
+    }
+    for (size_t k = v->first; k; k = doc->nodes[doc->nodes[k - 1].next - 1].next, i++) {
+        all[i] = (jmember){k - 1, doc->nodes[k - 1].next - 1};
+        sorted[i] = (keyed){doc, k - 1, i};
+        last[i] = SIZE_MAX;
+    }
+    qsort(sorted, m, sizeof(keyed), cmp_keyed);
+    for (i = 0; i < m;) {
+        size_t j = i;
+        while (j + 1 < m && same_key(doc, sorted[j + 1].key, sorted[i].key)) j++;
+        last[sorted[i].order] = sorted[j].order;
+        i = j + 1;
+    }
+    size_t w = 0;
+    for (i = 0; i < m; i++)
+        if (last[i] != SIZE_MAX) all[w++] = (jmember){all[i].key, all[last[i]].value};
+    free(sorted);
+    free(last);
+    *out = all;
+    *n = w;
+    return 0;
 }
 
 void sb_json_value(sbuf *b, const jdoc *doc, size_t node) {
@@ -586,53 +626,20 @@ void sb_json_value(sbuf *b, const jdoc *doc, size_t node) {
     default: break;
     }
     /* object: each key once, where it first appeared, with the value it last had (a Python dict) */
-    size_t n = v->count / 2;
-    member *m = malloc((n ? n : 1) * sizeof(member));
-    size_t *pick = malloc((n ? n : 1) * sizeof(size_t));
-    if (!m || !pick) {
-        free(m);
-        free(pick);
+    jmember *m;
+    size_t n;
+    if (dp_json_members(doc, node, &m, &n)) {
         b->failed = 1;
         return;
     }
-    size_t i = 0;
-    for (size_t k = v->first; k; k = doc->nodes[doc->nodes[k - 1].next - 1].next, i++) {
-        m[i].doc = doc;
-        m[i].key = k - 1;
-        m[i].value = doc->nodes[k - 1].next - 1;
-        m[i].order = i;
-    }
-    qsort(m, n, sizeof(member), cmp_member);
-    /* pick[first order] = value of the group's last member; others marked skipped */
-    for (i = 0; i < n; i++) pick[i] = SIZE_MAX;
-    for (i = 0; i < n;) {
-        size_t j = i;
-        while (j + 1 < n && cmp_member(&(member){doc, m[j + 1].key, 0, 0}, &(member){doc, m[i].key, 0, 0}) == 0) j++;
-        pick[m[i].order] = j; /* index into m of the last member */
-        i = j + 1;
-    }
-    /* write in first-appearance order: walk orders, looking up the sorted entry */
-    size_t *key_at = malloc((n ? n : 1) * sizeof(size_t));
-    if (!key_at) {
-        free(m);
-        free(pick);
-        b->failed = 1;
-        return;
-    }
-    for (i = 0; i < n; i++) key_at[m[i].order] = m[i].key;
     sb_put(b, "{", 1);
-    int first = 1;
-    for (i = 0; i < n; i++) {
-        if (pick[i] == SIZE_MAX) continue;
-        if (!first) sb_put(b, ",", 1);
-        first = 0;
-        const jnode *key = &doc->nodes[key_at[i]];
+    for (size_t i = 0; i < n; i++) {
+        if (i) sb_put(b, ",", 1);
+        const jnode *key = &doc->nodes[m[i].key];
         sb_json_cps(b, doc->cps.v + key->off, key->len);
         sb_put(b, ":", 1);
-        sb_json_value(b, doc, m[pick[i]].value);
+        sb_json_value(b, doc, m[i].value);
     }
     sb_put(b, "}", 1);
-    free(key_at);
     free(m);
-    free(pick);
 }

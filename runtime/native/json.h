@@ -41,6 +41,13 @@ void sb_json_cps(sbuf *b, const uint32_t *s, size_t n);
 void sb_json_utf8(sbuf *b, const char *s, size_t n);
 /* one character runtime/safe_text.py escapes (DP_P_UNSAFE, or a control character) as \uXXXX (astral: a pair) */
 void sb_json_unsafe(sbuf *b, uint32_t c);
+/* an object member: key and value node indices */
+typedef struct {
+    size_t key, value;
+} jmember;
+/* The object's members as the dict Python builds from them: each distinct key once, where it first appeared, with
+ * the value it last had; *out malloc'd (the caller frees it), *n members. -1 when out of memory. */
+int dp_json_members(const jdoc *doc, size_t object, jmember **out, size_t *n);
 /* a value as json.dumps writes it (objects with repeated keys as the dict Python builds) */
 void sb_json_value(sbuf *b, const jdoc *doc, size_t node);
 /* float32 as numpy's str() writes it (shortest digits that read back as the same float32) */

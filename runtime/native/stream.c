@@ -82,83 +82,17 @@ static void tsv_utf8(sbuf *b, const char *s, size_t n) {
     free(tmp.v);
 }
 
-/* the object's members as a Python dict after pop(text_field): for each distinct key, first position, last value */
-typedef struct {
-    size_t key, value; /* node indices */
-} kv;
-
-static int same_key(const jdoc *d, size_t a, size_t b) {
-    const jnode *x = &d->nodes[a], *y = &d->nodes[b];
-    return x->len == y->len && memcmp(d->cps.v + x->off, d->cps.v + y->off, x->len * sizeof(uint32_t)) == 0;
-}
-
 static int key_is(const jdoc *d, size_t k, const char *z) {
     const jnode *x = &d->nodes[k];
     return dp_cps_eq_utf8(d->cps.v + x->off, x->len, z, strlen(z));
 }
 
-typedef struct {
-    const jdoc *d;
-    size_t key, order;
-} ent;
-
-static int cmp_ent(const void *x, const void *y) {
-    const ent *a = x, *b = y;
-    const jnode *ka = &a->d->nodes[a->key], *kb = &b->d->nodes[b->key];
-    const uint32_t *sa = a->d->cps.v + ka->off, *sb = b->d->cps.v + kb->off;
-    size_t n = ka->len < kb->len ? ka->len : kb->len;
-    for (size_t i = 0; i < n; i++)
-        if (sa[i] != sb[i]) return sa[i] < sb[i] ? -1 : 1;
-    if (ka->len != kb->len) return ka->len < kb->len ? -1 : 1;
-    return (a->order > b->order) - (a->order < b->order);
-}
-
-/* Members of the root object (deduplicated, text field left out) into *out (malloc'd); count in *n. Quadratic
- * only in the number of repeated keys' checks against reserved names; dedup by sorting keys. */
-static int members(const jdoc *d, const char *skip, kv **out, size_t *n) {
-    const jnode *root = &d->nodes[0];
-    size_t m = root->count / 2, k = 0;
-    kv *all = malloc((m ? m : 1) * sizeof(kv));
-    if (!all) return -1;
-    for (size_t i = root->first; i; i = d->nodes[d->nodes[i - 1].next - 1].next) {
-        all[k].key = i - 1;
-        all[k].value = d->nodes[i - 1].next - 1;
-        k++;
-    }
-    /* dedup: keep first position, last value (sorting indices by key, then order) */
-    size_t *idx = malloc((m ? m : 1) * sizeof(size_t));
-    if (!idx) {
-        free(all);
-        return -1;
-    }
-    for (size_t i = 0; i < m; i++) idx[i] = i;
-    ent *e = malloc((m ? m : 1) * sizeof(ent));
-    if (!e) {
-        free(all);
-        free(idx);
-        return -1;
-    }
-    for (size_t i = 0; i < m; i++) e[i] = (ent){d, all[i].key, i};
-    qsort(e, m, sizeof(ent), cmp_ent);
-    size_t *last = idx; /* reuse: last[order of first] = order of last, or SIZE_MAX */
-    for (size_t i = 0; i < m; i++) last[i] = SIZE_MAX;
-    for (size_t i = 0; i < m;) {
-        size_t j = i;
-        while (j + 1 < m && same_key(d, e[j + 1].key, e[i].key)) j++;
-        last[e[i].order] = e[j].order;
-        i = j + 1;
-    }
+/* The root object's members as a Python dict after pop(skip) (dp_json_members, the skipped key left out). */
+static int members(const jdoc *d, const char *skip, jmember **out, size_t *n) {
+    if (dp_json_members(d, 0, out, n)) return -1;
     size_t w = 0;
-    for (size_t i = 0; i < m; i++) {
-        if (last[i] == SIZE_MAX) continue;
-        if (skip && key_is(d, all[i].key, skip)) continue;
-        all[w].key = all[i].key;
-        all[w].value = all[last[i]].value;
-        w++;
-    }
-    free(e);
-    free(idx);
-    *out = all;
+    for (size_t i = 0; i < *n; i++)
+        if (!skip || !key_is(d, (*out)[i].key, skip)) (*out)[w++] = (*out)[i];
     *n = w;
     return 0;
 }
@@ -171,7 +105,7 @@ static int reserved(const uint32_t *s, size_t n) {
     return 0;
 }
 
-static int in_extra(const jdoc *d, const kv *ex, size_t n, const uint32_t *s, size_t len) {
+static int in_extra(const jdoc *d, const jmember *ex, size_t n, const uint32_t *s, size_t len) {
     for (size_t i = 0; i < n; i++) {
         const jnode *k = &d->nodes[ex[i].key];
         if (k->len == len && memcmp(d->cps.v + k->off, s, len * sizeof(uint32_t)) == 0) return 1;
@@ -180,7 +114,7 @@ static int in_extra(const jdoc *d, const kv *ex, size_t n, const uint32_t *s, si
 }
 
 /* `,"key":value` for each passthrough field, reserved names renamed input_<name> (runtime/stream_records.py) */
-static void put_extras(sbuf *b, const jdoc *d, const kv *ex, size_t n) {
+static void put_extras(sbuf *b, const jdoc *d, const jmember *ex, size_t n) {
     dp_u32buf name = {0};
     for (size_t i = 0; i < n; i++) {
         const jnode *k = &d->nodes[ex[i].key];
@@ -275,7 +209,7 @@ static int nests_deeper(const uint32_t *s, size_t n) {
 
 /* ---- record parts ---- */
 
-static void put_head(dp_stream *st, sbuf *b, size_t line, const kv *ex, size_t nex, int has_obj) {
+static void put_head(dp_stream *st, sbuf *b, size_t line, const jmember *ex, size_t nex, int has_obj) {
     if (!st->o.tsv) {
         sb_put(b, "{\"line\":", 8);
         put_uint(b, line);
@@ -461,7 +395,7 @@ void dp_stream_header(const dp_stream *st, sbuf *out) {
 }
 
 /* an error (or skipped) record, whole */
-static void done_error(dp_stream *st, size_t line, const kv *ex, size_t nex, int has_obj, const char *msg,
+static void done_error(dp_stream *st, size_t line, const jmember *ex, size_t nex, int has_obj, const char *msg,
                        int skipped) {
     put_head(st, &st->heads, line, ex, nex, has_obj);
     put_error_tail(st, &st->heads, msg, skipped);
@@ -509,7 +443,7 @@ static int parse_one(dp_stream *st, const uint8_t *raw, size_t len, int overlong
     if (dp_utf8_decode(raw, len, &st->cps)) return -1;
     const uint32_t *text = st->cps.v;
     size_t tlen = st->cps.n;
-    kv *ex = NULL;
+    jmember *ex = NULL;
     size_t nex = 0;
     int has_obj = 0, rc = 0;
     if (st->o.jsonl) {
