@@ -254,6 +254,45 @@ class Envelope:
     skipped: bool  # True: the float model may instead have left the token out (it skips tokens it does not know)
     lo: np.ndarray  # (W,) float64: per-coordinate minimum over those rows, less their float32 rounding reserve
     hi: np.ndarray  # (W,) float64: per-coordinate maximum, plus the reserve
+    buckets: np.ndarray | None = None  # (K, 2, W) float64: lo and hi of the rows whose token hashes to bucket j
+    # (`bucket_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
+    absent: frozenset = frozenset()  # FNV-1a hashes of tokens the float model never knew (no float token has one)
+
+    @property
+    def hash_buckets(self) -> int:
+        """K, the number of hash buckets (0: the envelope is not split)."""
+        return 0 if self.buckets is None else int(self.buckets.shape[0])
+
+    @property
+    def by_token(self) -> bool:
+        """True when the token's text narrows what it did (hash buckets or the list of absent tokens)."""
+        return self.buckets is not None or bool(self.absent)
+
+    @property
+    def slots(self) -> np.ndarray:
+        """(K + 1, 2, W) float64: the bucket envelopes (or the one envelope as K = 1), then an empty slot for a
+        token that was no float row."""
+        if "_slots" not in self.__dict__:
+            own = self.buckets if self.buckets is not None else np.stack([self.lo, self.hi])[None]  # (K, 2, W)
+            empty = np.stack([np.full_like(self.lo, np.inf), np.full_like(self.hi, -np.inf)])[None]  # (1, 2, W)
+            object.__setattr__(self, "_slots", np.concatenate([own, empty]))
+        return self.__dict__["_slots"]
+
+    def slot_of(self, token: str) -> int:
+        """The slot of a token the bundle does not know: K for a listed absent token, else its bucket."""
+        h = hash_token(token)
+        if h in self.absent:
+            return self.slots.shape[0] - 1
+        return h % self.buckets.shape[0] if self.buckets is not None else 0
+
+
+def hash_token(token: str) -> int:
+    """FNV-1a, 32 bits, of the token's UTF-8 bytes (offset basis 2166136261, prime 16777619): a hash both the
+    packer and any device compute the same way."""
+    h = 2166136261
+    for byte in token.encode("utf-8"):
+        h = ((h ^ byte) * 16777619) & 0xFFFFFFFF
+    return h
 
 
 def read_envelope(bundle: Bundle) -> Envelope | None:
@@ -262,8 +301,32 @@ def read_envelope(bundle: Bundle) -> Envelope | None:
     field = bundle.manifest.get("unknown")
     if field is None:
         return None
-    return Envelope(int(field["rows"]), bool(field["skipped"]), np.asarray(field["lo"], np.float64),
-                    np.asarray(field["hi"], np.float64))
+    lo, hi = np.asarray(field["lo"], np.float64), np.asarray(field["hi"], np.float64)  # (W,)
+    absent = np.frombuffer(field.get("absent", b""), dtype="<u4")  # (N,)
+    return Envelope(int(field["rows"]), bool(field["skipped"]), lo, hi, read_buckets(field, lo, hi),
+                    frozenset(absent.tolist()))
+
+
+def read_buckets(field: dict, lo: np.ndarray, hi: np.ndarray) -> np.ndarray | None:
+    """(K, 2, W) float64 bucket envelopes from the field's `buckets` bytes ((K, 2, W) uint8: steps of (hi − lo)/254
+    inward from the one envelope; 255 throughout a bucket: no row), or None when the field has none. Decoding is
+    this exact float64 expression; the packer rounds each step count so that it gives a bound no tighter than the
+    rows' (packer/pack/envelope.py `encode_buckets`)."""
+    raw = field.get("buckets")
+    if raw is None:
+        return None
+    steps = np.frombuffer(raw, dtype=np.uint8).reshape(-1, 2, lo.shape[0])  # (K, 2, W)
+    return decode_buckets(steps, lo, hi)
+
+
+def decode_buckets(steps: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """(K, 2, W) uint8 steps and (W,) lo, hi -> (K, 2, W) float64 bounds (the one definition of the decoding)."""
+    unit = (hi - lo) / 254.0  # (W,)
+    s = steps.astype(np.float64)  # (K, 2, W)
+    out = np.stack([lo + s[:, 0] * unit, hi - s[:, 1] * unit], axis=1)  # (K, 2, W)
+    empty = (steps == 255).all(axis=(1, 2))  # (K,)
+    out[empty, 0], out[empty, 1] = np.inf, -np.inf
+    return out
 
 
 @dataclass(frozen=True)
@@ -359,21 +422,32 @@ def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
                     drift.certifiable, tuple(layers), contrast, envelope)
 
 
-def encode_unknown(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) int64: tokens without a row of their own).
+def encode_unknown(encoder: Encoder, texts: Sequence[str],
+                   envelope: Envelope | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, unknown): the tokens without a row of
+    their own, as (B,) int64 counts, or, when the envelope tells tokens apart (`Envelope.by_token`), as (B, U)
+    int64 slots of those tokens (`Envelope.slot_of`), padded with -1.
 
     Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
-    oov, tokenize, map_tokens = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens
-    id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
+    oov, tokenize, map_tokens, index = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens, encoder.index
+    by_token = envelope is not None and envelope.by_token
+    id_lists, unknown, slots = [], np.zeros(len(texts), dtype=np.int64), []
     for i, text in enumerate(texts):
         tokens = tokenize(text)
         rows = map_tokens(tokens)
         # skip: an unknown token is left out of `rows`; unk / rest: it sits on the out-of-vocabulary row
         unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
+        if by_token and unknown[i]:
+            slots.append([envelope.slot_of(t) for t in tokens if index.get(t, oov) == oov])
         id_lists.append(rows)
     ids, counts = encode_batch(id_lists)
-    return ids, counts, unknown
+    if not by_token:
+        return ids, counts, unknown
+    table = np.full((len(texts), max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)
+    for i, s in zip(np.flatnonzero(unknown), slots):
+        table[i, : len(s)] = s
+    return ids, counts, table
 
 
 def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -383,8 +457,11 @@ def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
              unknown: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(B, T) ids, (B,) counts, (B,) unknown-token counts -> ((B, W) lo, (B, W) hi, (B,) bool covered):
-    a box holding the float model's computed mean (table space), for every text marked covered."""
+    """(B, T) ids, (B,) counts, unknown -> ((B, W) lo, (B, W) hi, (B,) bool covered): a box holding the float
+    model's computed mean (table space), for every text marked covered. `unknown`: (B,) counts of the tokens
+    without a row of their own (the one envelope bounds each), or (B, U) their buckets (`encode_unknown`)."""
+    token_slots = unknown if unknown.ndim == 2 else None  # (B, U) slots, or counts only
+    unknown = (unknown >= 0).sum(axis=1) if token_slots is not None else unknown  # (B,)
     mask = (np.arange(ids.shape[1])[None, :] < counts[:, None]) & bound.certifiable[ids]  # (B, T): own rows
     n = mask.sum(axis=1)  # (B,)
     flat = ids[mask]  # (N,): every text's own rows, text after text (padding never gathered)
@@ -407,6 +484,9 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
     covered = n > 0  # no token of its own: never certified
     if env is None or (not env.rows and not env.skipped):
         covered &= ~has  # nothing is known about what an unknown token did
+    elif env.rows and token_slots is not None and env.by_token and has.any():
+        lo_u, hi_u = _slot_hull(env, token_slots[has], low[has], high[has], n[has])
+        lo[has], hi[has] = lo_u, hi_u
     elif env.rows:
         u = unknown.astype(np.float64)[:, None]  # (B, 1)
         lo_u = (low + u * env.lo[None, :]) / (kept_n + u)  # (B, W): k = u, all unknown tokens were float rows
@@ -415,6 +495,37 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
         lo = np.where(has[:, None], np.minimum(lo, lo_u) if env.skipped else lo_u, lo)
         hi = np.where(has[:, None], np.maximum(hi, hi_u) if env.skipped else hi_u, hi)
     return lo, hi, covered
+
+
+def _slot_hull(env: Envelope, slots: np.ndarray, low: np.ndarray, high: np.ndarray,
+               n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(b, U) slots of each text's unknown tokens (-1 pads), (b, W) kept sums' bounds, (b,) kept counts ->
+    (b, W) lo and hi of the float model's mean over every way the unknown tokens could have been taken.
+
+    Token j stood for a float row inside its slot's envelope [l_j, h_j] or (skip float model) for nothing.
+    Per coordinate, the smallest mean with k of them taken takes the k smallest l_j; the smallest over k = 0..u
+    (skip) or at k = u (unk, where every token stood for a row) is the lower bound; the upper one likewise.
+    A token in an empty slot (l = +inf: an absent token, or a bucket no row hashes to) was no float row."""
+    valid = slots >= 0  # (b, U)
+    pick = env.slots[np.maximum(slots, 0)]  # (b, U, 2, W)
+    l = np.where(valid[:, :, None], pick[:, :, 0], np.inf)  # (b, U, W)
+    h = np.where(valid[:, :, None], -pick[:, :, 1], np.inf)  # (b, U, W): negated, so both sides take minima
+    u = valid.sum(axis=1)  # (b,)
+    kept = n.astype(np.float64)[:, None]  # (b, 1)
+    out = []
+    for side, base in ((l, low), (h, -high)):
+        side = np.sort(side, axis=1)  # (b, U, W): smallest first, pads and empty buckets (+inf) last
+        take = base[:, None, :] + np.cumsum(side, axis=1)  # (b, U, W): k = 1..U tokens taken
+        # this float64 sum of up to U + 1 terms, the subtraction and the division round by ≤ γ64_{U+4} (|base| + Σ|l_j|)
+        size = np.abs(base)[:, None, :] + np.cumsum(np.where(np.isfinite(side), np.abs(side), 0.0), axis=1)
+        k = np.arange(1, side.shape[1] + 1, dtype=np.float64)[None, :, None]  # (1, U, 1)
+        means = (take - gamma64(side.shape[1] + 4) * size) / (kept[:, :, None] + k)  # (b, U, W)
+        if env.skipped:  # any k in 0..u; past u only pads, which are +inf
+            bound_ = np.minimum(base / np.maximum(kept, 1.0), means.min(axis=1))  # (b, W)
+        else:  # every token a row: k = u
+            bound_ = np.take_along_axis(means, np.maximum(u - 1, 0)[:, None, None], axis=1)[:, 0]  # (b, W)
+        out.append(np.where(np.isnan(bound_), np.inf, bound_))
+    return out[0], -out[1]
 
 
 def logit_gaps(bound: BoxBound, top: np.ndarray, ids: np.ndarray, counts: np.ndarray,

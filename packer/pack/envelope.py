@@ -6,16 +6,47 @@ table, of the first layer's pre-activation W1·E), the minimum and maximum over 
 does not keep, plus the unknown row when the float model has one. Each bound is widened by the float32
 rounding that row can add to the float model's mean of at most `max_tokens` tokens, so the device needs
 nothing else (runtime/certify.py, `mean_box`). Costs 2 × width floats in the manifest.
+
+Two optional parts let the device narrow it by the token's text (FNV-1a of its UTF-8 bytes, `hash_token`):
+  * `buckets`: the same envelope per hash bucket (rows grouped by their token's hash mod K), as uint8 steps
+    inward from the one envelope, rounded outward: 2 × K × width bytes;
+  * `absent`: hashes of deployment-corpus tokens the float model never knew (a `skip` float model left them
+    out), dropping any hash a float token shares: 4 bytes each.
+Both are sound by construction: every float row the device may meet under a token is inside that token's
+envelope, and a listed hash is no float token's. Measured in the README's bound section.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+
 import numpy as np
 
 from danpack.model import FloatModel
-from danpack.runtime.certify import gamma, gamma64
+from danpack.runtime.certify import decode_buckets, gamma, gamma64, hash_token
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
+
+
+@dataclass(frozen=True)
+class EnvelopeOptions:
+    """How finely the `unknown` envelope tells tokens apart (README, "The guaranteed drift bound", measured)."""
+
+    buckets: int = 16  # hash buckets (0: one envelope); 2 × width bytes each
+    absent_min_count: int = 1  # list corpus tokens the float model never knew seen this often (0: no list)
+    absent_max: int = 8192  # at most this many listed, most frequent first; 4 bytes each
+
+    def __post_init__(self) -> None:
+        if self.buckets < 0 or self.absent_min_count < 0 or self.absent_max < 0:
+            raise ValueError("envelope options must be non-negative")
+
+
+@lru_cache(maxsize=2)
+def _token_hashes(vocab: tuple[str, ...]) -> np.ndarray:
+    """(V,) uint32 FNV-1a of every float token (cached: a pack builds many candidate bundles)."""
+    return np.fromiter((hash_token(t) for t in vocab), dtype=np.uint32, count=len(vocab))
 
 
 def _row_bounds(model: FloatModel, rows: np.ndarray, folded: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -42,23 +73,80 @@ def _field(rows: int, lo: np.ndarray, hi: np.ndarray, model: FloatModel) -> dict
             "lo": [float(x) for x in lo], "hi": [float(x) for x in hi]}
 
 
+def encode_buckets(lo: np.ndarray, hi: np.ndarray, bucket_lo: np.ndarray, bucket_hi: np.ndarray) -> bytes:
+    """(W,) the one envelope as stored, (K, W) each bucket's bounds (+inf / -inf: empty) -> (K, 2, W) uint8 bytes
+    whose decoding (runtime/certify.py `decode_buckets`, the device's exact expression) holds every bucket."""
+    unit = (hi - lo) / 254.0  # (W,)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s_lo = np.where(unit > 0, np.floor((bucket_lo - lo) / unit), 0.0)  # (K, W)
+        s_hi = np.where(unit > 0, np.floor((hi - bucket_hi) / unit), 0.0)
+    steps = np.stack([np.clip(np.nan_to_num(s_lo), 0, 254), np.clip(np.nan_to_num(s_hi), 0, 254)], axis=1)
+    steps = steps.astype(np.uint8)  # (K, 2, W)
+    empty = ~np.isfinite(bucket_lo).all(axis=1)  # (K,)
+    steps[empty] = 0
+    for _ in range(255):  # rounding outward: step in until the decoded bound holds the bucket's
+        got = decode_buckets(steps, lo, hi)  # (K, 2, W)
+        loose = (got[:, 0] > bucket_lo) | (got[:, 1] < bucket_hi)  # (K, W)
+        loose[empty] = False
+        if not loose.any():
+            break
+        steps[:, 0][(got[:, 0] > bucket_lo) & (steps[:, 0] > 0)] -= 1  # step 0 decodes to lo itself: holds
+        steps[:, 1][(got[:, 1] < bucket_hi) & (steps[:, 1] > 0)] -= 1
+    steps[empty] = 255
+    return steps.tobytes()
+
+
+def _absent_hashes(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> bytes:
+    """Sorted uint32 bytes: hashes of the corpus tokens the float model never knew, none a float token's."""
+    if model.oov_policy != "skip" or not options.absent_min_count or not options.absent_max:
+        return b""  # an unk float model gave such a token its unknown row: nothing to gain
+    taken = np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count][: options.absent_max],
+                     dtype=np.uint32)
+    taken = np.setdiff1d(taken, _token_hashes(tuple(model.vocab)))  # sorted, unique, no float token's hash
+    return taken.astype("<u4").tobytes()
+
+
 def _width(model: FloatModel, folded: bool) -> int:
     return model.layers[0].weight.shape[0] if folded else model.embedding.shape[1]
 
 
-def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool) -> dict:
-    """The manifest field: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]} for the kept float rows."""
+def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
+                     options: EnvelopeOptions = EnvelopeOptions()) -> dict:
+    """The manifest field for the kept float rows: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]},
+    plus "buckets" (bytes) and "absent" (bytes) as `options` ask; `absent`: (token, corpus count) pairs of tokens
+    the float model does not know, most frequent first."""
     left = np.ones(len(model.vocab), dtype=bool)  # (V,)
     left[np.asarray(kept, dtype=np.int64)] = False
-    if model.oov_policy == "unk":  # a word the float model does not know takes its unknown row
-        left[model.vocab.index(model.unk_token)] = True
+    unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
+    if unk is not None:  # a word the float model does not know takes its unknown row
+        left[unk] = True
     rows = np.flatnonzero(left)  # (P,): every row left out, reachable or not (no reliance on the reachability test)
-    width = _width(model, folded)
+    width, k = _width(model, folded), options.buckets if rows.size else 0
     lo, hi = np.full(width, np.inf), np.full(width, -np.inf)  # (W,)
+    b_lo, b_hi = np.full((k, width), np.inf), np.full((k, width), -np.inf)  # (K, W)
+    hashes = _token_hashes(tuple(model.vocab)) if k else None
     for start in range(0, rows.size, CHUNK_ROWS):
-        row_lo, row_hi = _row_bounds(model, rows[start : start + CHUNK_ROWS], folded)  # (k, W) each
+        part = rows[start : start + CHUNK_ROWS]
+        row_lo, row_hi = _row_bounds(model, part, folded)  # (k, W) each
         lo, hi = np.minimum(lo, row_lo.min(axis=0)), np.maximum(hi, row_hi.max(axis=0))
-    return _field(rows.size, lo, hi, model)
+        if k:
+            bucket = (hashes[part] % np.uint32(k)).astype(np.int64)  # (k,)
+            order = np.argsort(bucket, kind="stable")
+            sorted_b = bucket[order]
+            starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each bucket present
+            at = sorted_b[starts]
+            b_lo[at] = np.minimum(b_lo[at], np.minimum.reduceat(row_lo[order], starts, axis=0))
+            b_hi[at] = np.maximum(b_hi[at], np.maximum.reduceat(row_hi[order], starts, axis=0))
+    field = _field(rows.size, lo, hi, model)
+    if k:
+        if unk is not None:  # the unknown row may stand behind any token, whatever its hash
+            u_lo, u_hi = _row_bounds(model, np.array([unk]), folded)
+            b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
+        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
+    listed = _absent_hashes(model, absent, options)
+    if listed:
+        field["absent"] = listed
+    return field
 
 
 class EnvelopeIndex:
