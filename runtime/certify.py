@@ -53,6 +53,12 @@ device's; the device's own rounding never enters (only its argmax is used).
      (a + k·e) / (n + k) is monotone in k, so k = 0 and k = u bound every k between (hull); a `skip`
      float model may have any k in 0..u, an `unk` float model has k = u. The device's policy changes
      only what the DEVICE computed (its label), never this box. n = 0: never certified.
+     By token (optional `buckets` / `absent`): a token's own text decides which rows it can stand for.
+     A pruned row's token IS the token's text, so it hashes (FNV-1a) to the same bucket; its row lies in
+     that bucket's envelope [l_j, h_j]. A listed absent hash is no float token's, so a `skip` float
+     model left that token out (an empty slot). Per coordinate, the lowest mean with k tokens taken
+     takes the k smallest l_j; the bound is the lowest over k = 0..u (skip) or at k = u (unk), likewise
+     for the highest (`_slot_hull`).
   3. float32 rounding of the float model's mean: γ_{n+u+terms} (1/(n+k)) Σ mass per element, split
      into the kept rows' share (added per text to R) and the pruned rows' share (the packer widened
      the envelope by γ_{max_tokens+terms}·mass_p, so nothing more is needed on the device); terms = 2

@@ -25,6 +25,7 @@ from functools import lru_cache
 import numpy as np
 
 from danpack.model import FloatModel
+from danpack.runtime.errors import DanpackError
 from danpack.runtime.certify import decode_buckets, gamma, gamma64, hash_token
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
@@ -35,12 +36,14 @@ class EnvelopeOptions:
     """How finely the `unknown` envelope tells tokens apart (README, "The guaranteed drift bound", measured)."""
 
     buckets: int = 16  # hash buckets (0: one envelope); 2 × width bytes each
-    absent_min_count: int = 1  # list corpus tokens the float model never knew seen this often (0: no list)
+    absent_min_count: int = 2  # list corpus tokens the float model never knew seen this often (0: no list)
     absent_max: int = 8192  # at most this many listed, most frequent first; 4 bytes each
 
     def __post_init__(self) -> None:
-        if self.buckets < 0 or self.absent_min_count < 0 or self.absent_max < 0:
-            raise ValueError("envelope options must be non-negative")
+        for name, value in (("envelope-buckets", self.buckets), ("absent-min-count", self.absent_min_count),
+                            ("absent-max", self.absent_max)):
+            if value < 0:
+                raise DanpackError(f"{name} {value} must be 0 or more (0 turns that part of the envelope off)")
 
 
 @lru_cache(maxsize=2)
