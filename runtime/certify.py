@@ -281,15 +281,26 @@ class Envelope:
         if "_slots" not in self.__dict__:
             own = self.buckets if self.buckets is not None else np.stack([self.lo, self.hi])[None]  # (K, 2, W)
             empty = np.stack([np.full_like(self.lo, np.inf), np.full_like(self.hi, -np.inf)])[None]  # (1, 2, W)
-            object.__setattr__(self, "_slots", np.concatenate([own, empty]))
+            slots = np.concatenate([own, empty])
+            minima = np.stack([slots[:, 0], -slots[:, 1]], axis=1)  # (K + 1, 2, W): lows and negated highs
+            finite = np.abs(minima[np.isfinite(minima)])
+            object.__setattr__(self, "_slots", slots)
+            object.__setattr__(self, "_minima", minima)
+            object.__setattr__(self, "_largest", float(finite.max()) if finite.size else 0.0)
         return self.__dict__["_slots"]
 
     def slot_of(self, token: str) -> int:
         """The slot of a token the bundle does not know: K for a listed absent token, else its bucket."""
-        h = hash_token(token)
-        if h in self.absent:
-            return self.slots.shape[0] - 1
-        return h % self.buckets.shape[0] if self.buckets is not None else 0
+        cache = self.__dict__.setdefault("_slot_cache", {})
+        slot = cache.get(token)
+        if slot is None:
+            h = hash_token(token)
+            slot = self.slots.shape[0] - 1 if h in self.absent else (
+                h % self.buckets.shape[0] if self.buckets is not None else 0)
+            if len(cache) >= 65536:  # unknown tokens repeat (typos, names); a stream of new ones stays bounded
+                cache.clear()
+            cache[token] = slot
+        return slot
 
 
 def hash_token(token: str) -> int:
@@ -438,6 +449,7 @@ def encode_unknown(encoder: Encoder, texts: Sequence[str],
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
     oov, tokenize, map_tokens, index = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens, encoder.index
     by_token = envelope is not None and envelope.by_token
+    slot_of = envelope.slot_of if by_token else None
     id_lists, unknown, slots = [], np.zeros(len(texts), dtype=np.int64), []
     for i, text in enumerate(texts):
         tokens = tokenize(text)
@@ -445,14 +457,14 @@ def encode_unknown(encoder: Encoder, texts: Sequence[str],
         # skip: an unknown token is left out of `rows`; unk / rest: it sits on the out-of-vocabulary row
         unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
         if by_token and unknown[i]:
-            slots.append([envelope.slot_of(t) for t in tokens if index.get(t, oov) == oov])
+            slots.extend(map(slot_of, [t for t in tokens if t not in index] if oov is None else
+                             [t for t in tokens if index.get(t, oov) == oov]))
         id_lists.append(rows)
     ids, counts = encode_batch(id_lists)
     if not by_token:
         return ids, counts, unknown
     table = np.full((len(texts), max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)
-    for i, s in zip(np.flatnonzero(unknown), slots):
-        table[i, : len(s)] = s
+    table[np.arange(table.shape[1])[None, :] < unknown[:, None]] = slots  # row-major: each text's slots first
     return ids, counts, table
 
 
@@ -512,26 +524,36 @@ def _slot_hull(env: Envelope, slots: np.ndarray, low: np.ndarray, high: np.ndarr
     Per coordinate, the smallest mean with k of them taken takes the k smallest l_j; the smallest over k = 0..u
     (skip) or at k = u (unk, where every token stood for a row) is the lower bound; the upper one likewise.
     A token in an empty slot (l = +inf: an absent token, or a bucket no row hashes to) was no float row."""
-    valid = slots >= 0  # (b, U)
-    pick = env.slots[np.maximum(slots, 0)]  # (b, U, 2, W)
-    l = np.where(valid[:, :, None], pick[:, :, 0], np.inf)  # (b, U, W)
-    h = np.where(valid[:, :, None], -pick[:, :, 1], np.inf)  # (b, U, W): negated, so both sides take minima
+    valid = slots >= 0  # (b, U): a text's slots come first, pads (-1) after
     u = valid.sum(axis=1)  # (b,)
-    kept = n.astype(np.float64)[:, None]  # (b, 1)
-    out = []
-    for side, base in ((l, low), (h, -high)):
-        side = np.sort(side, axis=1)  # (b, U, W): smallest first, pads and empty buckets (+inf) last
-        take = base[:, None, :] + np.cumsum(side, axis=1)  # (b, U, W): k = 1..U tokens taken
-        # this float64 sum of up to U + 1 terms, the subtraction and the division round by ≤ γ64_{U+4} (|base| + Σ|l_j|)
-        size = np.abs(base)[:, None, :] + np.cumsum(np.where(np.isfinite(side), np.abs(side), 0.0), axis=1)
-        k = np.arange(1, side.shape[1] + 1, dtype=np.float64)[None, :, None]  # (1, U, 1)
-        means = (take - gamma64(side.shape[1] + 4) * size) / (kept[:, :, None] + k)  # (b, U, W)
-        if env.skipped:  # any k in 0..u; past u only pads, which are +inf
-            bound_ = np.minimum(base / np.maximum(kept, 1.0), means.min(axis=1))  # (b, W)
-        else:  # every token a row: k = u
-            bound_ = np.take_along_axis(means, np.maximum(u - 1, 0)[:, None, None], axis=1)[:, 0]  # (b, W)
-        out.append(np.where(np.isnan(bound_), np.inf, bound_))
-    return out[0], -out[1]
+    empty = env.slots.shape[0] - 1  # pads read the empty slot: +inf on both sides, never the lowest
+    minima, largest = env.__dict__["_minima"], env.__dict__["_largest"]
+    index = np.where(valid, slots, empty)  # (b, U)
+    base = np.stack([low, -high], axis=1)  # (b, 2, W): lows and negated highs, so both sides take minima
+    kept = n.astype(np.float64)[:, None, None]  # (b, 1, 1)
+    width = slots.shape[1]
+    # this module's float64 sums of up to U + 1 terms and their divisions round by ≤ γ64_{U+4} times
+    # |base| + Σ|l_j| ≤ |base| + U·largest, over n + k ≥ n
+    slack = gamma64(width + 4) * (np.abs(base) + width * largest) / np.maximum(kept, 1.0)  # (b, 2, W)
+    if not env.skipped:  # every token a row (k = u): one sum; a token in no row (empty slot) makes it +inf
+        side = minima[index]  # (b, U, 2, W)
+        with np.errstate(invalid="ignore"):
+            total = base + np.where(valid[:, :, None, None], side, 0.0).sum(axis=1)  # (b, 2, W)
+        return_ = total / (kept + u[:, None, None]) - slack
+        return return_[:, 0], -return_[:, 1]
+    bound_ = base / np.maximum(kept, 1.0)  # k = 0: every unknown token left out
+    one = u <= 1  # most texts: one unknown token, no sorting
+    if one.any():
+        first = minima[index[one, 0]]  # (b1, 2, W)
+        bound_[one] = np.minimum(bound_[one], (base[one] + first) / (kept[one] + 1.0))
+    if not one.all():  # any k in 0..u: the k smallest, for every k; pads (+inf) sort last and never win
+        many = ~one
+        side = np.sort(np.moveaxis(minima[index[many]], 1, -1), axis=-1)  # (b2, 2, W, U)
+        take = base[many][..., None] + np.cumsum(side, axis=-1)  # (b2, 2, W, U): k = 1..U tokens taken
+        k = np.arange(1, width + 1, dtype=np.float64)  # (U,)
+        bound_[many] = np.minimum(bound_[many], (take / (kept[many][..., None] + k)).min(axis=-1))
+    bound_ = bound_ - slack
+    return bound_[:, 0], -bound_[:, 1]
 
 
 def logit_gaps(bound: BoxBound, top: np.ndarray, ids: np.ndarray, counts: np.ndarray,
