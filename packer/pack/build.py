@@ -372,7 +372,7 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
     fold_rule = "yes" if should_fold(model.embedding.shape[1], model.layers, options.fold) else "no"
     if heldout_texts and options.quantize:
         with steps.step(f"measuring candidates on {len(heldout_texts):,} held-out texts"):
-            searcher = prep.searcher(HeldOut(model, plan, heldout_texts))
+            searcher = prep.searcher(HeldOut(model, plan, heldout_texts, envelope=options.envelope))
             plan, chosen, choice = _choose(model, plan, options, prep.policies, searcher, prep.build, fold_rule)
         policy, fold_mode = chosen.candidate.policy, "yes" if chosen.candidate.folded else "no"
     else:

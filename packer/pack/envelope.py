@@ -113,6 +113,35 @@ def _width(model: FloatModel, folded: bool) -> int:
     return model.layers[0].weight.shape[0] if folded else model.embedding.shape[1]
 
 
+def _bucket_bounds(rows: np.ndarray, row_lo: np.ndarray, row_hi: np.ndarray, hashes: np.ndarray,
+                   k: int) -> tuple[np.ndarray, np.ndarray]:
+    """(r,) float rows with their (r, W) bounds -> (K, W) per-bucket minimum and maximum (+inf / -inf: none)."""
+    b_lo, b_hi = np.full((k, row_lo.shape[1]), np.inf), np.full((k, row_lo.shape[1]), -np.inf)  # (K, W)
+    if rows.size:
+        bucket = (hashes[rows] % np.uint32(k)).astype(np.int64)  # (r,)
+        order = np.argsort(bucket, kind="stable")
+        sorted_b = bucket[order]
+        starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each bucket present
+        at = sorted_b[starts]
+        b_lo[at] = np.minimum.reduceat(row_lo[order], starts, axis=0)
+        b_hi[at] = np.maximum.reduceat(row_hi[order], starts, axis=0)
+    return b_lo, b_hi
+
+
+def _finish(model: FloatModel, folded: bool, rows: int, lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray | None,
+            b_hi: np.ndarray | None, listed: bytes) -> dict:
+    """The manifest field from the bounds: the unknown row joins every bucket; buckets encoded; absent attached."""
+    field = _field(rows, lo, hi, model)
+    if rows and b_lo is not None:
+        if model.oov_policy == "unk":  # the unknown row may stand behind any token, whatever its hash
+            u_lo, u_hi = _row_bounds(model, np.array([model.vocab.index(model.unk_token)]), folded)
+            b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
+        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
+    if listed:
+        field["absent"] = listed
+    return field
+
+
 def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
                      options: EnvelopeOptions = EnvelopeOptions()) -> dict:
     """The manifest field for the kept float rows: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]},
@@ -120,48 +149,36 @@ def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: 
     the float model does not know, most frequent first."""
     left = np.ones(len(model.vocab), dtype=bool)  # (V,)
     left[np.asarray(kept, dtype=np.int64)] = False
-    unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
-    if unk is not None:  # a word the float model does not know takes its unknown row
-        left[unk] = True
+    if model.oov_policy == "unk":  # a word the float model does not know takes its unknown row
+        left[model.vocab.index(model.unk_token)] = True
     rows = np.flatnonzero(left)  # (P,): every row left out, reachable or not (no reliance on the reachability test)
-    width, k = _width(model, folded), options.buckets if rows.size else 0
+    width, k = _width(model, folded), options.buckets
     lo, hi = np.full(width, np.inf), np.full(width, -np.inf)  # (W,)
-    b_lo, b_hi = np.full((k, width), np.inf), np.full((k, width), -np.inf)  # (K, W)
+    b_lo, b_hi = (np.full((k, width), np.inf), np.full((k, width), -np.inf)) if k else (None, None)  # (K, W)
     hashes = _token_hashes(tuple(model.vocab)) if k else None
     for start in range(0, rows.size, CHUNK_ROWS):
         part = rows[start : start + CHUNK_ROWS]
-        row_lo, row_hi = _row_bounds(model, part, folded)  # (k, W) each
+        row_lo, row_hi = _row_bounds(model, part, folded)  # (r, W) each
         lo, hi = np.minimum(lo, row_lo.min(axis=0)), np.maximum(hi, row_hi.max(axis=0))
         if k:
-            bucket = (hashes[part] % np.uint32(k)).astype(np.int64)  # (k,)
-            order = np.argsort(bucket, kind="stable")
-            sorted_b = bucket[order]
-            starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each bucket present
-            at = sorted_b[starts]
-            b_lo[at] = np.minimum(b_lo[at], np.minimum.reduceat(row_lo[order], starts, axis=0))
-            b_hi[at] = np.maximum(b_hi[at], np.maximum.reduceat(row_hi[order], starts, axis=0))
-    field = _field(rows.size, lo, hi, model)
-    if k:
-        if unk is not None:  # the unknown row may stand behind any token, whatever its hash
-            u_lo, u_hi = _row_bounds(model, np.array([unk]), folded)
-            b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
-        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
-    listed = _absent_hashes(model, absent, options)
-    if listed:
-        field["absent"] = listed
-    return field
+            c_lo, c_hi = _bucket_bounds(part, row_lo, row_hi, hashes, k)
+            b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
+    return _finish(model, folded, rows.size, lo, hi, b_lo, b_hi, _absent_hashes(model, absent, options))
 
 
 class EnvelopeIndex:
     """`unknown_envelope` of every prefix of a ranking at once: the candidates a pack measures keep
     `order[:keep]`, so the rows left out are `order[keep:]` plus a fixed rest. Block minima and maxima over the
-    ranking (suffix-combined) make each prefix cost one block of rows instead of the whole table."""
+    ranking (suffix-combined; per hash bucket too) make each prefix cost one block of rows instead of the table."""
 
     BLOCK = 1024  # ranked rows per block
 
-    def __init__(self, model: FloatModel, order: np.ndarray, folded: bool) -> None:
+    def __init__(self, model: FloatModel, order: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
+                 options: EnvelopeOptions = EnvelopeOptions()) -> None:
         self.model, self.order, self.folded = model, np.asarray(order, np.int64), folded
-        width, n = _width(model, folded), len(self.order)
+        width, n, k = _width(model, folded), len(self.order), options.buckets
+        self.k, self.listed = k, _absent_hashes(model, absent, options)
+        hashes = _token_hashes(tuple(model.vocab)) if k else None
         fixed = np.ones(len(model.vocab), dtype=bool)  # (V,): left out whatever the cut
         fixed[self.order] = False
         self.unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
@@ -172,28 +189,47 @@ class EnvelopeIndex:
         self.unk_position = int(where[0]) if where.size else None  # the unknown row's place in the ranking
         self.fixed_rows = int(rest.size)
         self.fixed_lo, self.fixed_hi = np.full(width, np.inf), np.full(width, -np.inf)
+        self.fixed_b = (np.full((k, width), np.inf), np.full((k, width), -np.inf))  # (K, W) each
         for start in range(0, rest.size, CHUNK_ROWS):
-            lo, hi = _row_bounds(model, rest[start : start + CHUNK_ROWS], folded)
+            part = rest[start : start + CHUNK_ROWS]
+            lo, hi = _row_bounds(model, part, folded)
             self.fixed_lo, self.fixed_hi = np.minimum(self.fixed_lo, lo.min(0)), np.maximum(self.fixed_hi, hi.max(0))
+            if k:
+                c_lo, c_hi = _bucket_bounds(part, lo, hi, hashes, k)
+                self.fixed_b = (np.minimum(self.fixed_b[0], c_lo), np.maximum(self.fixed_b[1], c_hi))
         blocks = (n + self.BLOCK - 1) // self.BLOCK
         lo_b, hi_b = np.full((blocks + 1, width), np.inf), np.full((blocks + 1, width), -np.inf)  # (B + 1, W)
+        blo_b, bhi_b = np.full((blocks + 1, k, width), np.inf), np.full((blocks + 1, k, width), -np.inf)  # (B + 1, K, W)
         for b in range(blocks):
-            lo, hi = _row_bounds(model, self.order[b * self.BLOCK : (b + 1) * self.BLOCK], folded)
+            part = self.order[b * self.BLOCK : (b + 1) * self.BLOCK]
+            lo, hi = _row_bounds(model, part, folded)
             lo_b[b], hi_b[b] = lo.min(0), hi.max(0)
+            if k:
+                blo_b[b], bhi_b[b] = _bucket_bounds(part, lo, hi, hashes, k)
         # suffix: block b onwards
         self.suffix_lo = np.minimum.accumulate(lo_b[::-1], axis=0)[::-1]  # (B + 1, W)
         self.suffix_hi = np.maximum.accumulate(hi_b[::-1], axis=0)[::-1]
+        self.suffix_b_lo = np.minimum.accumulate(blo_b[::-1], axis=0)[::-1]  # (B + 1, K, W)
+        self.suffix_b_hi = np.maximum.accumulate(bhi_b[::-1], axis=0)[::-1]
+        self.hashes = hashes
 
     def envelope(self, keep: int) -> dict:
         """The manifest field of a bundle keeping `order[:keep]` (equal to `unknown_envelope` of those rows)."""
         keep = min(max(int(keep), 0), len(self.order))
         block = (keep + self.BLOCK - 1) // self.BLOCK  # first whole block past the cut
         lo, hi = np.minimum(self.fixed_lo, self.suffix_lo[block]), np.maximum(self.fixed_hi, self.suffix_hi[block])
+        b_lo, b_hi = None, None
+        if self.k:
+            b_lo = np.minimum(self.fixed_b[0], self.suffix_b_lo[block])
+            b_hi = np.maximum(self.fixed_b[1], self.suffix_b_hi[block])
         partial = self.order[keep : block * self.BLOCK]
         if partial.size:
             p_lo, p_hi = _row_bounds(self.model, partial, self.folded)
             lo, hi = np.minimum(lo, p_lo.min(0)), np.maximum(hi, p_hi.max(0))
+            if self.k:
+                c_lo, c_hi = _bucket_bounds(partial, p_lo, p_hi, self.hashes, self.k)
+                b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
         # left out: the fixed rows and order[keep:]; the unknown row is in both when it is ranked past the cut
         past = self.unk_position is not None and self.unk_position >= keep
         rows = self.fixed_rows + len(self.order) - keep - int(past)
-        return _field(rows, lo, hi, self.model)
+        return _finish(self.model, self.folded, rows, lo, hi, b_lo, b_hi, self.listed)
