@@ -13,7 +13,9 @@ Two optional parts let the device narrow it by the token's text (FNV-1a of its U
   * `absent`: hashes of deployment-corpus tokens the float model never knew (a `skip` float model left them
     out), dropping any hash a float token shares: 4 bytes each.
 Both are sound by construction: every float row the device may meet under a token is inside that token's
-envelope, and a listed hash is no float token's. Measured in the README's bound section.
+envelope, and a listed hash is no float token's. Together they never take more bytes than keeping the left-out
+rows would (`parts_budget`): past that, keeping the rows is both smaller and exact. Measured in the README's
+bound section.
 """
 
 from __future__ import annotations
@@ -44,6 +46,18 @@ class EnvelopeOptions:
                             ("absent-max", self.absent_max)):
             if value < 0:
                 raise DanpackError(f"{name} {value} must be 0 or more (0 turns that part of the envelope off)")
+
+
+@lru_cache(maxsize=2)
+def _token_bytes(vocab: tuple[str, ...]) -> np.ndarray:
+    """(V,) int64: bytes each token takes in the bundle's vocabulary (UTF-8 and its newline)."""
+    return np.fromiter((len(t.encode("utf-8")) + 1 for t in vocab), dtype=np.int64, count=len(vocab))
+
+
+def parts_budget(model: FloatModel, width: int, rows: int, token_bytes: int) -> int:
+    """Bytes the by-token parts may take: what keeping the `rows` left-out rows would cost (an int8 row, its
+    scale, its token). Beyond that, keeping the rows (exact) beats describing them."""
+    return rows * (width + 4) + token_bytes
 
 
 @lru_cache(maxsize=2)
@@ -99,14 +113,15 @@ def encode_buckets(lo: np.ndarray, hi: np.ndarray, bucket_lo: np.ndarray, bucket
     return steps.tobytes()
 
 
-def _absent_hashes(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> bytes:
-    """Sorted uint32 bytes: hashes of the corpus tokens the float model never knew, none a float token's."""
+def _absent_hashes(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> np.ndarray:
+    """(N,) uint32 hashes of the corpus tokens the float model never knew, most frequent first, none a float
+    token's, each once."""
     if model.oov_policy != "skip" or not options.absent_min_count or not options.absent_max:
-        return b""  # an unk float model gave such a token its unknown row: nothing to gain
-    taken = np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count][: options.absent_max],
-                     dtype=np.uint32)
-    taken = np.setdiff1d(taken, _token_hashes(tuple(model.vocab)))  # sorted, unique, no float token's hash
-    return taken.astype("<u4").tobytes()
+        return np.zeros(0, np.uint32)  # an unk float model gave such a token its unknown row: nothing to gain
+    taken = np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count], dtype=np.uint32)
+    taken = taken[~np.isin(taken, _token_hashes(tuple(model.vocab)))]
+    _, first = np.unique(taken, return_index=True)
+    return taken[np.sort(first)][: options.absent_max]
 
 
 def _width(model: FloatModel, folded: bool) -> int:
@@ -129,16 +144,19 @@ def _bucket_bounds(rows: np.ndarray, row_lo: np.ndarray, row_hi: np.ndarray, has
 
 
 def _finish(model: FloatModel, folded: bool, rows: int, lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray | None,
-            b_hi: np.ndarray | None, listed: bytes) -> dict:
-    """The manifest field from the bounds: the unknown row joins every bucket; buckets encoded; absent attached."""
+            b_hi: np.ndarray | None, ranked: np.ndarray, budget: int) -> dict:
+    """The manifest field from the bounds: the unknown row joins every bucket, the buckets are encoded, then the
+    most frequent absent hashes, all within `budget` bytes (buckets first, as they measured most per byte)."""
     field = _field(rows, lo, hi, model)
-    if rows and b_lo is not None:
+    if rows and b_lo is not None and b_lo.size <= budget // 2:
         if model.oov_policy == "unk":  # the unknown row may stand behind any token, whatever its hash
             u_lo, u_hi = _row_bounds(model, np.array([model.vocab.index(model.unk_token)]), folded)
             b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
         field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
-    if listed:
-        field["absent"] = listed
+        budget -= len(field["buckets"])
+    listed = np.sort(ranked[: max(budget, 0) // 4]) if rows else ranked[:0]
+    if listed.size:
+        field["absent"] = listed.astype("<u4").tobytes()
     return field
 
 
@@ -163,7 +181,8 @@ def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: 
         if k:
             c_lo, c_hi = _bucket_bounds(part, row_lo, row_hi, hashes, k)
             b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
-    return _finish(model, folded, rows.size, lo, hi, b_lo, b_hi, _absent_hashes(model, absent, options))
+    budget = parts_budget(model, width, rows.size, int(_token_bytes(tuple(model.vocab))[rows].sum()))
+    return _finish(model, folded, rows.size, lo, hi, b_lo, b_hi, _absent_hashes(model, absent, options), budget)
 
 
 class EnvelopeIndex:
@@ -177,7 +196,9 @@ class EnvelopeIndex:
                  options: EnvelopeOptions = EnvelopeOptions()) -> None:
         self.model, self.order, self.folded = model, np.asarray(order, np.int64), folded
         width, n, k = _width(model, folded), len(self.order), options.buckets
-        self.k, self.listed = k, _absent_hashes(model, absent, options)
+        self.k, self.ranked, self.width = k, _absent_hashes(model, absent, options), width
+        token_bytes = _token_bytes(tuple(model.vocab))
+        self.suffix_bytes = np.append(np.cumsum(token_bytes[self.order][::-1])[::-1], 0)  # (n + 1,): order[i:]
         hashes = _token_hashes(tuple(model.vocab)) if k else None
         fixed = np.ones(len(model.vocab), dtype=bool)  # (V,): left out whatever the cut
         fixed[self.order] = False
@@ -188,6 +209,7 @@ class EnvelopeIndex:
         where = np.flatnonzero(self.order == self.unk) if self.unk is not None else np.zeros(0, np.int64)
         self.unk_position = int(where[0]) if where.size else None  # the unknown row's place in the ranking
         self.fixed_rows = int(rest.size)
+        self.fixed_bytes = int(token_bytes[rest].sum())
         self.fixed_lo, self.fixed_hi = np.full(width, np.inf), np.full(width, -np.inf)
         self.fixed_b = (np.full((k, width), np.inf), np.full((k, width), -np.inf))  # (K, W) each
         for start in range(0, rest.size, CHUNK_ROWS):
@@ -232,4 +254,9 @@ class EnvelopeIndex:
         # left out: the fixed rows and order[keep:]; the unknown row is in both when it is ranked past the cut
         past = self.unk_position is not None and self.unk_position >= keep
         rows = self.fixed_rows + len(self.order) - keep - int(past)
-        return _finish(self.model, self.folded, rows, lo, hi, b_lo, b_hi, self.listed)
+        # the unknown row counted once: it is in the fixed rows, and in order[keep:] when ranked past the cut
+        spent = self.fixed_bytes + int(self.suffix_bytes[keep])
+        if past:
+            spent -= int(_token_bytes(tuple(self.model.vocab))[self.unk])
+        budget = parts_budget(self.model, self.width, rows, spent)
+        return _finish(self.model, self.folded, rows, lo, hi, b_lo, b_hi, self.ranked, budget)
