@@ -51,6 +51,7 @@ PROBE_KEYS = {"ids", "probs", "texts", "text_probs"}
 MAX_PROBE_TEXTS, MAX_PROBE_TEXT_CHARS = 32, 1 << 14  # the packer writes at most 6 texts of about 16 tokens
 OUTER_KEYS = {"format", "version", "sha256", "payload"}
 PAYLOAD_KEYS = {"graph", "manifest", "tensors", "vocab"}
+UNKNOWN_KEYS = {"rows", "skipped", "lo", "hi", "buckets", "absent"}  # the manifest's `unknown` field
 ONNX_DTYPES = {"float32": 1, "int8": 3}  # TensorProto.DataType: FLOAT = 1, INT8 = 3 (onnx.proto)
 GRAPH_INPUTS, GRAPH_OUTPUTS = ("ids", "counts"), ("probs", "logits")  # what the backends feed and fetch
 # The operators packer/graph.py writes (default ONNX domain); tests/test_graph.py keeps the two in step.
@@ -400,11 +401,13 @@ def _check_description(fail, m: dict) -> None:
 
 
 def _check_unknown(fail, field: object, width: int) -> None:
-    """The optional envelope of tokens the bundle does not know (runtime/certify.py); absent in older bundles."""
+    """The optional envelope of tokens the bundle does not know (runtime/certify.py); absent in older bundles.
+    Optional parts: `buckets` ((K, 2, width) uint8 steps; a bucket is all 255 or each coordinate's two steps sum
+    to at most 254) and `absent` (strictly ascending uint32 hashes; only for a float model that skips)."""
     if field is None:
         return
-    if not isinstance(field, dict) or set(field) != {"rows", "skipped", "lo", "hi"}:
-        raise fail("field 'unknown' must be a map with rows, skipped, lo and hi")
+    if not isinstance(field, dict) or not {"rows", "skipped", "lo", "hi"} <= set(field) <= UNKNOWN_KEYS:
+        raise fail("field 'unknown' must be a map with rows, skipped, lo and hi (and optionally buckets, absent)")
     rows, skipped, lo, hi = field["rows"], field["skipped"], field["lo"], field["hi"]
     if not _is_count(rows) or not isinstance(skipped, bool) or not (rows or skipped):
         raise fail(f"field 'unknown' has rows {_show(rows)} and skipped {_show(skipped)}, expected a count and a bool "
@@ -412,6 +415,20 @@ def _check_unknown(fail, field: object, width: int) -> None:
     if not all(isinstance(v, list) and len(v) == width and all(isinstance(x, float) and math.isfinite(x) for x in v)
                for v in (lo, hi)) or any(a > b for a, b in zip(lo, hi)):
         raise fail(f"field 'unknown' lo and hi must be {width} finite floats each (the table width), lo <= hi")
+    buckets = field.get("buckets")
+    if buckets is not None:
+        if not isinstance(buckets, bytes) or not buckets or len(buckets) % (2 * width):
+            raise fail(f"field 'unknown' buckets must be bytes, a positive multiple of 2 x {width} (the table width)")
+        steps = np.frombuffer(buckets, np.uint8).reshape(-1, 2, width).astype(np.int32)  # (K, 2, W)
+        empty = (steps == 255).all(axis=(1, 2))  # (K,)
+        if (steps[~empty].sum(axis=1) > 254).any():
+            raise fail("field 'unknown' buckets: a bucket must be all 255 (empty) or have lo + hi steps <= 254")
+    absent = field.get("absent")
+    if absent is not None:
+        if not isinstance(absent, bytes) or not absent or len(absent) % 4 or not skipped:
+            raise fail("field 'unknown' absent must be bytes, a positive multiple of 4, and only where skipped is true")
+        if (np.diff(np.frombuffer(absent, "<u4").astype(np.int64)) <= 0).any():
+            raise fail("field 'unknown' absent must hold strictly ascending uint32 hashes")
 
 
 def _check_probe(fail, probe: object, rows: int, classes: int) -> None:

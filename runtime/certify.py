@@ -53,6 +53,12 @@ device's; the device's own rounding never enters (only its argmax is used).
      (a + k·e) / (n + k) is monotone in k, so k = 0 and k = u bound every k between (hull); a `skip`
      float model may have any k in 0..u, an `unk` float model has k = u. The device's policy changes
      only what the DEVICE computed (its label), never this box. n = 0: never certified.
+     By token (optional `buckets` / `absent`): a token's own text decides which rows it can stand for.
+     A pruned row's token IS the token's text, so it hashes (FNV-1a) to the same bucket; its row lies in
+     that bucket's envelope [l_j, h_j]. A listed absent hash is no float token's, so a `skip` float
+     model left that token out (an empty slot). Per coordinate, the lowest mean with k tokens taken
+     takes the k smallest l_j; the bound is the lowest over k = 0..u (skip) or at k = u (unk), likewise
+     for the highest (`_slot_hull`).
   3. float32 rounding of the float model's mean: γ_{n+u+terms} (1/(n+k)) Σ mass per element, split
      into the kept rows' share (added per text to R) and the pruned rows' share (the packer widened
      the envelope by γ_{max_tokens+terms}·mass_p, so nothing more is needed on the device); terms = 2
@@ -254,6 +260,56 @@ class Envelope:
     skipped: bool  # True: the float model may instead have left the token out (it skips tokens it does not know)
     lo: np.ndarray  # (W,) float64: per-coordinate minimum over those rows, less their float32 rounding reserve
     hi: np.ndarray  # (W,) float64: per-coordinate maximum, plus the reserve
+    buckets: np.ndarray | None = None  # (K, 2, W) float64: lo and hi of the rows whose token hashes to bucket j
+    # (`bucket_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
+    absent: frozenset = frozenset()  # FNV-1a hashes of tokens the float model never knew (no float token has one)
+
+    @property
+    def hash_buckets(self) -> int:
+        """K, the number of hash buckets (0: the envelope is not split)."""
+        return 0 if self.buckets is None else int(self.buckets.shape[0])
+
+    @property
+    def by_token(self) -> bool:
+        """True when the token's text narrows what it did (hash buckets or the list of absent tokens)."""
+        return self.buckets is not None or bool(self.absent)
+
+    @property
+    def slots(self) -> np.ndarray:
+        """(K + 1, 2, W) float64: the bucket envelopes (or the one envelope as K = 1), then an empty slot for a
+        token that was no float row."""
+        if "_slots" not in self.__dict__:
+            own = self.buckets if self.buckets is not None else np.stack([self.lo, self.hi])[None]  # (K, 2, W)
+            empty = np.stack([np.full_like(self.lo, np.inf), np.full_like(self.hi, -np.inf)])[None]  # (1, 2, W)
+            slots = np.concatenate([own, empty])
+            minima = np.stack([slots[:, 0], -slots[:, 1]], axis=1)  # (K + 1, 2, W): lows and negated highs
+            finite = np.abs(minima[np.isfinite(minima)])
+            object.__setattr__(self, "_slots", slots)
+            object.__setattr__(self, "_minima", minima)
+            object.__setattr__(self, "_largest", float(finite.max()) if finite.size else 0.0)
+        return self.__dict__["_slots"]
+
+    def slot_of(self, token: str) -> int:
+        """The slot of a token the bundle does not know: K for a listed absent token, else its bucket."""
+        cache = self.__dict__.setdefault("_slot_cache", {})
+        slot = cache.get(token)
+        if slot is None:
+            h = hash_token(token)
+            slot = self.slots.shape[0] - 1 if h in self.absent else (
+                h % self.buckets.shape[0] if self.buckets is not None else 0)
+            if len(cache) >= 65536:  # unknown tokens repeat (typos, names); a stream of new ones stays bounded
+                cache.clear()
+            cache[token] = slot
+        return slot
+
+
+def hash_token(token: str) -> int:
+    """FNV-1a, 32 bits, of the token's UTF-8 bytes (offset basis 2166136261, prime 16777619): a hash both the
+    packer and any device compute the same way."""
+    h = 2166136261
+    for byte in token.encode("utf-8"):
+        h = ((h ^ byte) * 16777619) & 0xFFFFFFFF
+    return h
 
 
 def read_envelope(bundle: Bundle) -> Envelope | None:
@@ -262,8 +318,32 @@ def read_envelope(bundle: Bundle) -> Envelope | None:
     field = bundle.manifest.get("unknown")
     if field is None:
         return None
-    return Envelope(int(field["rows"]), bool(field["skipped"]), np.asarray(field["lo"], np.float64),
-                    np.asarray(field["hi"], np.float64))
+    lo, hi = np.asarray(field["lo"], np.float64), np.asarray(field["hi"], np.float64)  # (W,)
+    absent = np.frombuffer(field.get("absent", b""), dtype="<u4")  # (N,)
+    return Envelope(int(field["rows"]), bool(field["skipped"]), lo, hi, read_buckets(field, lo, hi),
+                    frozenset(absent.tolist()))
+
+
+def read_buckets(field: dict, lo: np.ndarray, hi: np.ndarray) -> np.ndarray | None:
+    """(K, 2, W) float64 bucket envelopes from the field's `buckets` bytes ((K, 2, W) uint8: steps of (hi − lo)/254
+    inward from the one envelope; 255 throughout a bucket: no row), or None when the field has none. Decoding is
+    this exact float64 expression; the packer rounds each step count so that it gives a bound no tighter than the
+    rows' (packer/pack/envelope.py `encode_buckets`)."""
+    raw = field.get("buckets")
+    if raw is None:
+        return None
+    steps = np.frombuffer(raw, dtype=np.uint8).reshape(-1, 2, lo.shape[0])  # (K, 2, W)
+    return decode_buckets(steps, lo, hi)
+
+
+def decode_buckets(steps: np.ndarray, lo: np.ndarray, hi: np.ndarray) -> np.ndarray:
+    """(K, 2, W) uint8 steps and (W,) lo, hi -> (K, 2, W) float64 bounds (the one definition of the decoding)."""
+    unit = (hi - lo) / 254.0  # (W,)
+    s = steps.astype(np.float64)  # (K, 2, W)
+    out = np.stack([lo + s[:, 0] * unit, hi - s[:, 1] * unit], axis=1)  # (K, 2, W)
+    empty = (steps == 255).all(axis=(1, 2))  # (K,)
+    out[empty, 0], out[empty, 1] = np.inf, -np.inf
+    return out
 
 
 @dataclass(frozen=True)
@@ -359,21 +439,33 @@ def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
                     drift.certifiable, tuple(layers), contrast, envelope)
 
 
-def encode_unknown(encoder: Encoder, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, (B,) int64: tokens without a row of their own).
+def encode_unknown(encoder: Encoder, texts: Sequence[str],
+                   envelope: Envelope | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, unknown): the tokens without a row of
+    their own, as (B,) int64 counts, or, when the envelope tells tokens apart (`Envelope.by_token`), as (B, U)
+    int64 slots of those tokens (`Envelope.slot_of`), padded with -1.
 
     Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
-    oov, tokenize, map_tokens = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens
-    id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
+    oov, tokenize, map_tokens, index = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens, encoder.index
+    by_token = envelope is not None and envelope.by_token
+    slot_of = envelope.slot_of if by_token else None
+    id_lists, unknown, slots = [], np.zeros(len(texts), dtype=np.int64), []
     for i, text in enumerate(texts):
         tokens = tokenize(text)
         rows = map_tokens(tokens)
         # skip: an unknown token is left out of `rows`; unk / rest: it sits on the out-of-vocabulary row
         unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
+        if by_token and unknown[i]:
+            slots.extend(map(slot_of, [t for t in tokens if t not in index] if oov is None else
+                             [t for t in tokens if index.get(t, oov) == oov]))
         id_lists.append(rows)
     ids, counts = encode_batch(id_lists)
-    return ids, counts, unknown
+    if not by_token:
+        return ids, counts, unknown
+    table = np.full((len(texts), max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)
+    table[np.arange(table.shape[1])[None, :] < unknown[:, None]] = slots  # row-major: each text's slots first
+    return ids, counts, table
 
 
 def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -383,8 +475,11 @@ def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
              unknown: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """(B, T) ids, (B,) counts, (B,) unknown-token counts -> ((B, W) lo, (B, W) hi, (B,) bool covered):
-    a box holding the float model's computed mean (table space), for every text marked covered."""
+    """(B, T) ids, (B,) counts, unknown -> ((B, W) lo, (B, W) hi, (B,) bool covered): a box holding the float
+    model's computed mean (table space), for every text marked covered. `unknown`: (B,) counts of the tokens
+    without a row of their own (the one envelope bounds each), or (B, U) their buckets (`encode_unknown`)."""
+    token_slots = unknown if unknown.ndim == 2 else None  # (B, U) slots, or counts only
+    unknown = (unknown >= 0).sum(axis=1) if token_slots is not None else unknown  # (B,)
     mask = (np.arange(ids.shape[1])[None, :] < counts[:, None]) & bound.certifiable[ids]  # (B, T): own rows
     n = mask.sum(axis=1)  # (B,)
     flat = ids[mask]  # (N,): every text's own rows, text after text (padding never gathered)
@@ -407,6 +502,9 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
     covered = n > 0  # no token of its own: never certified
     if env is None or (not env.rows and not env.skipped):
         covered &= ~has  # nothing is known about what an unknown token did
+    elif env.rows and token_slots is not None and env.by_token and has.any():
+        lo_u, hi_u = _slot_hull(env, token_slots[has], low[has], high[has], n[has])
+        lo[has], hi[has] = lo_u, hi_u
     elif env.rows:
         u = unknown.astype(np.float64)[:, None]  # (B, 1)
         lo_u = (low + u * env.lo[None, :]) / (kept_n + u)  # (B, W): k = u, all unknown tokens were float rows
@@ -415,6 +513,47 @@ def mean_box(bound: BoxBound, ids: np.ndarray, counts: np.ndarray,
         lo = np.where(has[:, None], np.minimum(lo, lo_u) if env.skipped else lo_u, lo)
         hi = np.where(has[:, None], np.maximum(hi, hi_u) if env.skipped else hi_u, hi)
     return lo, hi, covered
+
+
+def _slot_hull(env: Envelope, slots: np.ndarray, low: np.ndarray, high: np.ndarray,
+               n: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """(b, U) slots of each text's unknown tokens (-1 pads), (b, W) kept sums' bounds, (b,) kept counts ->
+    (b, W) lo and hi of the float model's mean over every way the unknown tokens could have been taken.
+
+    Token j stood for a float row inside its slot's envelope [l_j, h_j] or (skip float model) for nothing.
+    Per coordinate, the smallest mean with k of them taken takes the k smallest l_j; the smallest over k = 0..u
+    (skip) or at k = u (unk, where every token stood for a row) is the lower bound; the upper one likewise.
+    A token in an empty slot (l = +inf: an absent token, or a bucket no row hashes to) was no float row."""
+    valid = slots >= 0  # (b, U): a text's slots come first, pads (-1) after
+    u = valid.sum(axis=1)  # (b,)
+    empty = env.slots.shape[0] - 1  # pads read the empty slot: +inf on both sides, never the lowest
+    minima, largest = env.__dict__["_minima"], env.__dict__["_largest"]
+    index = np.where(valid, slots, empty)  # (b, U)
+    base = np.stack([low, -high], axis=1)  # (b, 2, W): lows and negated highs, so both sides take minima
+    kept = n.astype(np.float64)[:, None, None]  # (b, 1, 1)
+    width = slots.shape[1]
+    # this module's float64 sums of up to U + 1 terms and their divisions round by ≤ γ64_{U+4} times
+    # |base| + Σ|l_j| ≤ |base| + U·largest, over n + k ≥ n
+    slack = gamma64(width + 4) * (np.abs(base) + width * largest) / np.maximum(kept, 1.0)  # (b, 2, W)
+    if not env.skipped:  # every token a row (k = u): one sum; a token in no row (empty slot) makes it +inf
+        side = minima[index]  # (b, U, 2, W)
+        with np.errstate(invalid="ignore"):
+            total = base + np.where(valid[:, :, None, None], side, 0.0).sum(axis=1)  # (b, 2, W)
+        return_ = total / (kept + u[:, None, None]) - slack
+        return return_[:, 0], -return_[:, 1]
+    bound_ = base / np.maximum(kept, 1.0)  # k = 0: every unknown token left out
+    one = u <= 1  # most texts: one unknown token, no sorting
+    if one.any():
+        first = minima[index[one, 0]]  # (b1, 2, W)
+        bound_[one] = np.minimum(bound_[one], (base[one] + first) / (kept[one] + 1.0))
+    if not one.all():  # any k in 0..u: the k smallest, for every k; pads (+inf) sort last and never win
+        many = ~one
+        side = np.sort(np.moveaxis(minima[index[many]], 1, -1), axis=-1)  # (b2, 2, W, U)
+        take = base[many][..., None] + np.cumsum(side, axis=-1)  # (b2, 2, W, U): k = 1..U tokens taken
+        k = np.arange(1, width + 1, dtype=np.float64)  # (U,)
+        bound_[many] = np.minimum(bound_[many], (take / (kept[many][..., None] + k)).min(axis=-1))
+    bound_ = bound_ - slack
+    return bound_[:, 0], -bound_[:, 1]
 
 
 def logit_gaps(bound: BoxBound, top: np.ndarray, ids: np.ndarray, counts: np.ndarray,

@@ -171,7 +171,7 @@ class Classifier:
         bound, texts = self.box_bound, as_texts(texts)
         probs_parts, certified_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
-            ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS])  # (b, T), (b,), (b,)
+            ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS], bound.envelope)  # (b, T), (b,), (b,) or (b, U)
             probs, logits = self.backend.run(ids, counts)  # (b, C), (b, C)
             top = probs.argmax(axis=1)  # (b,)
             certified_parts.append(certify_packed(bound, logits, ids, counts, unknown) & (top == logits.argmax(axis=1)))

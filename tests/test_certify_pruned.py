@@ -38,8 +38,9 @@ def pack_pruned(model: FloatModel, root: Path, rng: np.random.Generator, common:
     """Pack with a corpus that holds only the first `common` tokens, so every other row is pruned."""
     root.mkdir(parents=True, exist_ok=True)
     corpus = root / "corpus.txt"
-    corpus.write_text("\n".join(" ".join(rng.choice(model.vocab[:common], 8)) for _ in range(200)) + "\n",
-                      encoding="utf-8")
+    # "zzz": a corpus word no model knows (listed as absent for a skip float model); "qqq" never appears
+    lines = [" ".join(rng.choice(model.vocab[:common], 8)) for _ in range(200)] + ["zzz w0", "zzz w1"]
+    corpus.write_text("\n".join(lines) + "\n", encoding="utf-8")
     save_model(model, root / "model")
     data = pack_model(root / "model", None, PackOptions(corpora=(str(corpus),), coverage=1.0, **options)).data
     return decode_bundle(data, "test bundle")
@@ -69,7 +70,7 @@ def containment_violation(model: FloatModel, bundle: Bundle, texts: list[str]) -
     """Largest amount by which the float model escapes what the bound claims (≤ 0 when the bound holds)."""
     clf = Classifier(bundle, "numpy")
     bound = certify.box_bound(bundle)
-    ids, counts, unknown = certify.encode_unknown(clf.encoder, texts)
+    ids, counts, unknown = certify.encode_unknown(clf.encoder, texts, bound.envelope)  # unknown: (B,) or (B, U)
     lo, hi, covered = certify.mean_box(bound, ids, counts, unknown)  # (B, W)
     mean = float_table_mean(model, bundle, texts)  # (B, W)
     worst = float(np.max(np.maximum(lo - mean, mean - hi)[covered], initial=-np.inf))
@@ -79,6 +80,21 @@ def containment_violation(model: FloatModel, bundle: Bundle, texts: list[str]) -
         gaps = logits[np.arange(len(texts)), top][:, None] - logits  # (B, C)
         worst = max(worst, float(np.max((low - gaps)[covered], initial=-np.inf)))
     return worst
+
+
+def shrink_envelope(env: certify.Envelope, factor: float) -> certify.Envelope:
+    """The envelope (and each bucket's) narrowed about its centre: a bound broken on purpose."""
+    def narrow(lo, hi):
+        mid, half = (lo + hi) / 2, (hi - lo) / 2
+        return mid - factor * half, mid + factor * half
+
+    lo, hi = narrow(env.lo, env.hi)
+    buckets = None
+    if env.buckets is not None:
+        full = np.isfinite(env.buckets[:, 0]).all(axis=1)  # (K,): empty buckets stay empty
+        b_lo, b_hi = narrow(env.buckets[:, 0], env.buckets[:, 1])
+        buckets = np.where(full[:, None, None], np.stack([b_lo, b_hi], axis=1), env.buckets)
+    return replace(env, lo=lo, hi=hi, buckets=buckets)
 
 
 RANDOM_MODELS = settings(max_examples=60, deadline=None, derandomize=True,
@@ -116,9 +132,7 @@ def test_containment_has_teeth(tmp_path, monkeypatch):
     honest = certify.read_envelope
 
     def shrunk(b):
-        env = honest(b)
-        mid, half = (env.lo + env.hi) / 2, (env.hi - env.lo) / 2
-        return replace(env, lo=mid - 0.7 * half, hi=mid + 0.7 * half)
+        return shrink_envelope(honest(b), 0.7)
 
     monkeypatch.setattr(certify, "read_envelope", shrunk)
     assert containment_violation(model, bundle, texts) > 0.0
@@ -164,23 +178,32 @@ def gap_gradient(layers: tuple[Layer, ...], x: np.ndarray, top: int, other: int)
 
 def adversarial_flips(model: FloatModel, bundle: Bundle, texts: list[str], rng: np.random.Generator,
                       shrink: float = 1.0, tries: int = 4) -> tuple[int, int]:
-    """(attacked certified texts with unknown tokens, label flips found). `shrink` < 1 narrows what the
-    adversary may pick, to show the attack has teeth against a weaker bound."""
+    """(attacked certified texts with unknown tokens, label flips found). Each unknown token may stand for any
+    pruned row of its envelope slot (its hash bucket; none for a listed absent token), the one it could be in the
+    float model. `shrink` < 1 narrows what the adversary may pick, to show the attack has teeth against a weaker
+    bound."""
     clf = Classifier(bundle, "numpy")
-    ids, counts, unknown = certify.encode_unknown(clf.encoder, texts)
-    logits = clf.backend.run(ids, counts)[1]
     bound = certify.box_bound(bundle)
-    certified = certify.certify_packed(bound, logits, ids, counts, unknown)
+    env = bound.envelope
+    ids, counts, unknown = certify.encode_unknown(clf.encoder, texts, env)
+    slots = unknown if unknown.ndim == 2 else None  # (B, U) or None
+    unknown = (unknown >= 0).sum(axis=1) if slots is not None else unknown  # (B,)
+    logits = clf.backend.run(ids, counts)[1]
+    certified = certify.certify_packed(bound, logits, ids, counts, slots if slots is not None else unknown)
     rows, layers = table_space_model(model, bundle)
     in_bundle = set(bundle.vocab)
     pool = np.array([i for i, t in enumerate(model.vocab) if t not in in_bundle or t == model.unk_token])  # (P,)
     pool_rows = rows[pool]  # (P, W)
+    # the slot each pool row sits in (the unknown row: any slot); -2 for "any"
+    pool_slot = np.array([-2 if model.vocab[i] == model.unk_token else (env.slot_of(model.vocab[i]) if env.by_token
+                                                                          else 0) for i in pool])
     deq = bundle.tensors["table"].astype(np.float64) * bound.steps[:, None]  # (R, W)
     attacked = flips = 0
     for b in np.flatnonzero(certified & (unknown > 0)):
         top = int(logits[b].argmax())
         kept = [int(i) for i in ids[b, : counts[b]] if bound.certifiable[i]]
         n, u = len(kept), int(unknown[b])
+        token_slots = slots[b, :u] if slots is not None else np.zeros(u, np.int64)
         centre = deq[kept].mean(axis=0)
         for attempt in range(tries):
             other = int(np.argsort(logits[b])[-2]) if attempt == 0 else int(rng.choice(
@@ -188,12 +211,20 @@ def adversarial_flips(model: FloatModel, bundle: Bundle, texts: list[str], rng: 
             g = gap_gradient(layers, centre, top, other) if attempt < 2 else rng.normal(size=centre.shape)
             sign = -np.sign(g)  # move each coordinate against the gap
             kept_rows = deq[kept] + sign * (bound.radius[kept, None] * shrink * (1 - 1e-9))  # (n, W)
-            score = pool_rows @ g  # (P,)
-            pick = pool_rows[score.argmin()] if attempt < 3 else pool_rows[rng.integers(len(pool))]
-            pick = centre + shrink * (pick - centre)
-            options = range(u + 1) if model.oov_policy == "skip" else [u]  # how many unknown tokens were float rows
+            picks = []  # per unknown token that could have been a row: the row pushing hardest, or a random one
+            for slot in token_slots:
+                allowed = np.flatnonzero((pool_slot == slot) | (pool_slot == -2))
+                if not allowed.size:
+                    continue  # a listed absent token or an empty bucket: it was no float row
+                score = pool_rows[allowed] @ g
+                pick = pool_rows[allowed[score.argmin()]] if attempt < 3 else pool_rows[rng.choice(allowed)]
+                picks.append(centre + shrink * (pick - centre))
+            picks.sort(key=lambda r: float(r @ g))
+            m = len(picks)
+            # how many unknown tokens were float rows: a skip float model any number, an unk one every token
+            options = range(m + 1) if model.oov_policy == "skip" else [m]
             for k in options:
-                table = np.vstack([kept_rows, np.repeat(pick[None, :], k, axis=0)]).astype(np.float32)  # (n + k, W)
+                table = np.vstack([kept_rows, *[p[None, :] for p in picks[:k]]]).astype(np.float32)  # (n + k, W)
                 z = forward_logits(table, layers, np.arange(n + k)[None, :], np.array([n + k]))[0]
                 attacked += attempt == 0 and k == options[0]
                 flips += int(z.argmax() != top)
@@ -229,9 +260,7 @@ def test_adversary_has_teeth(tmp_path, monkeypatch):
     honest = certify.read_envelope
 
     def shrunk(b):
-        env = honest(b)
-        mid, half = (env.lo + env.hi) / 2, (env.hi - env.lo) / 2
-        return replace(env, lo=mid - 0.1 * half, hi=mid + 0.1 * half)
+        return shrink_envelope(honest(b), 0.1)
 
     monkeypatch.setattr(certify, "read_envelope", shrunk)
     attacked, flips = adversarial_flips(model, bundle, texts, rng)
@@ -374,9 +403,77 @@ def test_glove_400k_certified_texts_have_the_float_label(tmp_path):
     save_model(model, tmp_path / "model")
     stream = scenario.write_jsonl(tmp_path / "stream.jsonl", scenario.generate_stream(3000))
     bundle = decode_bundle(pack_model(tmp_path / "model", None, PackOptions(corpora=(str(stream),))).data)
-    assert bundle.manifest["unknown"]["rows"] > 390_000
+    assert bundle.manifest["unknown"]["rows"] > 390_000 and "buckets" in bundle.manifest["unknown"]
     texts = [r["text"] for r in data["test"]]
     report = certify_texts(model, bundle, texts)
     assert report.rows.holds and report.certified_disagreements == 0 and report.share > 0.5
     assert (~report.covered).sum() > 20
     assert containment_violation(model, bundle, texts) <= 0.0
+
+
+# --- the envelope by token: hash buckets and absent tokens -------------------------------------------------------
+
+
+def test_hash_is_fnv1a_32():
+    """FNV-1a 32-bit test vectors (Fowler, Noll, Vo; the FNV reference test suite): "", "a", "foobar"."""
+    assert [certify.hash_token(t) for t in ("", "a", "foobar")] == [0x811C9DC5, 0xE40C292C, 0xBF9CF968]
+
+
+def test_bucket_steps_round_outward():
+    """The uint8 steps decode (the device's exact float64 expression) to bounds holding every bucket's rows,
+    also for bounds that sit exactly on, or one ulp beside, a step."""
+    from danpack.pack.envelope import encode_buckets
+
+    rng = np.random.default_rng(8)
+    lo, hi = np.array([-3.0, 0.0, 1e-30, -1e6]), np.array([5.0, 1e-300, 1e-30, 7.5e6])  # (W,): one width 0
+    unit = (hi - lo) / 254.0
+    k = rng.integers(0, 255, size=(200, 4)).astype(np.float64)  # (K, W)
+    b_lo = np.clip(lo + k * unit, lo, hi)
+    b_lo[::3] = np.clip(np.nextafter(b_lo[::3], -np.inf), lo, hi)
+    b_hi = np.clip(b_lo + rng.random((200, 4)) * (hi - b_lo), b_lo, hi)
+    b_hi[::4] = np.clip(np.nextafter(b_hi[::4], np.inf), b_lo[::4], hi)
+    b_lo[5], b_hi[5] = np.inf, -np.inf  # an empty bucket
+    steps = np.frombuffer(encode_buckets(lo, hi, b_lo, b_hi), np.uint8).reshape(200, 2, 4)
+    got = certify.decode_buckets(steps, lo, hi)  # (K, 2, W)
+    full = np.isfinite(b_lo).all(axis=1)
+    assert (got[full, 0] <= b_lo[full]).all() and (got[full, 1] >= b_hi[full]).all()
+    assert (steps[5] == 255).all() and np.isinf(got[5]).all()
+    assert (got[full, 1] - got[full, 0] <= (b_hi[full] - b_lo[full]) + 2.0 * unit + 1e-12).all()  # and tight
+
+
+def test_absent_list_has_teeth(tmp_path, monkeypatch):
+    """Listing pruned tokens as absent (they were float rows) breaks the bound: containment catches it; the
+    honest list leaves it holding, and a token whose hash a float token shares is never listed."""
+    from danpack.pack.envelope import EnvelopeOptions, unknown_envelope
+
+    rng = np.random.default_rng(17)
+    model = random_model(rng, vocab=80, dim=10, hidden=(6,), out_scale=4.0)
+    bundle = pack_pruned(model, tmp_path, rng, 12, fold="no")
+    assert "absent" in bundle.manifest["unknown"] and "buckets" in bundle.manifest["unknown"]
+    texts = mixed_texts(rng, model, bundle, 300)
+    assert containment_violation(model, bundle, texts) <= 0.0
+    honest = certify.read_envelope
+    pruned = [t for t in model.vocab if t not in set(bundle.vocab)]
+    monkeypatch.setattr(certify, "read_envelope", lambda b: replace(
+        honest(b), absent=honest(b).absent | {certify.hash_token(t) for t in pruned}))
+    assert containment_violation(model, bundle, texts) > 0.0
+    monkeypatch.undo()
+    field = unknown_envelope(model, np.arange(12), False, (("w40", 5), ("zzz", 3)), EnvelopeOptions())
+    assert np.frombuffer(field["absent"], "<u4").tolist() == [certify.hash_token("zzz")]  # w40 is a float token
+
+
+def test_absent_list_needs_a_skipping_float_model(tmp_path):
+    """An unk float model gives a word it never knew its unknown row: the packer lists nothing, the reader
+    refuses a list there."""
+    from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
+    from danpack.runtime.errors import BundleError
+
+    rng = np.random.default_rng(6)
+    model = random_model(rng, vocab=40, dim=6, hidden=(4,), unk=True)
+    bundle = pack_pruned(model, tmp_path, rng, 10, fold="no", pruned="unk")
+    field = bundle.manifest["unknown"]
+    assert "absent" not in field and not field["skipped"] and "buckets" in field
+    manifest = {**bundle.manifest, "unknown": {**field, "absent": np.array([1, 2], "<u4").tobytes()}}
+    data = encode_bundle(encode_payload(manifest, encode_vocab(list(bundle.vocab)), bundle.graph, dict(bundle.tensors)))
+    with pytest.raises(BundleError, match="only where skipped is true"):
+        decode_bundle(data, "crafted")

@@ -7,6 +7,7 @@ a valid checksum; `numpy.argmax` / a plain softmax for predict; Python's import 
 
 from __future__ import annotations
 
+import copy
 import json
 import os
 import subprocess
@@ -135,7 +136,7 @@ def test_garbage_files_are_bundle_errors(tmp_path, bundle_path, backend):
 def _rewrite(bundle_path: Path, out: Path, edit) -> Path:
     """Decode a bundle, let `edit(manifest, tensors)` change it, re-encode with a valid checksum."""
     b = read_bundle(bundle_path)
-    manifest = json.loads(json.dumps(b.manifest))  # a deep, mutable copy
+    manifest = copy.deepcopy(b.manifest)  # a deep, mutable copy (it may hold bytes: the envelope's parts)
     tensors = {k: np.array(v) for k, v in b.tensors.items()}
     edit(manifest, tensors)
     out.write_bytes(encode_bundle(encode_payload(manifest, encode_vocab(list(b.vocab)), b.graph, tensors)))

@@ -165,8 +165,12 @@ def _describe_envelope(bundle: Bundle) -> dict | None:
     env = read_envelope(bundle)
     if env is None:
         return None
+    buckets = env.buckets[np.isfinite(env.buckets[:, 0]).all(axis=1)] if env.buckets is not None else None
     return {"rows": env.rows, "skipped": env.skipped,
-            "mean_width": float((env.hi - env.lo).mean()) if env.rows else 0.0}
+            "mean_width": float((env.hi - env.lo).mean()) if env.rows else 0.0,
+            "buckets": env.hash_buckets, "absent_tokens": len(env.absent),
+            "bucket_mean_width": float((buckets[:, 1] - buckets[:, 0]).mean()) if buckets is not None and
+            buckets.size else None}
 
 
 def describe_bound(worst: dict) -> list[str]:
@@ -191,7 +195,11 @@ def _envelope_line(env: dict | None) -> str:
         return "tokens the bundle does not know: the float model never knew them either (every row kept); certified per text"
     return (f"tokens the bundle does not know: each may stand for any of {env['rows']:,} float rows"
             + (" or be left out" if env["skipped"] else "")
-            + f" (envelope, mean width {env['mean_width']:.3g}); texts holding them are certified per text")
+            + f" (envelope, mean width {env['mean_width']:.3g}"
+            + (f"; {env['buckets']} hash buckets, mean width {env['bucket_mean_width']:.3g}"
+               if env.get("bucket_mean_width") is not None else "")
+            + (f"; {env['absent_tokens']:,} listed tokens the float model never knew" if env.get("absent_tokens") else "")
+            + "); texts holding them are certified per text")
 
 
 def _check_pair(model: FloatModel, bundle: Bundle, source: str) -> None:
@@ -289,14 +297,15 @@ def certify_texts(model: FloatModel, bundle: Bundle | str | os.PathLike, texts: 
     parts = []
     for start in range(0, len(texts), BATCH):
         batch = texts[start : start + BATCH]
-        ids, counts, unknown = encode_unknown(encoder, batch)  # (b, T), (b,), (b,)
+        ids, counts, unknown = encode_unknown(encoder, batch, runtime_bound.envelope)  # (b, T), (b,), (b,) or (b, U)
         float_logits = model.predict_logits(batch, float_encoder)  # (b, C)
         packed_logits = backend.run(ids, counts)[1]  # (b, C)
         top2 = np.sort(float_logits.astype(np.float64), axis=1)[:, -2:]  # (b, 2)
         parts.append((
             certify_packed(packer_bound, packed_logits, ids, counts, unknown),
             certify_packed(runtime_bound, packed_logits, ids, counts, unknown),
-            unknown == 0, float_logits.argmax(axis=1), packed_logits.argmax(axis=1), top2[:, 1] - top2[:, 0],
+            (unknown < 0).all(axis=1) if unknown.ndim == 2 else unknown == 0,
+            float_logits.argmax(axis=1), packed_logits.argmax(axis=1), top2[:, 1] - top2[:, 0],
         ))
     empty = (np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, bool), np.zeros(0, np.int64), np.zeros(0, np.int64),
              np.zeros(0))

@@ -42,6 +42,8 @@ def pack_command(
     rank: str = typer.Option("frequency", metavar="frequency|effect", help="Row ranking: frequency (corpus count), or effect (count x how far the row moves the first layer); only with a corpus."),
     measure: bool = typer.Option(True, "--measure/--no-measure", help="Hold out about 1 in 7 corpus texts and choose by measurement (the default); --no-measure: rank on every text and use the fixed rules (coverage 0.995, policy unk when the model has one, else skip)."),
     token_sample: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record before packing."),
+    envelope_buckets: int = typer.Option(16, metavar="N", help="Split the envelope of what a token the bundle does not know may have done into N hash buckets (2 x table width bytes each; 0: one envelope); see the README's bound section."),
+    absent_min_count: int = typer.Option(2, metavar="N", help="List (4 bytes each) the corpus tokens the float model never knew that occur at least N times, so texts holding them can be certified; 0: no list."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress on stderr."),
 ) -> None:
@@ -49,6 +51,7 @@ def pack_command(
     from danpack.files import check_outputs
     from danpack.model import model_files
     from danpack.pack.build import PackOptions, TargetError, pack_model
+    from danpack.pack.envelope import EnvelopeOptions
     from danpack.progress import Steps
     from danpack.textfile import detect_format, format_warning
 
@@ -82,7 +85,8 @@ def pack_command(
                               target_agreement=None if target_agreement is None else parse_share(target_agreement,
                                                                                                   "--target-agreement"),
                               keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold, rank=rank,
-                              measure=measure)
+                              measure=measure, envelope=EnvelopeOptions(buckets=envelope_buckets,
+                                                                        absent_min_count=absent_min_count))
         steps = Steps(5 + (bool(corpus) and measure) + (max_bytes is not None and not (corpus and measure)),
                       quiet=quiet or json_out)
         with interruptible(f"nothing was written ({output} is as it was)"):

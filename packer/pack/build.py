@@ -22,7 +22,7 @@ from danpack.runtime.tokenize import Tokenizer
 
 from danpack import __version__
 from danpack.pack.bundle import encode_bundle, encode_payload, encode_vocab
-from danpack.pack.envelope import unknown_envelope
+from danpack.pack.envelope import EnvelopeOptions, unknown_envelope
 from danpack.files import file_sha256, write_atomic
 from danpack.pack.fold import fold_first_layer, should_fold
 from danpack.model import FloatModel, load_model, model_bytes, model_digest
@@ -64,6 +64,7 @@ class PackOptions:
     quantize: bool = True  # int8 table; False keeps float32 (the unpruned float baseline)
     rank: str = "frequency"  # row ranking: frequency, or effect (count × |W1 (E_t − ē)|; bench/MEASURED.md compares)
     measure: bool = True  # hold out a slice of the corpus and choose by measurement; False: the fixed rules only
+    envelope: EnvelopeOptions = EnvelopeOptions()  # how finely the `unknown` envelope tells tokens apart
 
     def __post_init__(self) -> None:
         if self.coverage is not None and not 0.0 < self.coverage <= 1.0:
@@ -191,7 +192,8 @@ def source_date_epoch() -> int | None:
 
 
 def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str, quantize: bool,
-                 source: dict, options: dict, measured: dict | None = None) -> tuple[bytes, dict[str, int], bool, int, int]:
+                 source: dict, options: dict, measured: dict | None = None,
+                 envelope: EnvelopeOptions = EnvelopeOptions()) -> tuple[bytes, dict[str, int], bool, int, int]:
     """Assemble the bundle bytes for a vocabulary plan; returns (bytes, breakdown, folded, rows, width).
 
     `measured`: the held-out figures and the choice, recorded in the manifest's selection."""
@@ -248,7 +250,8 @@ def build_bundle(model: FloatModel, plan: VocabPlan, policy: str, fold_mode: str
         "packer": f"danpack {__version__}",
         "probe": _probe(tensors["table"], tensors.get("scales"), layers, probe_ids, texts,
                         Encoder(tokenizer, vocab, oov_row)),
-        "unknown": unknown_envelope(model, kept, folded),  # what a token the bundle does not know may have done
+        # what a token the bundle does not know may have done
+        "unknown": unknown_envelope(model, kept, folded, plan.absent, envelope),
     }
     epoch = source_date_epoch()
     if epoch is not None:
@@ -308,7 +311,7 @@ class Prepared:
     def build(self, plan: VocabPlan, policy: str, fold_mode: str, measured: dict | None = None):
         """The bundle bytes of a plan (build_bundle with this pack's source and options)."""
         return build_bundle(self.model, plan, policy, fold_mode, self.options.quantize, self.source,
-                            {**self.pack_record, "pruned": policy}, measured)
+                            {**self.pack_record, "pruned": policy}, measured, self.options.envelope)
 
     def searcher(self, heldout: HeldOut) -> Searcher:
         blank = measured_record(None, "", self.plan, len(heldout))  # the manifest's held-out entry, for the estimate
@@ -349,7 +352,8 @@ def prepare_pack(model_dir: str | os.PathLike, options: PackOptions, steps: Step
                         "outside the held-out slice) holds no token the model knows; check the file, --text-field "
                         f"({options.text_field!r}) and that the corpus is from the model's domain, or pack without "
                         "--corpus to keep every row")
-    pack_record = {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(options).items()}
+    # the envelope options are visible in the manifest's `unknown` field itself (its buckets and absent list)
+    pack_record = {k: (list(v) if isinstance(v, tuple) else v) for k, v in asdict(options).items() if k != "envelope"}
     # names and digests: a changed corpus changes the manifest even when the selection stays the same
     pack_record["corpora"] = [{"name": Path(p).name, "sha256": file_sha256(p)} for p in options.corpora]
     return Prepared(model, source, plan, policies, heldout_texts, pack_record, options)
@@ -368,7 +372,7 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
     fold_rule = "yes" if should_fold(model.embedding.shape[1], model.layers, options.fold) else "no"
     if heldout_texts and options.quantize:
         with steps.step(f"measuring candidates on {len(heldout_texts):,} held-out texts"):
-            searcher = prep.searcher(HeldOut(model, plan, heldout_texts))
+            searcher = prep.searcher(HeldOut(model, plan, heldout_texts, envelope=options.envelope))
             plan, chosen, choice = _choose(model, plan, options, prep.policies, searcher, prep.build, fold_rule)
         policy, fold_mode = chosen.candidate.policy, "yes" if chosen.candidate.folded else "no"
     else:

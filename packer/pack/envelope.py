@@ -6,16 +6,64 @@ table, of the first layer's pre-activation W1·E), the minimum and maximum over 
 does not keep, plus the unknown row when the float model has one. Each bound is widened by the float32
 rounding that row can add to the float model's mean of at most `max_tokens` tokens, so the device needs
 nothing else (runtime/certify.py, `mean_box`). Costs 2 × width floats in the manifest.
+
+Two optional parts let the device narrow it by the token's text (FNV-1a of its UTF-8 bytes, `hash_token`):
+  * `buckets`: the same envelope per hash bucket (rows grouped by their token's hash mod K), as uint8 steps
+    inward from the one envelope, rounded outward: 2 × K × width bytes;
+  * `absent`: hashes of deployment-corpus tokens the float model never knew (a `skip` float model left them
+    out), dropping any hash a float token shares: 4 bytes each.
+Both are sound by construction: every float row the device may meet under a token is inside that token's
+envelope, and a listed hash is no float token's. Together they never take more bytes than keeping the left-out
+rows would (`parts_budget`): past that, keeping the rows is both smaller and exact. Measured in the README's
+bound section.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+from dataclasses import dataclass
+from functools import lru_cache
+
 import numpy as np
 
 from danpack.model import FloatModel
-from danpack.runtime.certify import gamma, gamma64
+from danpack.runtime.errors import DanpackError
+from danpack.runtime.certify import decode_buckets, gamma, gamma64, hash_token
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
+
+
+@dataclass(frozen=True)
+class EnvelopeOptions:
+    """How finely the `unknown` envelope tells tokens apart (README, "The guaranteed drift bound", measured)."""
+
+    buckets: int = 16  # hash buckets (0: one envelope); 2 × width bytes each
+    absent_min_count: int = 2  # list corpus tokens the float model never knew seen this often (0: no list)
+    absent_max: int = 8192  # at most this many listed, most frequent first; 4 bytes each
+
+    def __post_init__(self) -> None:
+        for name, value in (("envelope-buckets", self.buckets), ("absent-min-count", self.absent_min_count),
+                            ("absent-max", self.absent_max)):
+            if value < 0:
+                raise DanpackError(f"{name} {value} must be 0 or more (0 turns that part of the envelope off)")
+
+
+@lru_cache(maxsize=2)
+def _token_bytes(vocab: tuple[str, ...]) -> np.ndarray:
+    """(V,) int64: bytes each token takes in the bundle's vocabulary (UTF-8 and its newline)."""
+    return np.fromiter((len(t.encode("utf-8")) + 1 for t in vocab), dtype=np.int64, count=len(vocab))
+
+
+def parts_budget(model: FloatModel, width: int, rows: int, token_bytes: int) -> int:
+    """Bytes the by-token parts may take: what keeping the `rows` left-out rows would cost (an int8 row, its
+    scale, its token). Beyond that, keeping the rows (exact) beats describing them."""
+    return rows * (width + 4) + token_bytes
+
+
+@lru_cache(maxsize=2)
+def _token_hashes(vocab: tuple[str, ...]) -> np.ndarray:
+    """(V,) uint32 FNV-1a of every float token (cached: a pack builds many candidate bundles)."""
+    return np.fromiter((hash_token(t) for t in vocab), dtype=np.uint32, count=len(vocab))
 
 
 def _row_bounds(model: FloatModel, rows: np.ndarray, folded: bool) -> tuple[np.ndarray, np.ndarray]:
@@ -42,35 +90,116 @@ def _field(rows: int, lo: np.ndarray, hi: np.ndarray, model: FloatModel) -> dict
             "lo": [float(x) for x in lo], "hi": [float(x) for x in hi]}
 
 
+def encode_buckets(lo: np.ndarray, hi: np.ndarray, bucket_lo: np.ndarray, bucket_hi: np.ndarray) -> bytes:
+    """(W,) the one envelope as stored, (K, W) each bucket's bounds (+inf / -inf: empty) -> (K, 2, W) uint8 bytes
+    whose decoding (runtime/certify.py `decode_buckets`, the device's exact expression) holds every bucket."""
+    unit = (hi - lo) / 254.0  # (W,)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        s_lo = np.where(unit > 0, np.floor((bucket_lo - lo) / unit), 0.0)  # (K, W)
+        s_hi = np.where(unit > 0, np.floor((hi - bucket_hi) / unit), 0.0)
+    steps = np.stack([np.clip(np.nan_to_num(s_lo), 0, 254), np.clip(np.nan_to_num(s_hi), 0, 254)], axis=1)
+    steps = steps.astype(np.uint8)  # (K, 2, W)
+    empty = ~np.isfinite(bucket_lo).all(axis=1)  # (K,)
+    steps[empty] = 0
+    for _ in range(255):  # rounding outward: step in until the decoded bound holds the bucket's
+        got = decode_buckets(steps, lo, hi)  # (K, 2, W)
+        loose = (got[:, 0] > bucket_lo) | (got[:, 1] < bucket_hi)  # (K, W)
+        loose[empty] = False
+        if not loose.any():
+            break
+        steps[:, 0][(got[:, 0] > bucket_lo) & (steps[:, 0] > 0)] -= 1  # step 0 decodes to lo itself: holds
+        steps[:, 1][(got[:, 1] < bucket_hi) & (steps[:, 1] > 0)] -= 1
+    steps[empty] = 255
+    return steps.tobytes()
+
+
+def _absent_hashes(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> np.ndarray:
+    """(N,) uint32 hashes of the corpus tokens the float model never knew, most frequent first, none a float
+    token's, each once."""
+    if model.oov_policy != "skip" or not options.absent_min_count or not options.absent_max:
+        return np.zeros(0, np.uint32)  # an unk float model gave such a token its unknown row: nothing to gain
+    taken = np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count], dtype=np.uint32)
+    taken = taken[~np.isin(taken, _token_hashes(tuple(model.vocab)))]
+    _, first = np.unique(taken, return_index=True)
+    return taken[np.sort(first)][: options.absent_max]
+
+
 def _width(model: FloatModel, folded: bool) -> int:
     return model.layers[0].weight.shape[0] if folded else model.embedding.shape[1]
 
 
-def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool) -> dict:
-    """The manifest field: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]} for the kept float rows."""
+def _bucket_bounds(rows: np.ndarray, row_lo: np.ndarray, row_hi: np.ndarray, hashes: np.ndarray,
+                   k: int) -> tuple[np.ndarray, np.ndarray]:
+    """(r,) float rows with their (r, W) bounds -> (K, W) per-bucket minimum and maximum (+inf / -inf: none)."""
+    b_lo, b_hi = np.full((k, row_lo.shape[1]), np.inf), np.full((k, row_lo.shape[1]), -np.inf)  # (K, W)
+    if rows.size:
+        bucket = (hashes[rows] % np.uint32(k)).astype(np.int64)  # (r,)
+        order = np.argsort(bucket, kind="stable")
+        sorted_b = bucket[order]
+        starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each bucket present
+        at = sorted_b[starts]
+        b_lo[at] = np.minimum.reduceat(row_lo[order], starts, axis=0)
+        b_hi[at] = np.maximum.reduceat(row_hi[order], starts, axis=0)
+    return b_lo, b_hi
+
+
+def _finish(model: FloatModel, folded: bool, rows: int, lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray | None,
+            b_hi: np.ndarray | None, ranked: np.ndarray, budget: int) -> dict:
+    """The manifest field from the bounds: the unknown row joins every bucket, the buckets are encoded, then the
+    most frequent absent hashes, all within `budget` bytes (buckets first, as they measured most per byte)."""
+    field = _field(rows, lo, hi, model)
+    if rows and b_lo is not None and b_lo.size <= budget // 2:
+        if model.oov_policy == "unk":  # the unknown row may stand behind any token, whatever its hash
+            u_lo, u_hi = _row_bounds(model, np.array([model.vocab.index(model.unk_token)]), folded)
+            b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
+        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
+        budget -= len(field["buckets"])
+    listed = np.sort(ranked[: max(budget, 0) // 4]) if rows else ranked[:0]
+    if listed.size:
+        field["absent"] = listed.astype("<u4").tobytes()
+    return field
+
+
+def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
+                     options: EnvelopeOptions = EnvelopeOptions()) -> dict:
+    """The manifest field for the kept float rows: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]},
+    plus "buckets" (bytes) and "absent" (bytes) as `options` ask; `absent`: (token, corpus count) pairs of tokens
+    the float model does not know, most frequent first."""
     left = np.ones(len(model.vocab), dtype=bool)  # (V,)
     left[np.asarray(kept, dtype=np.int64)] = False
     if model.oov_policy == "unk":  # a word the float model does not know takes its unknown row
         left[model.vocab.index(model.unk_token)] = True
     rows = np.flatnonzero(left)  # (P,): every row left out, reachable or not (no reliance on the reachability test)
-    width = _width(model, folded)
+    width, k = _width(model, folded), options.buckets
     lo, hi = np.full(width, np.inf), np.full(width, -np.inf)  # (W,)
+    b_lo, b_hi = (np.full((k, width), np.inf), np.full((k, width), -np.inf)) if k else (None, None)  # (K, W)
+    hashes = _token_hashes(tuple(model.vocab)) if k else None
     for start in range(0, rows.size, CHUNK_ROWS):
-        row_lo, row_hi = _row_bounds(model, rows[start : start + CHUNK_ROWS], folded)  # (k, W) each
+        part = rows[start : start + CHUNK_ROWS]
+        row_lo, row_hi = _row_bounds(model, part, folded)  # (r, W) each
         lo, hi = np.minimum(lo, row_lo.min(axis=0)), np.maximum(hi, row_hi.max(axis=0))
-    return _field(rows.size, lo, hi, model)
+        if k:
+            c_lo, c_hi = _bucket_bounds(part, row_lo, row_hi, hashes, k)
+            b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
+    budget = parts_budget(model, width, rows.size, int(_token_bytes(tuple(model.vocab))[rows].sum()))
+    return _finish(model, folded, rows.size, lo, hi, b_lo, b_hi, _absent_hashes(model, absent, options), budget)
 
 
 class EnvelopeIndex:
     """`unknown_envelope` of every prefix of a ranking at once: the candidates a pack measures keep
     `order[:keep]`, so the rows left out are `order[keep:]` plus a fixed rest. Block minima and maxima over the
-    ranking (suffix-combined) make each prefix cost one block of rows instead of the whole table."""
+    ranking (suffix-combined; per hash bucket too) make each prefix cost one block of rows instead of the table."""
 
     BLOCK = 1024  # ranked rows per block
 
-    def __init__(self, model: FloatModel, order: np.ndarray, folded: bool) -> None:
+    def __init__(self, model: FloatModel, order: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
+                 options: EnvelopeOptions = EnvelopeOptions()) -> None:
         self.model, self.order, self.folded = model, np.asarray(order, np.int64), folded
-        width, n = _width(model, folded), len(self.order)
+        width, n, k = _width(model, folded), len(self.order), options.buckets
+        self.k, self.ranked, self.width = k, _absent_hashes(model, absent, options), width
+        token_bytes = _token_bytes(tuple(model.vocab))
+        self.suffix_bytes = np.append(np.cumsum(token_bytes[self.order][::-1])[::-1], 0)  # (n + 1,): order[i:]
+        hashes = _token_hashes(tuple(model.vocab)) if k else None
         fixed = np.ones(len(model.vocab), dtype=bool)  # (V,): left out whatever the cut
         fixed[self.order] = False
         self.unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
@@ -80,29 +209,54 @@ class EnvelopeIndex:
         where = np.flatnonzero(self.order == self.unk) if self.unk is not None else np.zeros(0, np.int64)
         self.unk_position = int(where[0]) if where.size else None  # the unknown row's place in the ranking
         self.fixed_rows = int(rest.size)
+        self.fixed_bytes = int(token_bytes[rest].sum())
         self.fixed_lo, self.fixed_hi = np.full(width, np.inf), np.full(width, -np.inf)
+        self.fixed_b = (np.full((k, width), np.inf), np.full((k, width), -np.inf))  # (K, W) each
         for start in range(0, rest.size, CHUNK_ROWS):
-            lo, hi = _row_bounds(model, rest[start : start + CHUNK_ROWS], folded)
+            part = rest[start : start + CHUNK_ROWS]
+            lo, hi = _row_bounds(model, part, folded)
             self.fixed_lo, self.fixed_hi = np.minimum(self.fixed_lo, lo.min(0)), np.maximum(self.fixed_hi, hi.max(0))
+            if k:
+                c_lo, c_hi = _bucket_bounds(part, lo, hi, hashes, k)
+                self.fixed_b = (np.minimum(self.fixed_b[0], c_lo), np.maximum(self.fixed_b[1], c_hi))
         blocks = (n + self.BLOCK - 1) // self.BLOCK
         lo_b, hi_b = np.full((blocks + 1, width), np.inf), np.full((blocks + 1, width), -np.inf)  # (B + 1, W)
+        blo_b, bhi_b = np.full((blocks + 1, k, width), np.inf), np.full((blocks + 1, k, width), -np.inf)  # (B + 1, K, W)
         for b in range(blocks):
-            lo, hi = _row_bounds(model, self.order[b * self.BLOCK : (b + 1) * self.BLOCK], folded)
+            part = self.order[b * self.BLOCK : (b + 1) * self.BLOCK]
+            lo, hi = _row_bounds(model, part, folded)
             lo_b[b], hi_b[b] = lo.min(0), hi.max(0)
+            if k:
+                blo_b[b], bhi_b[b] = _bucket_bounds(part, lo, hi, hashes, k)
         # suffix: block b onwards
         self.suffix_lo = np.minimum.accumulate(lo_b[::-1], axis=0)[::-1]  # (B + 1, W)
         self.suffix_hi = np.maximum.accumulate(hi_b[::-1], axis=0)[::-1]
+        self.suffix_b_lo = np.minimum.accumulate(blo_b[::-1], axis=0)[::-1]  # (B + 1, K, W)
+        self.suffix_b_hi = np.maximum.accumulate(bhi_b[::-1], axis=0)[::-1]
+        self.hashes = hashes
 
     def envelope(self, keep: int) -> dict:
         """The manifest field of a bundle keeping `order[:keep]` (equal to `unknown_envelope` of those rows)."""
         keep = min(max(int(keep), 0), len(self.order))
         block = (keep + self.BLOCK - 1) // self.BLOCK  # first whole block past the cut
         lo, hi = np.minimum(self.fixed_lo, self.suffix_lo[block]), np.maximum(self.fixed_hi, self.suffix_hi[block])
+        b_lo, b_hi = None, None
+        if self.k:
+            b_lo = np.minimum(self.fixed_b[0], self.suffix_b_lo[block])
+            b_hi = np.maximum(self.fixed_b[1], self.suffix_b_hi[block])
         partial = self.order[keep : block * self.BLOCK]
         if partial.size:
             p_lo, p_hi = _row_bounds(self.model, partial, self.folded)
             lo, hi = np.minimum(lo, p_lo.min(0)), np.maximum(hi, p_hi.max(0))
+            if self.k:
+                c_lo, c_hi = _bucket_bounds(partial, p_lo, p_hi, self.hashes, self.k)
+                b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
         # left out: the fixed rows and order[keep:]; the unknown row is in both when it is ranked past the cut
         past = self.unk_position is not None and self.unk_position >= keep
         rows = self.fixed_rows + len(self.order) - keep - int(past)
-        return _field(rows, lo, hi, self.model)
+        # the unknown row counted once: it is in the fixed rows, and in order[keep:] when ranked past the cut
+        spent = self.fixed_bytes + int(self.suffix_bytes[keep])
+        if past:
+            spent -= int(_token_bytes(tuple(self.model.vocab))[self.unk])
+        budget = parts_budget(self.model, self.width, rows, spent)
+        return _finish(self.model, self.folded, rows, lo, hi, b_lo, b_hi, self.ranked, budget)

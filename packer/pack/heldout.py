@@ -28,7 +28,7 @@ from danpack.runtime.forward import Layer, forward_logits, softmax
 from danpack.runtime.tokenize import Tokenizer
 
 from danpack.model import FloatModel
-from danpack.pack.envelope import EnvelopeIndex
+from danpack.pack.envelope import EnvelopeIndex, EnvelopeOptions
 from danpack.pack.fold import fold_first_layer
 from danpack.pack.quantize import quantize_rows
 from danpack.pack.vocab import VocabPlan
@@ -116,15 +116,19 @@ class _Table:
 class HeldOut:
     """The held-out slice, tokenized once against the float vocabulary, and the float model's answers on it."""
 
-    def __init__(self, model: FloatModel, plan: VocabPlan, texts: list[str], gold: np.ndarray | None = None) -> None:
+    def __init__(self, model: FloatModel, plan: VocabPlan, texts: list[str], gold: np.ndarray | None = None,
+                 envelope: EnvelopeOptions = EnvelopeOptions()) -> None:
         self.model, self.plan, self.texts, self.gold = model, plan, texts, gold  # gold: (N,) class ids or None
+        self.envelope_options = envelope
         tokenize = Tokenizer(model.tokenizer).tokenize
         index = {t: i for i, t in enumerate(model.vocab)}
-        row_lists = [[index.get(t, -1) for t in tokenize(x)] for x in texts]
+        token_lists = [tokenize(x) for x in texts]
+        row_lists = [[index.get(t, -1) for t in tokens] for tokens in token_lists]
         # shortest first: batches of similar lengths pad little (the figures do not depend on the order)
         by_length = sorted(range(len(texts)), key=lambda i: len(row_lists[i]))
         texts = [texts[i] for i in by_length]
         row_lists = [row_lists[i] for i in by_length]
+        self.token_lists = [token_lists[i] for i in by_length]  # the tokens, for the envelope's hash slots
         self.texts = texts
         self.gold = None if gold is None else np.asarray(gold)[by_length]
         counts = np.fromiter(map(len, row_lists), np.int64, len(row_lists))  # (N,)
@@ -160,7 +164,8 @@ class HeldOut:
                 table, layers = fold_first_layer(table, layers)  # (V, H1)
             q, scales = quantize_rows(table)
             worst = row_reach(_stand_in(self.model, q, scales, layers, None))  # (V,)
-            envelopes = EnvelopeIndex(self.model, self.plan.ranked_rows, folded)
+            envelopes = EnvelopeIndex(self.model, self.plan.ranked_rows, folded, self.plan.absent,
+                                      self.envelope_options)
             self._tables[folded] = _Table(q, scales, layers, worst, envelopes)
         return self._tables[folded]
 
@@ -196,12 +201,19 @@ class HeldOut:
             counts = self.counts
         # tokens without a row of their own, as runtime/certify.py `encode_unknown` counts them
         if candidate.policy == "skip":
-            unknown = self.counts - counts  # (N,): left out
+            where = self.valid & ~kept  # (N, T): left out
         else:
-            unknown = ((ids == oov) & self.valid).sum(axis=1)  # (N,): on the out-of-vocabulary row
+            where = self.valid & (ids == oov)  # (N, T): on the out-of-vocabulary row
+        unknown = where.sum(axis=1)  # (N,)
         # 3. forward, figures, certification (the device's box method, with this cut's envelope)
         envelope = t.envelopes.envelope(candidate.keep)
         bound = box_bound(_stand_in(self.model, q, scales, t.layers, oov, envelope))
+        if bound.envelope is not None and bound.envelope.by_token:  # each unknown token's slot, as encode_unknown
+            slots = np.full((len(self), max(int(unknown.max(initial=0)), 1)), -1, np.int64)  # (N, U)
+            slot_of, tokens = bound.envelope.slot_of, self.token_lists
+            slots[np.arange(slots.shape[1])[None, :] < unknown[:, None]] = [
+                slot_of(tokens[i][j]) for i, j in zip(*np.nonzero(where))]
+            unknown = slots
         agree, moved, certified, right = [], [], [], []
         for s in range(0, len(self), BATCH):
             part = slice(s, s + BATCH)

@@ -45,6 +45,9 @@ def size_breakdown(bundle: Bundle) -> dict[str, int]:
 def describe_bundle(bundle: Bundle, vocab: bool = False) -> dict:
     """A JSON-ready description for `danpack inspect`; `vocab` adds the tokens (element i names row i)."""
     manifest = {k: v for k, v in bundle.manifest.items() if k != "probe"}
+    if isinstance(manifest.get("unknown"), dict):  # its byte parts as their sizes: JSON holds no bytes
+        manifest["unknown"] = {k: (f"{len(v)} bytes" if isinstance(v, bytes) else v)
+                               for k, v in manifest["unknown"].items()}
     info = {
         "sha256": bundle.sha256,
         "bytes": bundle.size,

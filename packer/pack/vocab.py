@@ -42,6 +42,7 @@ class VocabPlan:
     unreachable_examples: tuple[str, ...]
     unknown_keep_words: tuple[str, ...]  # keep-words the float model does not know or no text can produce
     has_corpus: bool
+    absent: tuple[tuple[str, int], ...] = ()  # corpus tokens the float model does not know, with counts, most frequent first
 
     @property
     def kept_rows(self) -> np.ndarray:
@@ -97,6 +98,8 @@ def plan_vocab(
             if row is not None:
                 freq[row] = c
     known_tokens = int(freq.sum())
+    absent = tuple(sorted(((t, c) for t, c in counter.items() if t not in index), key=lambda x: (-x[1], x[0]))
+                   ) if corpus is not None else ()
 
     # keep-words as the tokenizer would see them ("Not" -> "not"); those the model lacks, or has only on
     # rows no text can reach, are reported in the user's spelling, never invented
@@ -124,7 +127,7 @@ def plan_vocab(
         ranked_rows=ranked, row_counts=row_counts, forced=len(forced), keep=len(ranked),
         corpus_texts=corpus_texts, corpus_tokens=corpus_tokens, known_tokens=known_tokens,
         unreachable=int(unreachable.sum()), unreachable_examples=examples,
-        unknown_keep_words=unknown_keep, has_corpus=corpus is not None,
+        unknown_keep_words=unknown_keep, has_corpus=corpus is not None, absent=absent,
     )
     return plan.with_keep(keep)
 

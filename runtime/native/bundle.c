@@ -434,12 +434,20 @@ static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t 
     return 0;
 }
 
-/* The optional envelope of the rows the bundle leaves out (runtime/bundle.py _check_unknown); absent in older bundles. */
+/* The optional envelope of the rows the bundle leaves out (runtime/bundle.py _check_unknown); absent in older bundles.
+ * Optional parts: buckets ((K, 2, width) uint8 steps: a bucket all 255, or each coordinate's two steps summing to at
+ * most 254) and absent (strictly ascending little-endian uint32 hashes, only where skipped is true). */
 static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error *err) {
-    static const char *const keys[] = {"hi", "lo", "rows", "skipped"};
     if (!f || f->type == MP_NIL) return 0;
-    if (!dp_mp_keys_are(f, keys, 4))
-        return dp_fail(err, "%s: manifest field 'unknown' must be a map with rows, skipped, lo and hi", src), -1;
+    const dp_mp *buckets = f->type == MP_MAP ? dp_mp_get(f, "buckets") : NULL;
+    const dp_mp *absent = f->type == MP_MAP ? dp_mp_get(f, "absent") : NULL;
+    const char *keys[6] = {"hi", "lo", "rows", "skipped"};
+    size_t nkeys = 4;
+    if (buckets) keys[nkeys++] = "buckets";
+    if (absent) keys[nkeys++] = "absent";
+    if (!dp_mp_keys_are(f, keys, nkeys))
+        return dp_fail(err, "%s: manifest field 'unknown' must be a map with rows, skipped, lo and hi (and optionally "
+                            "buckets, absent)", src), -1;
     const dp_mp *rows = dp_mp_get(f, "rows"), *skipped = dp_mp_get(f, "skipped");
     if (!is_count(rows) || skipped->type != MP_BOOL || !(rows->i || skipped->i))
         return dp_fail(err, "%s: manifest field 'unknown' has rows and skipped other than a count and a bool (a count "
@@ -452,6 +460,34 @@ static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error
     if (!ok)
         return dp_fail(err, "%s: manifest field 'unknown' lo and hi must be %zu finite floats each (the table width), "
                             "lo <= hi", src, width), -1;
+    if (buckets) {
+        if (buckets->type != MP_BIN || buckets->len == 0 || width == 0 || buckets->len % (2 * width))
+            return dp_fail(err, "%s: manifest field 'unknown' buckets must be bytes, a positive multiple of 2 x %zu "
+                                "(the table width)", src, width), -1;
+        for (size_t k = 0; k < buckets->len / (2 * width); k++) {
+            const uint8_t *b = buckets->p + k * 2 * width;
+            int empty = 1;
+            for (size_t i = 0; empty && i < 2 * width; i++) empty = b[i] == 255;
+            for (size_t i = 0; !empty && i < width; i++)
+                if ((unsigned)b[i] + b[width + i] > 254)
+                    return dp_fail(err, "%s: manifest field 'unknown' buckets: a bucket must be all 255 (empty) or have "
+                                        "lo + hi steps <= 254", src), -1;
+        }
+    }
+    if (absent) {
+        if (absent->type != MP_BIN || absent->len == 0 || absent->len % 4 || !skipped->i)
+            return dp_fail(err, "%s: manifest field 'unknown' absent must be bytes, a positive multiple of 4, and only "
+                                "where skipped is true", src), -1;
+        uint32_t prev = 0;
+        for (size_t i = 0; i < absent->len / 4; i++) {
+            const uint8_t *q = absent->p + 4 * i;
+            uint32_t h = (uint32_t)q[0] | (uint32_t)q[1] << 8 | (uint32_t)q[2] << 16 | (uint32_t)q[3] << 24;
+            if (i && h <= prev)
+                return dp_fail(err, "%s: manifest field 'unknown' absent must hold strictly ascending uint32 hashes",
+                               src), -1;
+            prev = h;
+        }
+    }
     return 0;
 }
 

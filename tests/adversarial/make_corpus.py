@@ -432,6 +432,12 @@ CASES: list[tuple[str, str, object]] = [
     ("packer_missing.bundle", "no packer version", lambda b: with_body(b, lambda d: d["manifest"].pop("packer"))),
     ("manifest_too_deep.bundle", "a pack option nested 100 levels deep (json.dumps and repr recurse)",
      lambda b: with_body(b, edit_value(("manifest", "pack", "keep_words"), _deep_list(100)))),
+    ("unknown_buckets_bad_length.bundle", "envelope buckets of 5 bytes for a 6-wide table",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "buckets"), bytes(5)))),
+    ("unknown_buckets_steps_cross.bundle", "an envelope bucket whose lo and hi steps sum past 254",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "buckets"), bytes([200] * 12)))),
+    ("unknown_absent_unsorted.bundle", "absent-token hashes out of order",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"), np.array([2, 1], "<u4").tobytes()))),
     # probe
     ("probe_missing.bundle", "no probe", lambda b: with_body(b, lambda d: d["manifest"].pop("probe"))),
     ("probe_empty.bundle", "a probe with no sequence", lambda b: with_body(b, edit_value(("manifest", "probe"), {"ids": [], "probs": []}))),
