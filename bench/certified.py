@@ -8,7 +8,8 @@ python -m bench.certified --envelopes 0/0,16/0,0/1,16/1 --no-timing   # envelope
 
 Each model is packed with the demo deployment stream (50,000 comments) at the default options; its 2,000
 demo test comments are answered in calls of 256 texts, `predict` and `predict_certified` interleaved round
-by round (bench/timing.py), for both runtime backends. Printed: the median seconds per call, the median of
+by round (bench/timing.py), for both runtime backends, the bundle opened from its file with `runtime.load` as
+a user opens it (the native fast path when the compiled part is built; `DANPACK_NATIVE=0` for the Python one). Printed: the median seconds per call, the median of
 the round-by-round ratios, the certified shares (all texts, texts whose tokens are all kept, texts with a
 token the bundle does not know), certified texts whose label differs from the float original's (always 0),
 and the bytes the manifest's `unknown` envelope adds to the bundle. `--envelopes` packs each model once per
@@ -46,7 +47,7 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
     from danpack.pack.envelope import EnvelopeOptions
     from danpack.runtime import certify
     from danpack.runtime.bundle import decode_bundle
-    from danpack.runtime.classifier import Classifier
+    from danpack.runtime.classifier import Classifier, load
 
     stream = work / "stream.txt"
     if not stream.exists():
@@ -59,7 +60,8 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
         if setting:
             buckets, min_count = (int(x) for x in setting.split("/"))
             options = EnvelopeOptions(buckets=buckets, absent_min_count=min_count)
-        bundle = decode_bundle(pack_model(model_dir, None, PackOptions(corpora=(str(stream),), envelope=options)).data)
+        packed = pack_model(model_dir, None, PackOptions(corpora=(str(stream),), envelope=options)).data
+        bundle = decode_bundle(packed)
         report = certify_texts(model, bundle, texts)
         clf = Classifier(bundle, "numpy")
         ids, counts, unknown = certify.encode_unknown(clf.encoder, texts)  # (B,) counts: the drift bound's view
@@ -77,13 +79,15 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
     if not timing:
         return
     batches = [texts[i : i + BATCH] for i in range(0, len(texts) - BATCH + 1, BATCH)]
+    path = work / f"{name}.danpack"
+    path.write_bytes(packed)
     for backend in ("onnxruntime", "numpy"):
-        clf = Classifier(bundle, backend)
+        clf = load(path, backend)  # as a user opens it: the native fast path when the compiled part is there
         calls = {"predict": lambda i: clf.predict(batches[i % len(batches)]),
                  "predict_certified": lambda i: clf.predict_certified(batches[i % len(batches)])}
         times = interleave(calls, ROUNDS, warmup=3)
         ratio = summarize(paired_ratios(times["predict_certified"], times["predict"]))
-        print(f"{backend:12s} batch {BATCH}: predict {np.median(times['predict']) * 1e3:.2f} ms, "
+        print(f"{backend:12s} [{clf.describe()['encoder']}] batch {BATCH}: predict {np.median(times['predict']) * 1e3:.2f} ms, "
               f"predict_certified {np.median(times['predict_certified']) * 1e3:.2f} ms, "
               f"ratio {ratio.median:.2f}x (IQR {ratio.q1:.2f}-{ratio.q3:.2f})", flush=True)
 

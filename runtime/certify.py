@@ -439,28 +439,43 @@ def box_bound(bundle: Bundle, min_radius: np.ndarray | None = None,
                     drift.certifiable, tuple(layers), contrast, envelope)
 
 
-def encode_unknown(encoder: Encoder, texts: Sequence[str],
-                   envelope: Envelope | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def encode_unknown(encoder: Encoder, texts: Sequence[str], envelope: Envelope | None = None,
+                   native=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, unknown): the tokens without a row of
     their own, as (B,) int64 counts, or, when the envelope tells tokens apart (`Envelope.by_token`), as (B, U)
-    int64 slots of those tokens (`Envelope.slot_of`), padded with -1.
+    int64 slots of those tokens (`Envelope.slot_of`), padded with -1. With `native` (runtime/fastpath.py
+    NativeEncoder, same ids) the counts come from the compiled encoder and only texts with an unknown token are
+    tokenized again here, for their slots.
 
     Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
     oov, tokenize, map_tokens, index = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens, encoder.index
     by_token = envelope is not None and envelope.by_token
-    slot_of = envelope.slot_of if by_token else None
-    id_lists, unknown, slots = [], np.zeros(len(texts), dtype=np.int64), []
-    for i, text in enumerate(texts):
-        tokens = tokenize(text)
-        rows = map_tokens(tokens)
-        # skip: an unknown token is left out of `rows`; unk / rest: it sits on the out-of-vocabulary row
-        unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
-        if by_token and unknown[i]:
-            slots.extend(map(slot_of, [t for t in tokens if t not in index] if oov is None else
-                             [t for t in tokens if index.get(t, oov) == oov]))
-        id_lists.append(rows)
-    ids, counts = encode_batch(id_lists)
+
+    def unknown_slots(tokens: list[str]) -> list[int]:
+        return list(map(envelope.slot_of, [t for t in tokens if t not in index] if oov is None else
+                        [t for t in tokens if index.get(t, oov) == oov]))
+
+    encoded = native.encode_counted(texts) if native is not None else None
+    slots: list[int] = []
+    if encoded is not None:
+        ids, counts, _, tokens = encoded  # (B, T), (B,), (B,), (B,)
+        inside = np.arange(ids.shape[1])[None, :] < counts[:, None]  # (B, T)
+        # skip: an unknown token is left out of the ids; unk / rest: it sits on the out-of-vocabulary row
+        unknown = tokens - counts if oov is None else ((ids == oov) & inside).sum(axis=1)  # (B,)
+        if by_token:
+            for i in np.flatnonzero(unknown):  # only the texts with an unknown token, in order
+                slots.extend(unknown_slots(tokenize(texts[i])))
+    else:
+        id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
+        for i, text in enumerate(texts):
+            tokens = tokenize(text)
+            rows = map_tokens(tokens)
+            unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
+            if by_token and unknown[i]:
+                slots.extend(unknown_slots(tokens))
+            id_lists.append(rows)
+        ids, counts = encode_batch(id_lists)
     if not by_token:
         return ids, counts, unknown
     table = np.full((len(texts), max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)

@@ -116,6 +116,11 @@ class Classifier:
     def labels(self) -> tuple[str, ...]:
         return self.bundle.labels
 
+    def _label_names(self, probs: np.ndarray) -> list[str]:
+        """(B, C) probabilities -> the B best labels (the label tuple built once, not once per text)."""
+        labels = self.labels
+        return [labels[i] for i in probs.argmax(axis=1).tolist()]
+
     @property
     def manifest(self) -> dict:
         return self.bundle.manifest
@@ -141,7 +146,7 @@ class Classifier:
     def predict(self, texts: Sequence[str]) -> list[str]:
         """(B,) texts -> B labels."""
         probs = self.predict_proba(texts)
-        return [self.labels[i] for i in probs.argmax(axis=1)]
+        return self._label_names(probs)
 
     def predict_known(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
         """(B,) texts -> (B labels, (B, C) probabilities, (B,) int64 known-token counts). A text with 0 known
@@ -153,7 +158,7 @@ class Classifier:
             probs_parts.append(self.backend.run(ids, counts)[0])  # (b, C)
             known_parts.append(known)
         probs, known = np.concatenate(probs_parts), np.concatenate(known_parts)  # (B, C), (B,)
-        return [self.labels[i] for i in probs.argmax(axis=1)], probs, known
+        return self._label_names(probs), probs, known
 
     @cached_property
     def box_bound(self):
@@ -171,13 +176,14 @@ class Classifier:
         bound, texts = self.box_bound, as_texts(texts)
         probs_parts, certified_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
-            ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS], bound.envelope)  # (b, T), (b,), (b,) or (b, U)
+            ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS], bound.envelope,
+                                                 self.native)  # (b, T), (b,), (b,) or (b, U)
             probs, logits = self.backend.run(ids, counts)  # (b, C), (b, C)
             top = probs.argmax(axis=1)  # (b,)
             certified_parts.append(certify_packed(bound, logits, ids, counts, unknown) & (top == logits.argmax(axis=1)))
             probs_parts.append(probs)
         probs, certified = np.concatenate(probs_parts), np.concatenate(certified_parts)  # (B, C), (B,)
-        return [self.labels[i] for i in probs.argmax(axis=1)], probs, certified
+        return self._label_names(probs), probs, certified
 
 
 def load(path: str | os.PathLike, backend: str = "onnxruntime", threads: int = 1) -> Classifier:

@@ -53,7 +53,7 @@ def _open_library() -> ctypes.CDLL | None:
     lib.dp_scratch_new.restype, lib.dp_scratch_new.argtypes = p, [p]
     lib.dp_scratch_free.restype, lib.dp_scratch_free.argtypes = None, [p]
     lib.dp_encode_flat.restype = ctypes.c_longlong
-    lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, ctypes.POINTER(_Error)]
+    lib.dp_encode_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, i64, ctypes.POINTER(_Error)]
     err = ctypes.POINTER(_Error)
     lib.dp_classify_flat.restype = ctypes.c_int
     lib.dp_classify_flat.argtypes = [p, p, ctypes.c_char_p, p, size, p, p, err]
@@ -144,6 +144,12 @@ class NativeEncoder:
     def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
         """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode, and for
         fewer than MIN_TEXTS texts."""
+        encoded = self.encode_counted(texts)
+        return None if encoded is None else encoded[:3]
+
+    def encode_counted(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
+        """encode_known's (B, T) ids, (B,) counts and (B,) known-token counts, and (B,) each text's token count (what
+        the certification needs to count tokens without a row under `skip`); None as for encode_known."""
         if len(texts) < MIN_TEXTS:
             return None
         try:
@@ -154,21 +160,20 @@ class NativeEncoder:
         offsets = np.zeros(len(parts) + 1, dtype=np.int64)  # (B + 1,)
         np.cumsum(lengths, out=offsets[1:])
         data = b"".join(parts)
-        counts = np.zeros(len(parts), dtype=np.int64)  # (B,)
-        known = np.zeros(len(parts), dtype=np.int64)  # (B,)
+        counts, known, tokens = (np.zeros(len(parts), dtype=np.int64) for _ in range(3))  # (B,) each
         flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
         err = _Error()
         scratch = self._scratch()
         while True:
             total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, len(parts),
                                              flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
-                                             ctypes.byref(err))
+                                             tokens.ctypes.data, ctypes.byref(err))
             if total < 0:
                 raise MemoryError(err.message.decode("utf-8", "replace"))
             if total <= flat.size:
                 break
             flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
-        return (*pad(flat[:total], counts), known)
+        return (*pad(flat[:total], counts), known, tokens)
 
 
 def pad(flat: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

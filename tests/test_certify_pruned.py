@@ -35,7 +35,8 @@ SHIPPED = Path(__file__).resolve().parents[1] / "models_demo" / "shipped"
 
 
 def pack_pruned(model: FloatModel, root: Path, rng: np.random.Generator, common: int, **options) -> Bundle:
-    """Pack with a corpus that holds only the first `common` tokens, so every other row is pruned."""
+    """Pack with a corpus that holds only the first `common` tokens, so every other row is pruned (the bundle is
+    also written to root/pruned.danpack, for `runtime.load`)."""
     root.mkdir(parents=True, exist_ok=True)
     corpus = root / "corpus.txt"
     # "zzz": a corpus word no model knows (listed as absent for a skip float model); "qqq" never appears
@@ -43,6 +44,7 @@ def pack_pruned(model: FloatModel, root: Path, rng: np.random.Generator, common:
     corpus.write_text("\n".join(lines) + "\n", encoding="utf-8")
     save_model(model, root / "model")
     data = pack_model(root / "model", None, PackOptions(corpora=(str(corpus),), coverage=1.0, **options)).data
+    (root / "pruned.danpack").write_bytes(data)
     return decode_bundle(data, "test bundle")
 
 
@@ -477,3 +479,24 @@ def test_absent_list_needs_a_skipping_float_model(tmp_path):
     data = encode_bundle(encode_payload(manifest, encode_vocab(list(bundle.vocab)), bundle.graph, dict(bundle.tensors)))
     with pytest.raises(BundleError, match="only where skipped is true"):
         decode_bundle(data, "crafted")
+
+
+@pytest.mark.parametrize("policy", ["skip", "rest", "unk", "unk-skip"])
+def test_native_counts_are_the_python_counts(tmp_path, policy):
+    """encode_unknown with the compiled encoder (counts from C, only texts with an unknown token tokenized again)
+    gives the Python encoder's ids, counts and bucket slots exactly, for every pruned-token policy."""
+    from danpack.runtime import load
+
+    rng = np.random.default_rng(23)
+    model = random_model(rng, vocab=60, dim=8, hidden=(5,), unk=policy.startswith("unk"))
+    bundle = pack_pruned(model, tmp_path, rng, 12, fold="no", pruned=policy.split("-")[-1])
+    clf = load(tmp_path / "pruned.danpack", backend="numpy")
+    if clf.native is None:
+        pytest.skip(clf.describe()["encoder"])
+    texts = mixed_texts(rng, model, bundle, 120) + ["<unk> zzz", "<unk>", "w1 <unk> qqq"]
+    envelope = clf.box_bound.envelope
+    native = certify.encode_unknown(clf.encoder, texts, envelope, clf.native)
+    python = certify.encode_unknown(clf.encoder, texts, envelope)
+    assert (native[2] != (0 if native[2].ndim == 1 else -1)).any()  # some texts hold unknown tokens
+    for got, want in zip(native, python):
+        np.testing.assert_array_equal(got, want)

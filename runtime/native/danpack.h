@@ -47,11 +47,12 @@ int dp_classify_batch(const dp_bundle *bundle, dp_scratch *scratch, const char *
                       size_t n, float *probs, dp_error *err);
 
 /* n texts, text i being the UTF-8 bytes data[offsets[i] .. offsets[i + 1]), -> their row ids (after the unknown-word
- * policy) one text after another into ids (room for cap), each text's id count into counts and (unless NULL) into
- * known how many of its tokens have a row of their own. Returns the number of ids of all texts: when it exceeds cap,
+ * policy) one text after another into ids (room for cap), each text's id count into counts, (unless NULL) into
+ * known how many of its tokens have a row of their own and (unless NULL) into tokens how many tokens it has. Returns the number of ids of all texts: when it exceeds cap,
  * only cap were written (call again with that much room); -1 on failure. */
 long long dp_encode_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets,
-                         size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err);
+                         size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens,
+                         dp_error *err);
 
 /* n texts as for dp_encode_flat -> n x dp_label_count() probabilities and (unless NULL) logits, row-major. */
 int dp_classify_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets, size_t n,

@@ -212,7 +212,7 @@ int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *text
 }
 
 long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
-                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, dp_error *err) {
+                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens, dp_error *err) {
     dp_scratch *own = NULL;
     if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
     size_t total = 0;
@@ -232,6 +232,7 @@ long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, co
         }
         counts[i] = (int64_t)count;
         if (known) known[i] = (int64_t)found;
+        if (tokens) tokens[i] = (int64_t)s->tok.nspans;
         for (size_t k = 0; k < count; k++, total++)
             if (total < cap) ids[total] = (int64_t)s->ids[k];
     }
