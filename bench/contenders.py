@@ -15,7 +15,6 @@ import numpy as np
 
 from danpack import runtime
 from danpack.model import FloatModel
-from danpack.runtime.bundle import decode_bundle
 from danpack.runtime.classifier import Classifier
 from danpack.runtime.forward import forward_logits, softmax
 
@@ -77,9 +76,11 @@ def float_numpy(model: FloatModel) -> Contender:
                      labels=model.labels)
 
 
-def float_onnx(float_bundle: bytes) -> Contender:
-    """The unpruned float32 bundle (PackOptions(quantize=False, fold="no")) through runtime.Classifier."""
-    return classifier_contender(FLOAT_ONNX, Classifier(decode_bundle(float_bundle, "float bundle"), "onnxruntime", 1))
+def float_onnx(float_bundle: bytes, path: Path) -> Contender:
+    """The unpruned float32 bundle (PackOptions(quantize=False, fold="no")), written to `path` and opened with
+    runtime.load as the packed bundle is (the same encoder, native or Python, on both sides of the ratio)."""
+    path.write_bytes(float_bundle)
+    return classifier_contender(FLOAT_ONNX, runtime.load(path, backend="onnxruntime", threads=1))
 
 
 def packed(path: Path, backend: str) -> Contender:

@@ -33,7 +33,7 @@ def build_contenders(model, float_bundle: bytes, bundle_path: Path, report: Case
     out: dict[str, ct.Contender] = {}
     builders = [
         (ct.FLOAT_NUMPY, lambda: ct.float_numpy(model)),
-        (ct.FLOAT_ONNX, lambda: ct.float_onnx(float_bundle)),
+        (ct.FLOAT_ONNX, lambda: ct.float_onnx(float_bundle, bundle_path.with_name(f"{bundle_path.stem}-float32.danpack"))),
         (ct.TORCH_EAGER, lambda: ct.torch_eager(model)),
         (ct.TORCH_ONNX_BAG, lambda: ct.torch_onnx(model, padded=False)),
         (ct.TORCH_ONNX_PADDED, lambda: ct.torch_onnx(model, padded=True)),

@@ -172,7 +172,9 @@ def render_results(machine: dict, reports: Sequence[CaseReport], targets: Sequen
                  + (" (quick smoke run: sizes and repetitions too small for the figures to mean much)." if quick else "."))
     lines.append("Method, cases and targets: [bench/README.md](README.md). Every ratio compares runs taken side by side "
                  "in the same process (interleaved, rotating order), medians with interquartile ranges; one intra-op "
-                 "thread everywhere; every contender pays for the tokenizer.")
+                 "thread everywhere; every contender pays for the tokenizer. The packed contenders run as `runtime.load` "
+                 "opens a bundle: with the native fast path when the compiled part is built. The C program, the fast "
+                 "path on and off, and their targets: [bench/NATIVE.md](NATIVE.md) (`python -m bench.native`).")
     lines += ["", render_markdown(machine_table(machine))]
     headline = headline_table({r.key: r for r in reports})
     if headline is not None:

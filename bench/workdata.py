@@ -82,7 +82,11 @@ def long_comments(config: BenchConfig, spec: TokenizerSpec, length: int) -> list
 
     Counted with the model's tokenizer without its max_tokens cap, so a 1,000-token text really has 1,000.
     """
-    counter = Tokenizer(TokenizerSpec(spec.normalization, spec.case, spec.pattern, max_tokens=10 * length + 10))
+    counter = Tokenizer(spec)
+
+    def count_tokens(text: str) -> int:  # every token, past max_tokens (tokenize stops there)
+        return len(counter.split(counter.normalize(text)))
+
     pool = [r["text"] for r in scenario.generate_split("sentiment", "test", 2000, config.seed)]
     out, start = [], 0
     for k in range(config.long_texts):
@@ -91,15 +95,15 @@ def long_comments(config: BenchConfig, spec: TokenizerSpec, length: int) -> list
         i = (start + 37 * k) % len(pool)
         while count < length:
             parts.append(pool[i])
-            count += len(counter.tokenize(pool[i]))
+            count += count_tokens(pool[i])
             i = (i + 1) % len(pool)
         words = " ".join(parts).split(" ")
-        while len(counter.tokenize(" ".join(words))) > length:
+        while count_tokens(" ".join(words)) > length:
             words.pop()
-        words += ["ok"] * (length - len(counter.tokenize(" ".join(words))))  # "ok": one token each
+        words += ["ok"] * (length - count_tokens(" ".join(words)))  # "ok": one token each
         text = " ".join(words)
-        if len(counter.tokenize(text)) != length:
-            raise RuntimeError(f"long comment has {len(counter.tokenize(text))} tokens, expected {length}")
+        if count_tokens(text) != length:
+            raise RuntimeError(f"long comment has {count_tokens(text)} tokens, expected {length}")
         out.append(text)
     return out
 
