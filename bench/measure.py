@@ -5,6 +5,8 @@ Each function measures, then appends a formatted table (and its raw figures) to 
 
 from __future__ import annotations
 
+import math
+
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -220,9 +222,13 @@ def profile(bundle_path: Path, texts: Sequence[str], config: BenchConfig, report
         rounds = max(10, config.latency_calls // max(1, b // 8))
         for name, c in (("onnxruntime", clf), ("numpy", nclf)):
             s = stage_split(c, pool, b, rounds)
-            lookup = max(s["encode"] - s["tokenize"], 0.0)
-            rows.append((f"batch {b}, {name}", fmt_seconds(s["tokenize"]), fmt_seconds(lookup), fmt_seconds(s["backend"]), fmt_seconds(s["predict"]),
-                         fmt_percent(s["tokenize"] / s["predict"], 0), fmt_percent(s["encode"] / s["predict"], 0)))
+            if math.isnan(s["tokenize"]):  # the native encoder: one call for all three
+                tok, lookup, share = "in the native call", "in the native call", "-"
+            else:
+                tok, lookup = fmt_seconds(s["tokenize"]), fmt_seconds(max(s["encode"] - s["tokenize"], 0.0))
+                share = fmt_percent(s["tokenize"] / s["predict"], 0)
+            rows.append((f"batch {b}, {name}", tok, lookup, fmt_seconds(s["backend"]), fmt_seconds(s["predict"]),
+                         share, fmt_percent(s["encode"] / s["predict"], 0)))
             if name == "onnxruntime":
                 for k, v in s.items():
                     report.figures[f"profile.{b}.{k}"] = v

@@ -29,9 +29,13 @@ def _get(reports: dict[str, CaseReport], case: str, key: str):
 
 def _stages(f: dict, batch: int) -> str:
     tok, enc, back, total = (f[f"profile.{batch}.{k}"] for k in ("tokenize", "encode", "backend", "predict"))
-    return (f"At batch {batch} a packed predict costs {fmt_seconds(total)} per comment: tokenizer {fmt_seconds(tok)} "
-            f"({fmt_percent(tok / total, 0)}), vocabulary lookup + padding {fmt_seconds(max(enc - tok, 0))}, "
-            f"backend {fmt_seconds(back)} ({fmt_percent(back / total, 0)})")
+    head = f"At batch {batch} a packed predict costs {fmt_seconds(total)} per comment: "
+    if tok != tok:  # NaN: the native encoder tokenizes, looks up and pads in one call
+        head += f"native encoder (tokenizer, lookup, padding) {fmt_seconds(enc)} ({fmt_percent(enc / total, 0)})"
+    else:
+        head += (f"tokenizer {fmt_seconds(tok)} ({fmt_percent(tok / total, 0)}), vocabulary lookup + padding "
+                 f"{fmt_seconds(max(enc - tok, 0))}")
+    return head + f", backend {fmt_seconds(back)} ({fmt_percent(back / total, 0)})"
 
 
 def _where(reports: dict[str, CaseReport], case: str, batch: int) -> str:

@@ -39,6 +39,7 @@ def cold(request: dict) -> dict:
     if what == "packed":
         import numpy  # noqa: F401  (imported before the clock starts, as on a device after boot)
 
+        import danpack.runtime.classifier  # noqa: F401  (the runtime's own modules too: runtime's __init__ is lazy)
         from danpack import runtime
 
         if request["backend"] == "onnxruntime":
