@@ -116,15 +116,15 @@ def test_tokens_ids_and_probabilities_match_python(program, bundles, sms_texts):
             classifier.labels[i] for i, c in zip(python.argmax(axis=1), clear) if c]
 
 
-STREAM_INPUT = (
+AWKWARD_LINES = (  # JSONL lines that test every record rule (also used by tests/test_native_stream.py)
     b'{"text":"great fast charger","id":"c-1","line":3,"label":[1,2.50,{"a":null,"a":-0}],"x":1E5}\n'
     b'{"text":5,"id":7}\n[1,2]\n{"text":"\\ud800 lone \\ud83d\\udd0c","id":null}\n{"id":"x"}\n{bad json\n'
     b'{"text":"a","text":"b","input_line":1,"line":2}\n{"text":"\\u0000"}\n\n   \n{"text":"x"}   \r\n'
     b'{"text":"1e400","n":1e400}\n{"text":"NaN","n":NaN}\n"str"\n{"text":"caf\xc3\xa9","t":"tab\\there"}\n'
     b'{"text":"\xff"}\n{"text":"ok", "deep": [[[[]]]], "big": 123456789012345678901234567890, "f": 0.1, "g": 1e-7}\n'
     b'{"a" 1}\n{"a":1,}\n[1,]\n{"text":"\\x"}\n{"text":"\\u12"}\n{"t":"\x01"}\n{"text":"ok"} x\n'
-    b'{"text":"no newline at the end"}'
 )
+STREAM_INPUT = AWKWARD_LINES + b'{"text":"no newline at the end"}'
 
 
 def _compare_streams(native: bytes, python: bytes) -> None:

@@ -21,19 +21,15 @@ from hypothesis import strategies as st
 
 from danpack.runtime import fastpath, load
 from danpack.runtime.stream import StreamConfig, classify_stream
+from test_native import AWKWARD_LINES
 
 pytestmark = pytest.mark.skipif(
     importlib.util.find_spec("danpack.runtime._native") is None or os.environ.get("DANPACK_NATIVE") == "0",
     reason="the native library was not built by pip install (no C compiler) or DANPACK_NATIVE=0")
 
 AWKWARD = (
-    b'{"text":"great fast charger","id":"c-1","line":3,"label":[1,2.50,{"a":null,"a":-0}],"x":1E5}\n'
-    b'{"text":5,"id":7}\n[1,2]\n{"text":"\\ud800 lone \\ud83d\\udd0c","id":null}\n{"id":"x"}\n{bad json\n'
-    b'{"text":"a","text":"b","input_line":1,"line":2}\n{"text":"\\u0000"}\n\n   \n{"text":"x"}   \r\n'
-    b'{"text":"1e400","n":1e400}\n{"text":"NaN","n":NaN}\n"str"\n{"text":"caf\xc3\xa9","t":"tab\\there"}\n'
-    b'{"text":"\xff"}\n{"text":"ok", "deep": [[[[]]]], "big": 123456789012345678901234567890, "f": 0.1, "g": 1e-7}\n'
-    b'{"a" 1}\n{"a":1,}\n[1,]\n{"text":"\\x"}\n{"text":"\\u12"}\n{"t":"\x01"}\n{"text":"ok"} x\n'
-    b'{"text":"ok","x":"a\\u200bb\\u0085c\\u2028d\\ue000e\\u00adf\\ud83d\\ude00g\\u0378h\\udb40\\udc41i\\udfff\\u007f"}\n'
+    AWKWARD_LINES
+    + b'{"text":"ok","x":"a\\u200bb\\u0085c\\u2028d\\ue000e\\u00adf\\ud83d\\ude00g\\u0378h\\udb40\\udc41i\\udfff\\u007f"}\n'
     b'{"text":"ok","id":[1,"\\u200b\\u0001\\\\\\ud800\\u007f"],"k\\u200b":{"a\\u2028":"\\udfff"}}\n'
     + b'{"text":"deep","x":' + b"[" * 101 + b"]" * 101 + b"}\n"
     + b'{"text":"not deep","x":' + b"[" * 100 + b"]" * 100 + b"}\n"
