@@ -231,11 +231,14 @@ def _deflate_members(path: Path) -> None:
 # resident high-water growth (proc(5) VmHWM, reset through /proc/self/clear_refs; it also sees what C++ libraries
 # such as torch allocate outside Python's allocator). Each must stay within LOADER_FACTOR times the bytes the
 # loader is handed plus a fixed allowance. Measured over these fuzz runs: at most about 37 KB of heap and 57 KB of
-# resident growth beyond LOADER_FACTOR x the input (zip directory, JSON, arrays, allocator pages); the
-# allowances leave room for other allocators and Python versions, and stay far below the bombs drawn (1-16 MiB).
+# resident growth beyond LOADER_FACTOR x the input (zip directory, JSON, arrays, allocator pages) on one machine,
+# but a clean CI clone once measured 2,105,344 bytes for a 1,899-byte .pt (libtorch faulting in code pages of an
+# error path the warm-up had not touched); the allowances leave room for that and for other allocators and Python
+# versions, and stay below the bombs drawn (1-16 MiB) — the 4 MiB resident allowance would still fail the larger
+# ones, and the heap bound (tracemalloc) is the strict one.
 LOADER_FACTOR = 4  # "no more than a few times the file's size" (issue 15)
 HEAP_ALLOWANCE = 128 << 10  # bytes of Python heap beyond LOADER_FACTOR x the input
-RESIDENT_ALLOWANCE = 2 << 20  # bytes of resident growth beyond LOADER_FACTOR x the input
+RESIDENT_ALLOWANCE = 4 << 20  # bytes of resident growth beyond LOADER_FACTOR x the input
 
 
 def _status_bytes(key: str) -> int:

@@ -139,6 +139,15 @@ def _line(draw_kind: int, record: dict, raw: bytes, text: str) -> bytes:
     return text.encode("utf-8", "surrogatepass").replace(b"\n", b" ")
 
 
+def test_floats_next_to_a_power_of_two_are_python_s_shortest(classifiers):
+    """2^-24 as a double: the nearest 16-digit decimal (a tie, rounded to even) does not read back, the one above
+    does; Python's repr writes 5.960464477539063e-08 (found by the property test below on a clean CI clone)."""
+    values = [2.0**-24, 2.0**-96, 2.0**87, 2.0**-1074, 1e23, 5e-324, 0.1, 2.0**-149 * 3]
+    data = json.dumps({"text": "ok", "x": values}).encode() + b"\n"
+    native, python = both_ways(classifiers["numpy"], data, StreamConfig(jsonl=True))
+    assert native == python and b"5.960464477539063e-08" in native[0]
+
+
 @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(lines=st.lists(st.tuples(st.integers(0, 3), _RECORD, st.binary(max_size=20), _TEXT), max_size=12),
        options=st.sampled_from(OPTIONS), backend=st.sampled_from(["numpy", "onnxruntime"]))

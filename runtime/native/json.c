@@ -361,9 +361,46 @@ void sb_json_utf8(sbuf *b, const char *s, size_t n) {
 
 /* shortest digits of v that read back as v (float32 when single): digits (no dot) and decimal exponent of the
  * first digit */
+static int text_reads_back(const char *buf, double v, int single) {
+    return single ? strtof(buf, NULL) == (float)v : strtod(buf, NULL) == v;
+}
+
+/* buf ("d.ddde+XX", prec digits) moved one unit of its last digit up (up) or down, carries and borrows included. */
+static void step_decimal(char *buf, size_t cap, int prec, int up) {
+    char m[24];
+    int k = 0;
+    const char *s = buf;
+    for (; *s && *s != 'e' && k < prec; s++)
+        if (*s >= '0' && *s <= '9') m[k++] = *s;
+    while (*s && *s != 'e') s++;
+    int e = *s ? atoi(s + 1) : 0;
+    int i = k - 1;
+    if (up) {
+        while (i >= 0 && m[i] == '9') m[i--] = '0';
+        if (i >= 0) m[i]++;
+        else m[0] = '1', e++; /* 9.99 -> 10.0: one digit more on the left, the last zero dropped */
+    } else {
+        while (i >= 0 && m[i] == '0') m[i--] = '9';
+        if (i >= 0) m[i]--;
+        if (m[0] == '0') { /* 1.00 -> 0.999: shift left, one more 9 on the right */
+            memmove(m, m + 1, (size_t)k - 1);
+            m[k - 1] = '9';
+            e--;
+        }
+    }
+    m[k] = 0;
+    snprintf(buf, cap, "%c%s%se%c%02d", m[0], k > 1 ? "." : "", m + 1, e < 0 ? '-' : '+', e < 0 ? -e : e);
+}
+
+/* Whether some prec-digit decimal reads back as v; if so, buf holds it. The nearest one first; next to a power of
+ * two the gap below v is half the gap above, so when the nearest lies below (or is a tie rounded down) and does not
+ * read back, the one on the other side may (2^-24 as a double: 5.960464477539063e-08, as Python's repr writes). */
 static int round_trips(double v, int single, int prec, char *buf, size_t cap) {
     snprintf(buf, cap, "%.*e", prec - 1, v);
-    return single ? strtof(buf, NULL) == (float)v : strtod(buf, NULL) == v;
+    if (text_reads_back(buf, v, single)) return 1;
+    double near = strtod(buf, NULL);
+    step_decimal(buf, cap, prec, near < v);
+    return text_reads_back(buf, v, single);
 }
 
 static void shortest(double v, int single, char *digits, int *exp10) {
@@ -472,7 +509,8 @@ static int shortest_f32_fast(float v, char *digits, int *exp10) {
     if (isinf(above)) return 0;
     double mid_lo = (a + (double)below) / 2, mid_hi = (a + (double)above) / 2; /* exact in double */
     int e2;
-    frexp(a, &e2); /* a in [2^(e2-1), 2^e2): floor(log10(a)) is this or one more; candidate() finds which */
+    if (frexp(a, &e2) == 0.5) return 0; /* a power of two: the gap below is half the gap above (round_trips) */
+    /* a in [2^(e2-1), 2^e2): floor(log10(a)) is this or one more; candidate() finds which */
     int e10 = (int)floor((e2 - 1) * 0.30102999566398120);
     uint64_t best = 0;
     int best_e = 0;
