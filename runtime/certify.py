@@ -290,17 +290,32 @@ class Envelope:
         return self.__dict__["_slots"]
 
     def slot_of(self, token: str) -> int:
-        """The slot of a token the bundle does not know: K for a listed absent token, else its bucket."""
+        """The slot of a token the bundle does not know (`slots_of` on its hash), cached per token."""
         cache = self.__dict__.setdefault("_slot_cache", {})
         slot = cache.get(token)
         if slot is None:
-            h = hash_token(token)
-            slot = self.slots.shape[0] - 1 if h in self.absent else (
-                h % self.buckets.shape[0] if self.buckets is not None else 0)
+            slot = int(self.slots_of(np.array([hash_token(token)], dtype=np.uint32))[0])
             if len(cache) >= 65536:  # unknown tokens repeat (typos, names); a stream of new ones stays bounded
                 cache.clear()
             cache[token] = slot
         return slot
+
+    def slots_of(self, hashes: np.ndarray) -> np.ndarray:
+        """(N,) uint32 FNV-1a hashes of tokens the bundle does not know -> (N,) int64 slots: the empty slot for a
+        listed absent token, else its bucket (h mod K), or slot 0 (the one envelope) when the field has no buckets.
+        The one rule for both encoders (the compiled one reports hashes, the Python one computes `hash_token`)."""
+        h = np.asarray(hashes, dtype=np.uint32)  # (N,)
+        empty = self.slots.shape[0] - 1
+        slots = (h % np.uint32(self.buckets.shape[0])).astype(np.int64) if self.buckets is not None else \
+            np.zeros(h.shape, dtype=np.int64)  # (N,)
+        if self.absent:
+            listed = self.__dict__.get("_absent_sorted")
+            if listed is None:
+                listed = np.array(sorted(self.absent), dtype=np.uint32)
+                object.__setattr__(self, "_absent_sorted", listed)
+            at = np.minimum(np.searchsorted(listed, h), listed.size - 1)  # (N,)
+            slots[listed[at] == h] = empty
+        return slots
 
 
 def hash_token(token: str) -> int:
