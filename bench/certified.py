@@ -13,8 +13,8 @@ a user opens it (the native fast path when the compiled part is built; `DANPACK_
 the round-by-round ratios, the certified shares (all texts, texts whose tokens are all kept, texts with a
 token the bundle does not know), certified texts whose label differs from the float original's (always 0),
 and the bytes the manifest's `unknown` envelope adds to the bundle. `--envelopes` packs each model once per
-envelope setting BUCKETS/MIN_COUNT (hash buckets; list corpus tokens the float model never knew seen at least
-MIN_COUNT times, 0: no list) and prints them side by side, with the share the pre-envelope bound certified
+envelope setting BUCKETS/MIN_COUNT[/TAIL[/BITS]] (hash buckets; list corpus tokens the float model never knew seen
+at least MIN_COUNT times, 0: no list; outlier filter for rows beyond the TAIL quantiles, BITS per row; no TAIL: none) and prints them side by side, with the share the pre-envelope bound certified
 ("before": the drift bound on texts whose tokens are all kept, no text with an unknown token).
 """
 
@@ -58,8 +58,10 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
     for setting in envelopes or [""]:
         options = EnvelopeOptions()
         if setting:
-            buckets, min_count = (int(x) for x in setting.split("/"))
-            options = EnvelopeOptions(buckets=buckets, absent_min_count=min_count)
+            parts = setting.split("/")
+            options = EnvelopeOptions(buckets=int(parts[0]), absent_min_count=int(parts[1]),
+                                      outlier_tail=float(parts[2]) if len(parts) > 2 else 0.0,
+                                      outlier_bits=int(parts[3]) if len(parts) > 3 else options.outlier_bits)
         packed = pack_model(model_dir, None, PackOptions(corpora=(str(stream),), envelope=options)).data
         bundle = decode_bundle(packed)
         report = certify_texts(model, bundle, texts)
@@ -69,9 +71,10 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
         before = certify.certify_margins(logits, certify.logit_bounds(certify.drift_bound(bundle), ids, counts))
         before &= unknown == 0
         field = bundle.manifest.get("unknown") or {}
-        print(f"## {name} [buckets {options.buckets}, absent min count {options.absent_min_count}]: "
+        print(f"## {name} [buckets {options.buckets}, absent min count {options.absent_min_count}, outlier tail "
+              f"{options.outlier_tail}, {options.outlier_bits} bits]: "
               f"{bundle.size:,} bytes, {len(bundle.vocab):,} rows, envelope {envelope_bytes(bundle):,} bytes "
-              f"({envelope_bytes(bundle) / bundle.size:.2%}; {len(field.get('absent', b'')) // 4:,} absent tokens); "
+              f"({envelope_bytes(bundle) / bundle.size:.2%}; {len(field.get('absent', b'')) // 4:,} absent tokens, outlier filter {len((field.get('outliers') or {}).get('filter', b'')):,} B); "
               f"before {before.mean():.2%}, certified {report.share:.2%} of {report.texts:,} "
               f"(all kept {float(report.certified[report.covered].mean()):.2%}, with unknown tokens "
               f"{report.share_of_uncovered or 0.0:.2%}); certified with another label than the float original: "
@@ -96,7 +99,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--model", action="append", default=[], help="NAME=DIR of a float model (repeatable)")
     parser.add_argument("--work", default="bench/out/certified", help="where the deployment stream is written")
-    parser.add_argument("--envelopes", default="", help="BUCKETS/MIN_COUNT settings, comma-separated (default: the "
+    parser.add_argument("--envelopes", default="", help="BUCKETS/MIN_COUNT[/TAIL[/BITS]] settings, comma-separated (default: the "
                         "packer's default only); timing runs on the last")
     parser.add_argument("--no-timing", action="store_true", help="certified shares only")
     args = parser.parse_args()

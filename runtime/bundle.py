@@ -51,7 +51,9 @@ PROBE_KEYS = {"ids", "probs", "texts", "text_probs"}
 MAX_PROBE_TEXTS, MAX_PROBE_TEXT_CHARS = 32, 1 << 14  # the packer writes at most 6 texts of about 16 tokens
 OUTER_KEYS = {"format", "version", "sha256", "payload"}
 PAYLOAD_KEYS = {"graph", "manifest", "tensors", "vocab"}
-UNKNOWN_KEYS = {"rows", "skipped", "lo", "hi", "buckets", "absent"}  # the manifest's `unknown` field
+UNKNOWN_KEYS = {"rows", "skipped", "lo", "hi", "buckets", "absent", "outliers"}  # the manifest's `unknown` field
+OUTLIER_KEYS = {"filter", "probes"}  # its `outliers` map: a Bloom filter of tokens outside the buckets
+MAX_PROBES = 16  # probes per token in that filter
 ONNX_DTYPES = {"float32": 1, "int8": 3}  # TensorProto.DataType: FLOAT = 1, INT8 = 3 (onnx.proto)
 GRAPH_INPUTS, GRAPH_OUTPUTS = ("ids", "counts"), ("probs", "logits")  # what the backends feed and fetch
 # The operators packer/graph.py writes (default ONNX domain); tests/test_graph.py keeps the two in step.
@@ -403,11 +405,13 @@ def _check_description(fail, m: dict) -> None:
 def _check_unknown(fail, field: object, width: int) -> None:
     """The optional envelope of tokens the bundle does not know (runtime/certify.py); absent in older bundles.
     Optional parts: `buckets` ((K, 2, width) uint8 steps; a bucket is all 255 or each coordinate's two steps sum
-    to at most 254) and `absent` (strictly ascending uint32 hashes; only for a float model that skips)."""
+    to at most 254), `absent` (strictly ascending uint32 hashes; only for a float model that skips) and `outliers`
+    ({filter: bytes, probes: 1..16}; only with buckets)."""
     if field is None:
         return
     if not isinstance(field, dict) or not {"rows", "skipped", "lo", "hi"} <= set(field) <= UNKNOWN_KEYS:
-        raise fail("field 'unknown' must be a map with rows, skipped, lo and hi (and optionally buckets, absent)")
+        raise fail("field 'unknown' must be a map with rows, skipped, lo and hi (and optionally buckets, absent, "
+                   "outliers)")
     rows, skipped, lo, hi = field["rows"], field["skipped"], field["lo"], field["hi"]
     if not _is_count(rows) or not isinstance(skipped, bool) or not (rows or skipped):
         raise fail(f"field 'unknown' has rows {_show(rows)} and skipped {_show(skipped)}, expected a count and a bool "
@@ -429,6 +433,13 @@ def _check_unknown(fail, field: object, width: int) -> None:
             raise fail("field 'unknown' absent must be bytes, a positive multiple of 4, and only where skipped is true")
         if (np.diff(np.frombuffer(absent, "<u4").astype(np.int64)) <= 0).any():
             raise fail("field 'unknown' absent must hold strictly ascending uint32 hashes")
+    outliers = field.get("outliers")
+    if outliers is not None:
+        if (not isinstance(outliers, dict) or set(outliers) != OUTLIER_KEYS or not isinstance(outliers["filter"], bytes)
+                or not outliers["filter"] or not _is_count(outliers["probes"])
+                or not 1 <= outliers["probes"] <= MAX_PROBES or buckets is None):
+            raise fail(f"field 'unknown' outliers must be a map with filter (non-empty bytes) and probes (1 to "
+                       f"{MAX_PROBES}), and only where buckets are present")
 
 
 def _check_probe(fail, probe: object, rows: int, classes: int) -> None:

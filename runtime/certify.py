@@ -56,7 +56,10 @@ device's; the device's own rounding never enters (only its argmax is used).
      By token (optional `buckets` / `absent`): a token's own text decides which rows it can stand for.
      A pruned row's token IS the token's text, so it hashes (FNV-1a) to the same bucket; its row lies in
      that bucket's envelope [l_j, h_j]. A listed absent hash is no float token's, so a `skip` float
-     model left that token out (an empty slot). Per coordinate, the lowest mean with k tokens taken
+     model left that token out (an empty slot). With an outlier filter (`outliers`), the buckets bound only
+     the rows inside the per-coordinate tails; every row beyond them has its token's hash in the filter, so a
+     token the filter does not hold is no such row, and one it holds (or a false positive) takes the one
+     envelope, which bounds every row. Per coordinate, the lowest mean with k tokens taken
      takes the k smallest l_j; the bound is the lowest over k = 0..u (skip) or at k = u (unk), likewise
      for the highest (`_slot_hull`).
   3. float32 rounding of the float model's mean: γ_{n+u+terms} (1/(n+k)) Σ mass per element, split
@@ -263,6 +266,7 @@ class Envelope:
     buckets: np.ndarray | None = None  # (K, 2, W) float64: lo and hi of the rows whose token hashes to bucket j
     # (`bucket_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
     absent: frozenset = frozenset()  # FNV-1a hashes of tokens the float model never knew (no float token has one)
+    outliers: OutlierFilter | None = None  # tokens of the rows outside the buckets (which then hold the core only)
 
     @property
     def hash_buckets(self) -> int:
@@ -276,12 +280,13 @@ class Envelope:
 
     @property
     def slots(self) -> np.ndarray:
-        """(K + 1, 2, W) float64: the bucket envelopes (or the one envelope as K = 1), then an empty slot for a
-        token that was no float row."""
+        """(K + 2, 2, W) float64: the K bucket envelopes, the one envelope (every row: K = 0, or a token the
+        outlier filter holds), then an empty slot for a token that was no float row."""
         if "_slots" not in self.__dict__:
-            own = self.buckets if self.buckets is not None else np.stack([self.lo, self.hi])[None]  # (K, 2, W)
+            whole = np.stack([self.lo, self.hi])[None]  # (1, 2, W)
+            own = self.buckets if self.buckets is not None else whole[:0]  # (K, 2, W)
             empty = np.stack([np.full_like(self.lo, np.inf), np.full_like(self.hi, -np.inf)])[None]  # (1, 2, W)
-            slots = np.concatenate([own, empty])
+            slots = np.concatenate([own, whole, empty])
             minima = np.stack([slots[:, 0], -slots[:, 1]], axis=1)  # (K + 1, 2, W): lows and negated highs
             finite = np.abs(minima[np.isfinite(minima)])
             object.__setattr__(self, "_slots", slots)
@@ -301,13 +306,16 @@ class Envelope:
         return slot
 
     def slots_of(self, hashes: np.ndarray) -> np.ndarray:
-        """(N,) uint32 FNV-1a hashes of tokens the bundle does not know -> (N,) int64 slots: the empty slot for a
-        listed absent token, else its bucket (h mod K), or slot 0 (the one envelope) when the field has no buckets.
-        The one rule for both encoders (the compiled one reports hashes, the Python one computes `hash_token`)."""
+        """(N,) uint32 FNV-1a hashes of tokens the bundle does not know -> (N,) int64 slots: the empty slot (K + 1)
+        for a listed absent token, else the one envelope (K) for a token the outlier filter holds or when the field
+        has no buckets, else its bucket (h mod K). The one rule for both encoders (the compiled one reports hashes,
+        the Python one computes `hash_token`)."""
         h = np.asarray(hashes, dtype=np.uint32)  # (N,)
-        empty = self.slots.shape[0] - 1
-        slots = (h % np.uint32(self.buckets.shape[0])).astype(np.int64) if self.buckets is not None else \
-            np.zeros(h.shape, dtype=np.int64)  # (N,)
+        k = self.hash_buckets
+        slots = (h % np.uint32(k)).astype(np.int64) if k else np.zeros(h.shape, dtype=np.int64)  # (N,)
+        if self.outliers is not None:
+            slots[self.outliers.holds(h)] = k
+        empty = k + 1
         if self.absent:
             listed = self.__dict__.get("_absent_sorted")
             if listed is None:
@@ -327,6 +335,43 @@ def hash_token(token: str) -> int:
     return h
 
 
+FILTER_MIX = 0x045D9F3B  # the odd multiplier of the second hash (`filter_positions`)
+
+
+def filter_positions(hashes: np.ndarray, bits: int, probes: int) -> np.ndarray:
+    """(N,) uint32 FNV-1a hashes -> (N, probes) int64 bit positions in a filter of `bits` bits: probe i of hash h is
+    (h + i·h2) mod bits (double hashing), h2 = h mixed twice by x ← ((x >> 16) ^ x)·0x045D9F3B mod 2³², then
+    ((x >> 16) ^ x) | 1. Every operation is exact in uint64 (h, h2 < 2³², i < 64), so any device computes the same."""
+    h = np.asarray(hashes, dtype=np.uint64)  # (N,)
+    x = h
+    for _ in range(2):
+        x = (((x >> np.uint64(16)) ^ x) * np.uint64(FILTER_MIX)) & np.uint64(0xFFFFFFFF)
+    step = ((x >> np.uint64(16)) ^ x) | np.uint64(1)  # (N,)
+    i = np.arange(probes, dtype=np.uint64)  # (P,)
+    return ((h[:, None] + i[None, :] * step[:, None]) % np.uint64(bits)).astype(np.int64)  # (N, P)
+
+
+@dataclass(frozen=True)
+class OutlierFilter:
+    """A Bloom filter (Bloom 1970; false positives only) over the hashes of the tokens whose float rows lie outside
+    the bucket envelopes (the manifest's `unknown.outliers`). A token it holds may be such a row, so it takes the one
+    envelope; a token it does not hold is no such row. A false positive only widens a token's envelope."""
+
+    bits: np.ndarray  # (M,) bool, M = 8 × the field's bytes; bit j is bit j % 8 (least significant first) of byte j // 8
+    probes: int  # positions set per token
+
+    def holds(self, hashes: np.ndarray) -> np.ndarray:
+        """(N,) uint32 hashes -> (N,) bool: True where every probed bit is set."""
+        return self.bits[filter_positions(hashes, self.bits.size, self.probes)].all(axis=1)
+
+
+def build_filter(hashes: np.ndarray, size: int, probes: int) -> bytes:
+    """(N,) uint32 hashes -> the `size`-byte filter holding every one of them (the packer's writer)."""
+    bits = np.zeros(8 * size, dtype=bool)  # (M,)
+    bits[filter_positions(hashes, bits.size, probes).ravel()] = True
+    return np.packbits(bits, bitorder="little").tobytes()
+
+
 def read_envelope(bundle: Bundle) -> Envelope | None:
     """The manifest's `unknown` field, or None for a bundle packed before it existed (then a text with a token
     the bundle does not know is never certified)."""
@@ -335,8 +380,12 @@ def read_envelope(bundle: Bundle) -> Envelope | None:
         return None
     lo, hi = np.asarray(field["lo"], np.float64), np.asarray(field["hi"], np.float64)  # (W,)
     absent = np.frombuffer(field.get("absent", b""), dtype="<u4")  # (N,)
+    outliers = field.get("outliers")
+    if outliers is not None:
+        bits = np.unpackbits(np.frombuffer(outliers["filter"], np.uint8), bitorder="little").astype(bool)  # (M,)
+        outliers = OutlierFilter(bits, int(outliers["probes"]))
     return Envelope(int(field["rows"]), bool(field["skipped"]), lo, hi, read_buckets(field, lo, hi),
-                    frozenset(absent.tolist()))
+                    frozenset(absent.tolist()), outliers)
 
 
 def read_buckets(field: dict, lo: np.ndarray, hi: np.ndarray) -> np.ndarray | None:

@@ -481,6 +481,42 @@ def test_absent_list_needs_a_skipping_float_model(tmp_path):
         decode_bundle(data, "crafted")
 
 
+def test_filter_positions_are_the_documented_double_hash():
+    """Probe i of hash h is (h + i·h2) mod M with h2 the documented mix of h (README bundle specification), worked
+    here in Python's unbounded integers, for hashes at both ends of uint32."""
+    def mix(x):
+        for _ in range(2):
+            x = (((x >> 16) ^ x) * 0x045D9F3B) % 2**32
+        return ((x >> 16) ^ x) | 1
+
+    hashes = [0, 1, 0x811C9DC5, 2**31, 2**32 - 1]
+    got = certify.filter_positions(np.array(hashes, np.uint32), 1001, 5)  # (5, 5)
+    assert got.tolist() == [[(h + i * mix(h)) % 1001 for i in range(5)] for h in hashes]
+
+
+def test_outlier_filter_has_teeth(tmp_path, monkeypatch):
+    """The rows beyond the tails leave the buckets and their tokens enter the filter: the bound holds, every such
+    token the bundle left out takes the one envelope; without the filter (the buckets alone) it breaks."""
+    from danpack.pack.envelope import EnvelopeOptions, _outlier_rows
+
+    rng = np.random.default_rng(29)
+    model = random_model(rng, vocab=150, dim=10, hidden=(6,), out_scale=4.0)
+    options = EnvelopeOptions(outlier_tail=0.02)
+    bundle = pack_pruned(model, tmp_path, rng, 12, fold="no", envelope=options)
+    field = bundle.manifest["unknown"]
+    assert "outliers" in field and "buckets" in field and field["outliers"]["probes"] == options.probes
+    env = certify.read_envelope(bundle)
+    outlier = _outlier_rows(model, False, options.outlier_tail)  # (V,)
+    left = [t for t, out in zip(model.vocab, outlier) if out and t not in set(bundle.vocab)]
+    assert len(left) >= 5
+    assert (env.slots_of(np.array([certify.hash_token(t) for t in left], np.uint32)) == env.hash_buckets).all()
+    texts = mixed_texts(rng, model, bundle, 300) + [f"{bundle.vocab[1]} {t}" for t in left]
+    assert containment_violation(model, bundle, texts) <= 0.0
+    monkeypatch.setattr(certify, "read_envelope", lambda b, honest=certify.read_envelope: replace(
+        honest(b), outliers=None))
+    assert containment_violation(model, bundle, texts) > 0.0
+
+
 @pytest.mark.parametrize("policy", ["skip", "rest", "unk", "unk-skip"])
 def test_native_counts_are_the_python_counts(tmp_path, policy):
     """encode_unknown with the compiled encoder (counts from C, only texts with an unknown token tokenized again)

@@ -12,7 +12,10 @@ Two optional parts let the device narrow it by the token's text (FNV-1a of its U
     inward from the one envelope, rounded outward: 2 × K × width bytes;
   * `absent`: hashes of deployment-corpus tokens the float model never knew (a `skip` float model left them
     out), dropping any hash a float token shares: 4 bytes each.
-Both are sound by construction: every float row the device may meet under a token is inside that token's
+  * `outliers`: a Bloom filter over the tokens of the few rows that set the envelope's extremes (outside the
+    per-coordinate `outlier_tail` quantiles of the float table): the buckets then hold the other rows only (the
+    core), and a token the filter holds takes the one envelope. A false positive only widens a token's envelope.
+Each is sound by construction: every float row the device may meet under a token is inside that token's
 envelope, and a listed hash is no float token's. Together they never take more bytes than keeping the left-out
 rows would (`parts_budget`): past that, keeping the rows is both smaller and exact. Measured in the README's
 bound section.
@@ -21,6 +24,7 @@ bound section.
 from __future__ import annotations
 
 from collections.abc import Sequence
+import math
 from dataclasses import dataclass
 from functools import lru_cache
 
@@ -28,7 +32,7 @@ import numpy as np
 
 from danpack.model import FloatModel
 from danpack.runtime.errors import DanpackError
-from danpack.runtime.certify import decode_buckets, gamma, gamma64, hash_token
+from danpack.runtime.certify import build_filter, decode_buckets, gamma, gamma64, hash_token
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
 
@@ -40,12 +44,31 @@ class EnvelopeOptions:
     buckets: int = 16  # hash buckets (0: one envelope); 2 × width bytes each
     absent_min_count: int = 2  # list corpus tokens the float model never knew seen this often (0: no list)
     absent_max: int = 8192  # at most this many listed, most frequent first; 4 bytes each
+    outlier_tail: float = 0.0001  # rows beyond this quantile at either end of any coordinate leave the buckets (0: none)
+    outlier_bits: int = 5  # filter bits per such row (false positives about 0.6^bits)
 
     def __post_init__(self) -> None:
         for name, value in (("envelope-buckets", self.buckets), ("absent-min-count", self.absent_min_count),
-                            ("absent-max", self.absent_max)):
+                            ("absent-max", self.absent_max), ("outlier-bits", self.outlier_bits)):
             if value < 0:
                 raise DanpackError(f"{name} {value} must be 0 or more (0 turns that part of the envelope off)")
+        if not 0.0 <= self.outlier_tail < 0.5:
+            raise DanpackError(f"outlier-tail {self.outlier_tail} must be from 0 (no outlier filter) to below 0.5")
+
+    @property
+    def filtering(self) -> bool:
+        """True when the envelope sets rows beyond the tails apart (they then need a filter)."""
+        return self.outlier_tail > 0 and self.outlier_bits > 0
+
+    @property
+    def bucket_count(self) -> int:
+        """K: the buckets asked for, at least one when outliers are set apart (the core then needs its own)."""
+        return max(self.buckets, 1) if self.filtering else self.buckets
+
+    @property
+    def probes(self) -> int:
+        """Bits probed per token: ln 2 × bits per entry, the count that keeps a Bloom filter's false positives lowest."""
+        return min(max(1, round(math.log(2) * self.outlier_bits)), 16)
 
 
 @lru_cache(maxsize=2)
@@ -128,32 +151,75 @@ def _width(model: FloatModel, folded: bool) -> int:
     return model.layers[0].weight.shape[0] if folded else model.embedding.shape[1]
 
 
-def _bucket_bounds(rows: np.ndarray, row_lo: np.ndarray, row_hi: np.ndarray, hashes: np.ndarray,
-                   k: int) -> tuple[np.ndarray, np.ndarray]:
-    """(r,) float rows with their (r, W) bounds -> (K, W) per-bucket minimum and maximum (+inf / -inf: none)."""
-    b_lo, b_hi = np.full((k, row_lo.shape[1]), np.inf), np.full((k, row_lo.shape[1]), -np.inf)  # (K, W)
-    if rows.size:
+def _group_bounds(rows: np.ndarray, row_lo: np.ndarray, row_hi: np.ndarray, hashes: np.ndarray | None,
+                  outlier: np.ndarray | None, k: int) -> np.ndarray:
+    """(r,) float rows with their (r, W) bounds -> (2K + 1, 2, W) lo and hi of: every row; per hash bucket, the core
+    rows (not `outlier`); per hash bucket, the outlier rows (+inf / -inf: no row). Combined by min / max."""
+    out = np.empty((2 * k + 1, 2, row_lo.shape[1]))
+    out[:, 0], out[:, 1] = np.inf, -np.inf
+    if not rows.size:
+        return out
+    out[0, 0], out[0, 1] = row_lo.min(axis=0), row_hi.max(axis=0)
+    if k:
         bucket = (hashes[rows] % np.uint32(k)).astype(np.int64)  # (r,)
+        if outlier is not None:
+            bucket = bucket + k * outlier[rows]  # outlier rows in groups K..2K-1
         order = np.argsort(bucket, kind="stable")
         sorted_b = bucket[order]
-        starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each bucket present
-        at = sorted_b[starts]
-        b_lo[at] = np.minimum.reduceat(row_lo[order], starts, axis=0)
-        b_hi[at] = np.maximum.reduceat(row_hi[order], starts, axis=0)
-    return b_lo, b_hi
+        starts = np.flatnonzero(np.r_[True, sorted_b[1:] != sorted_b[:-1]])  # first row of each group present
+        at = 1 + sorted_b[starts]
+        out[at, 0] = np.minimum.reduceat(row_lo[order], starts, axis=0)
+        out[at, 1] = np.maximum.reduceat(row_hi[order], starts, axis=0)
+    return out
 
 
-def _finish(model: FloatModel, folded: bool, rows: int, lo: np.ndarray, hi: np.ndarray, b_lo: np.ndarray | None,
-            b_hi: np.ndarray | None, ranked: np.ndarray, budget: int) -> dict:
-    """The manifest field from the bounds: the unknown row joins every bucket, the buckets are encoded, then the
-    most frequent absent hashes, all within `budget` bytes (buckets first, as they measured most per byte)."""
-    field = _field(rows, lo, hi, model)
-    if rows and b_lo is not None and b_lo.size <= budget // 2:
+def _merge(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Two group bounds (…, 2, W) -> the bounds of both row sets."""
+    return np.stack([np.minimum(a[..., 0, :], b[..., 0, :]), np.maximum(a[..., 1, :], b[..., 1, :])], axis=-2)
+
+
+def _outlier_rows(model: FloatModel, folded: bool, tail: float) -> np.ndarray | None:
+    """(V,) bool: the float rows beyond the `tail` quantiles (estimated on up to 65,536 evenly spaced rows) at either
+    end of any coordinate. Any split is sound (the core's bounds are taken over the core's rows); this one keeps the
+    few rows that set the extremes out of the buckets. None when `tail` is 0."""
+    if not tail:
+        return None
+    vocab = len(model.vocab)
+    sample = np.unique(np.linspace(0, vocab - 1, min(vocab, 65536)).astype(np.int64))
+    lo, hi = _row_bounds(model, sample, folded)  # (s, W)
+    mid = 0.5 * (lo + hi)
+    low, high = np.quantile(mid, tail, axis=0), np.quantile(mid, 1.0 - tail, axis=0)  # (W,)
+    out = np.zeros(vocab, dtype=bool)
+    for start in range(0, vocab, CHUNK_ROWS):
+        part = np.arange(start, min(start + CHUNK_ROWS, vocab))
+        lo, hi = _row_bounds(model, part, folded)
+        mid = 0.5 * (lo + hi)
+        out[part] = ((mid < low) | (mid > high)).any(axis=1)
+    return out
+
+
+def _finish(model: FloatModel, folded: bool, rows: int, groups: np.ndarray, outlier_hashes: np.ndarray,
+            ranked: np.ndarray, budget: int, options: EnvelopeOptions) -> dict:
+    """The manifest field from the group bounds (`_group_bounds`) and the left-out outlier rows' hashes, within
+    `budget` bytes, parts in the order they measured most per byte: the buckets, the outlier filter (then the buckets
+    hold the core only), the most frequent absent hashes. The unknown row joins every bucket."""
+    field = _field(rows, groups[0, 0], groups[0, 1], model)
+    k = options.bucket_count
+    core, outliers = groups[1 : k + 1], groups[k + 1 :]  # (K, 2, W) each
+    filter_bytes = -(-outlier_hashes.size * options.outlier_bits // 8)
+    filtered = rows and options.filtering and outlier_hashes.size and 2 * k * core.shape[-1] + filter_bytes <= budget
+    if not filtered:
+        core, k = _merge(core, outliers), options.buckets  # every row in its bucket (none when none were asked)
+    if rows and k and 2 * k * core.shape[-1] <= budget:
         if model.oov_policy == "unk":  # the unknown row may stand behind any token, whatever its hash
             u_lo, u_hi = _row_bounds(model, np.array([model.vocab.index(model.unk_token)]), folded)
-            b_lo, b_hi = np.minimum(b_lo, u_lo), np.maximum(b_hi, u_hi)
-        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), b_lo, b_hi)
+            core = _merge(core[:k], np.stack([u_lo, u_hi], axis=1))
+        field["buckets"] = encode_buckets(np.asarray(field["lo"]), np.asarray(field["hi"]), core[:k, 0], core[:k, 1])
         budget -= len(field["buckets"])
+        if filtered:
+            field["outliers"] = {"filter": build_filter(outlier_hashes, filter_bytes, options.probes),
+                                 "probes": options.probes}
+            budget -= filter_bytes
     listed = np.sort(ranked[: max(budget, 0) // 4]) if rows else ranked[:0]
     if listed.size:
         field["absent"] = listed.astype("<u4").tobytes()
@@ -163,43 +229,44 @@ def _finish(model: FloatModel, folded: bool, rows: int, lo: np.ndarray, hi: np.n
 def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
                      options: EnvelopeOptions = EnvelopeOptions()) -> dict:
     """The manifest field for the kept float rows: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]},
-    plus "buckets" (bytes) and "absent" (bytes) as `options` ask; `absent`: (token, corpus count) pairs of tokens
-    the float model does not know, most frequent first."""
+    plus "buckets" (bytes), "outliers" ({filter, probes}) and "absent" (bytes) as `options` ask; `absent`: (token,
+    corpus count) pairs of tokens the float model does not know, most frequent first."""
     left = np.ones(len(model.vocab), dtype=bool)  # (V,)
     left[np.asarray(kept, dtype=np.int64)] = False
     if model.oov_policy == "unk":  # a word the float model does not know takes its unknown row
         left[model.vocab.index(model.unk_token)] = True
     rows = np.flatnonzero(left)  # (P,): every row left out, reachable or not (no reliance on the reachability test)
-    width, k = _width(model, folded), options.buckets
-    lo, hi = np.full(width, np.inf), np.full(width, -np.inf)  # (W,)
-    b_lo, b_hi = (np.full((k, width), np.inf), np.full((k, width), -np.inf)) if k else (None, None)  # (K, W)
+    width, k = _width(model, folded), options.bucket_count
     hashes = _token_hashes(tuple(model.vocab)) if k else None
+    outlier = _outlier_rows(model, folded, options.outlier_tail) if options.filtering else None
+    groups = _group_bounds(rows[:0], np.zeros((0, width)), np.zeros((0, width)), hashes, outlier, k)
     for start in range(0, rows.size, CHUNK_ROWS):
         part = rows[start : start + CHUNK_ROWS]
         row_lo, row_hi = _row_bounds(model, part, folded)  # (r, W) each
-        lo, hi = np.minimum(lo, row_lo.min(axis=0)), np.maximum(hi, row_hi.max(axis=0))
-        if k:
-            c_lo, c_hi = _bucket_bounds(part, row_lo, row_hi, hashes, k)
-            b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
+        groups = _merge(groups, _group_bounds(part, row_lo, row_hi, hashes, outlier, k))
     budget = parts_budget(model, width, rows.size, int(_token_bytes(tuple(model.vocab))[rows].sum()))
-    return _finish(model, folded, rows.size, lo, hi, b_lo, b_hi, _absent_hashes(model, absent, options), budget)
+    outlier_hashes = hashes[rows[outlier[rows]]] if outlier is not None else np.zeros(0, np.uint32)
+    return _finish(model, folded, rows.size, groups, outlier_hashes, _absent_hashes(model, absent, options), budget,
+                   options)
 
 
 class EnvelopeIndex:
     """`unknown_envelope` of every prefix of a ranking at once: the candidates a pack measures keep
     `order[:keep]`, so the rows left out are `order[keep:]` plus a fixed rest. Block minima and maxima over the
-    ranking (suffix-combined; per hash bucket too) make each prefix cost one block of rows instead of the table."""
+    ranking (suffix-combined; per hash bucket and core / outlier too) make each prefix cost one block of rows
+    instead of the table."""
 
     BLOCK = 1024  # ranked rows per block
 
     def __init__(self, model: FloatModel, order: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
                  options: EnvelopeOptions = EnvelopeOptions()) -> None:
-        self.model, self.order, self.folded = model, np.asarray(order, np.int64), folded
-        width, n, k = _width(model, folded), len(self.order), options.buckets
-        self.k, self.ranked, self.width = k, _absent_hashes(model, absent, options), width
+        self.model, self.order, self.folded, self.options = model, np.asarray(order, np.int64), folded, options
+        width, n, k = _width(model, folded), len(self.order), options.bucket_count
+        self.ranked, self.width = _absent_hashes(model, absent, options), width
         token_bytes = _token_bytes(tuple(model.vocab))
         self.suffix_bytes = np.append(np.cumsum(token_bytes[self.order][::-1])[::-1], 0)  # (n + 1,): order[i:]
-        hashes = _token_hashes(tuple(model.vocab)) if k else None
+        self.hashes = _token_hashes(tuple(model.vocab)) if k else None
+        self.outlier = _outlier_rows(model, folded, options.outlier_tail) if options.filtering else None
         fixed = np.ones(len(model.vocab), dtype=bool)  # (V,): left out whatever the cut
         fixed[self.order] = False
         self.unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
@@ -210,47 +277,40 @@ class EnvelopeIndex:
         self.unk_position = int(where[0]) if where.size else None  # the unknown row's place in the ranking
         self.fixed_rows = int(rest.size)
         self.fixed_bytes = int(token_bytes[rest].sum())
-        self.fixed_lo, self.fixed_hi = np.full(width, np.inf), np.full(width, -np.inf)
-        self.fixed_b = (np.full((k, width), np.inf), np.full((k, width), -np.inf))  # (K, W) each
+        self.fixed_groups = self._groups(rest[:0])  # (2K + 1, 2, W)
         for start in range(0, rest.size, CHUNK_ROWS):
-            part = rest[start : start + CHUNK_ROWS]
-            lo, hi = _row_bounds(model, part, folded)
-            self.fixed_lo, self.fixed_hi = np.minimum(self.fixed_lo, lo.min(0)), np.maximum(self.fixed_hi, hi.max(0))
-            if k:
-                c_lo, c_hi = _bucket_bounds(part, lo, hi, hashes, k)
-                self.fixed_b = (np.minimum(self.fixed_b[0], c_lo), np.maximum(self.fixed_b[1], c_hi))
+            self.fixed_groups = _merge(self.fixed_groups, self._groups(rest[start : start + CHUNK_ROWS]))
+        self.fixed_outliers = self._outlier_hashes(rest)
+        # the ranked outlier rows' hashes, and their places in the ranking (a cut keeps those before `keep`)
+        ranked_out = np.flatnonzero(self.outlier[self.order]) if self.outlier is not None else np.zeros(0, np.int64)
+        self.outlier_places = ranked_out  # (o,) ascending
+        self.ranked_outliers = self.hashes[self.order[ranked_out]] if ranked_out.size else np.zeros(0, np.uint32)
         blocks = (n + self.BLOCK - 1) // self.BLOCK
-        lo_b, hi_b = np.full((blocks + 1, width), np.inf), np.full((blocks + 1, width), -np.inf)  # (B + 1, W)
-        blo_b, bhi_b = np.full((blocks + 1, k, width), np.inf), np.full((blocks + 1, k, width), -np.inf)  # (B + 1, K, W)
-        for b in range(blocks):
-            part = self.order[b * self.BLOCK : (b + 1) * self.BLOCK]
-            lo, hi = _row_bounds(model, part, folded)
-            lo_b[b], hi_b[b] = lo.min(0), hi.max(0)
-            if k:
-                blo_b[b], bhi_b[b] = _bucket_bounds(part, lo, hi, hashes, k)
+        per_block = np.stack([self._groups(self.order[b * self.BLOCK : (b + 1) * self.BLOCK]) for b in range(blocks)]
+                             + [self._groups(rest[:0])])  # (B + 1, 2K + 1, 2, W)
         # suffix: block b onwards
-        self.suffix_lo = np.minimum.accumulate(lo_b[::-1], axis=0)[::-1]  # (B + 1, W)
-        self.suffix_hi = np.maximum.accumulate(hi_b[::-1], axis=0)[::-1]
-        self.suffix_b_lo = np.minimum.accumulate(blo_b[::-1], axis=0)[::-1]  # (B + 1, K, W)
-        self.suffix_b_hi = np.maximum.accumulate(bhi_b[::-1], axis=0)[::-1]
-        self.hashes = hashes
+        self.suffix = np.stack([np.minimum.accumulate(per_block[::-1, :, 0], axis=0)[::-1],
+                                np.maximum.accumulate(per_block[::-1, :, 1], axis=0)[::-1]], axis=2)
+
+    def _groups(self, rows: np.ndarray) -> np.ndarray:
+        lo, hi = _row_bounds(self.model, rows, self.folded) if rows.size else (np.zeros((0, self.width)),) * 2
+        return _group_bounds(rows, lo, hi, self.hashes, self.outlier, self.options.bucket_count)
+
+    def _outlier_hashes(self, rows: np.ndarray) -> np.ndarray:
+        if self.outlier is None:
+            return np.zeros(0, np.uint32)
+        return self.hashes[rows[self.outlier[rows]]]
 
     def envelope(self, keep: int) -> dict:
         """The manifest field of a bundle keeping `order[:keep]` (equal to `unknown_envelope` of those rows)."""
         keep = min(max(int(keep), 0), len(self.order))
         block = (keep + self.BLOCK - 1) // self.BLOCK  # first whole block past the cut
-        lo, hi = np.minimum(self.fixed_lo, self.suffix_lo[block]), np.maximum(self.fixed_hi, self.suffix_hi[block])
-        b_lo, b_hi = None, None
-        if self.k:
-            b_lo = np.minimum(self.fixed_b[0], self.suffix_b_lo[block])
-            b_hi = np.maximum(self.fixed_b[1], self.suffix_b_hi[block])
+        groups = _merge(self.fixed_groups, self.suffix[block])
         partial = self.order[keep : block * self.BLOCK]
         if partial.size:
-            p_lo, p_hi = _row_bounds(self.model, partial, self.folded)
-            lo, hi = np.minimum(lo, p_lo.min(0)), np.maximum(hi, p_hi.max(0))
-            if self.k:
-                c_lo, c_hi = _bucket_bounds(partial, p_lo, p_hi, self.hashes, self.k)
-                b_lo, b_hi = np.minimum(b_lo, c_lo), np.maximum(b_hi, c_hi)
+            groups = _merge(groups, self._groups(partial))
+        outliers = np.concatenate([self.fixed_outliers,
+                                   self.ranked_outliers[np.searchsorted(self.outlier_places, keep):]])
         # left out: the fixed rows and order[keep:]; the unknown row is in both when it is ranked past the cut
         past = self.unk_position is not None and self.unk_position >= keep
         rows = self.fixed_rows + len(self.order) - keep - int(past)
@@ -258,5 +318,7 @@ class EnvelopeIndex:
         spent = self.fixed_bytes + int(self.suffix_bytes[keep])
         if past:
             spent -= int(_token_bytes(tuple(self.model.vocab))[self.unk])
+            if self.outlier is not None and self.outlier[self.unk]:
+                outliers = np.unique(outliers)  # its hash is in both lists; a filter holds a hash once anyway
         budget = parts_budget(self.model, self.width, rows, spent)
-        return _finish(self.model, self.folded, rows, lo, hi, b_lo, b_hi, self.ranked, budget)
+        return _finish(self.model, self.folded, rows, groups, outliers, self.ranked, budget, self.options)

@@ -46,8 +46,7 @@ def describe_bundle(bundle: Bundle, vocab: bool = False) -> dict:
     """A JSON-ready description for `danpack inspect`; `vocab` adds the tokens (element i names row i)."""
     manifest = {k: v for k, v in bundle.manifest.items() if k != "probe"}
     if isinstance(manifest.get("unknown"), dict):  # its byte parts as their sizes: JSON holds no bytes
-        manifest["unknown"] = {k: (f"{len(v)} bytes" if isinstance(v, bytes) else v)
-                               for k, v in manifest["unknown"].items()}
+        manifest["unknown"] = _sized(manifest["unknown"])
     info = {
         "sha256": bundle.sha256,
         "bytes": bundle.size,
@@ -103,3 +102,9 @@ def export_onnx(bundle: Bundle) -> onnx.ModelProto:
                         "probs and logits out. Labels, tokenizer, vocabulary and unknown-word row are in the "
                         "danpack.* metadata_props; the host steps are in danpack's README.")
     return model
+
+
+def _sized(field: dict) -> dict:
+    """A manifest map with every bytes value (nested maps too) shown as its size."""
+    return {k: f"{len(v)} bytes" if isinstance(v, bytes) else _sized(v) if isinstance(v, dict) else v
+            for k, v in field.items()}

@@ -436,18 +436,21 @@ static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t 
 
 /* The optional envelope of the rows the bundle leaves out (runtime/bundle.py _check_unknown); absent in older bundles.
  * Optional parts: buckets ((K, 2, width) uint8 steps: a bucket all 255, or each coordinate's two steps summing to at
- * most 254) and absent (strictly ascending little-endian uint32 hashes, only where skipped is true). */
+ * most 254), absent (strictly ascending little-endian uint32 hashes, only where skipped is true) and outliers
+ * ({filter: non-empty bytes, probes: 1..16}, only with buckets). */
 static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error *err) {
     if (!f || f->type == MP_NIL) return 0;
     const dp_mp *buckets = f->type == MP_MAP ? dp_mp_get(f, "buckets") : NULL;
     const dp_mp *absent = f->type == MP_MAP ? dp_mp_get(f, "absent") : NULL;
-    const char *keys[6] = {"hi", "lo", "rows", "skipped"};
+    const dp_mp *outliers = f->type == MP_MAP ? dp_mp_get(f, "outliers") : NULL;
+    const char *keys[7] = {"hi", "lo", "rows", "skipped"};
     size_t nkeys = 4;
     if (buckets) keys[nkeys++] = "buckets";
     if (absent) keys[nkeys++] = "absent";
+    if (outliers) keys[nkeys++] = "outliers";
     if (!dp_mp_keys_are(f, keys, nkeys))
         return dp_fail(err, "%s: manifest field 'unknown' must be a map with rows, skipped, lo and hi (and optionally "
-                            "buckets, absent)", src), -1;
+                            "buckets, absent, outliers)", src), -1;
     const dp_mp *rows = dp_mp_get(f, "rows"), *skipped = dp_mp_get(f, "skipped");
     if (!is_count(rows) || skipped->type != MP_BOOL || !(rows->i || skipped->i))
         return dp_fail(err, "%s: manifest field 'unknown' has rows and skipped other than a count and a bool (a count "
@@ -487,6 +490,15 @@ static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error
                                src), -1;
             prev = h;
         }
+    }
+    if (outliers) {
+        static const char *filter_keys[2] = {"filter", "probes"};
+        const dp_mp *bits = outliers->type == MP_MAP ? dp_mp_get(outliers, "filter") : NULL;
+        const dp_mp *probes = outliers->type == MP_MAP ? dp_mp_get(outliers, "probes") : NULL;
+        if (!buckets || outliers->type != MP_MAP || !dp_mp_keys_are(outliers, filter_keys, 2) ||
+            bits->type != MP_BIN || bits->len == 0 || !is_count(probes) || probes->i < 1 || probes->i > 16)
+            return dp_fail(err, "%s: manifest field 'unknown' outliers must be a map with filter (non-empty bytes) and "
+                                "probes (1 to 16), and only where buckets are present", src), -1;
     }
     return 0;
 }

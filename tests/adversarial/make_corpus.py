@@ -438,6 +438,11 @@ CASES: list[tuple[str, str, object]] = [
      lambda b: with_body(b, edit_value(("manifest", "unknown", "buckets"), bytes([200] * 12)))),
     ("unknown_absent_unsorted.bundle", "absent-token hashes out of order",
      lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"), np.array([2, 1], "<u4").tobytes()))),
+    ("unknown_outliers_without_buckets.bundle", "an outlier filter with no buckets for the other rows",
+     lambda b: with_body(b, lambda d: d["manifest"]["unknown"].update(
+         {"outliers": {"filter": bytes(8), "probes": 3}}) or d["manifest"]["unknown"].pop("buckets", None))),
+    ("unknown_outliers_probes_zero.bundle", "an outlier filter probing 0 bits per token",
+     lambda b: with_body(b, lambda d: d["manifest"]["unknown"].update({"outliers": {"filter": bytes(8), "probes": 0}}))),
     # probe
     ("probe_missing.bundle", "no probe", lambda b: with_body(b, lambda d: d["manifest"].pop("probe"))),
     ("probe_empty.bundle", "a probe with no sequence", lambda b: with_body(b, edit_value(("manifest", "probe"), {"ids": [], "probs": []}))),
