@@ -158,5 +158,7 @@ def test_envelope_index_equals_the_envelope_of_each_cut(unk, folded):
     model = random_model(rng, vocab=2600, dim=12, hidden=(8,), unk=unk)
     order = rng.permutation(len(model.vocab))[:2500]  # some rows never ranked (as unreachable rows are not)
     index = EnvelopeIndex(model, order, folded)
-    for keep in (0, 1, 700, 1023, 1024, 1025, 2048, 2499, 2500):
+    at = [int(p) + d for p in index.outlier_places[:3] for d in (0, 1)]  # cuts just before and after a set-apart row
+    for keep in (0, 1, 700, 1023, 1024, 1025, 2048, 2499, 2500, *at):
         assert index.envelope(keep) == unknown_envelope(model, order[:keep], folded), keep
+    assert at and "outliers" in index.envelope(at[0])  # the outlier filter's rows follow the cut too

@@ -205,6 +205,7 @@ def _finish(model: FloatModel, folded: bool, rows: int, groups: np.ndarray, outl
     hold the core only), the most frequent absent hashes. The unknown row joins every bucket."""
     field = _field(rows, groups[0, 0], groups[0, 1], model)
     k = options.bucket_count
+    outlier_hashes = np.unique(outlier_hashes)  # a hash once (the unknown row may be listed twice, tokens may collide)
     core, outliers = groups[1 : k + 1], groups[k + 1 :]  # (K, 2, W) each
     filter_bytes = -(-outlier_hashes.size * options.outlier_bits // 8)
     filtered = rows and options.filtering and outlier_hashes.size and 2 * k * core.shape[-1] + filter_bytes <= budget
@@ -318,7 +319,5 @@ class EnvelopeIndex:
         spent = self.fixed_bytes + int(self.suffix_bytes[keep])
         if past:
             spent -= int(_token_bytes(tuple(self.model.vocab))[self.unk])
-            if self.outlier is not None and self.outlier[self.unk]:
-                outliers = np.unique(outliers)  # its hash is in both lists; a filter holds a hash once anyway
         budget = parts_budget(self.model, self.width, rows, spent)
         return _finish(self.model, self.folded, rows, groups, outliers, self.ranked, budget, self.options)
