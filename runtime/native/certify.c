@@ -6,7 +6,8 @@
  * dequantised kept rows and the float64 sum of their (radius, mass) follow np.add.reduceat (the first row, plus
  * numpy's pairwise sum of the rest; `pairwise32` / `pairwise64`). Soundness needs neither: the γ_{n+1} term of
  * mean_box bounds the float32 sum in any order, and the float64 sums are covered by INFLATE. The float64 dot
- * products run left to right where numpy calls BLAS: both are covered by the γ64 terms numpy carries for them. */
+ * products run in two lanes where numpy calls BLAS: the γ64 terms (values) and INFLATE (radii) numpy carries for its
+ * own products cover any order. */
 #include <math.h>
 #include <stdio.h>
 #include <stdlib.h>
@@ -257,14 +258,14 @@ static size_t max_width(const dp_cert_model *m) {
     return w;
 }
 
-/* work layout: doubles (lo, hi, low, high: 4W; sort room: U; centre, radius, next radius, z, t: 5 MW (6 kept);
+/* work layout: doubles (lo, hi, low, high: 4W; sort room: U; centre, radius, next radius, z, t: 5 MW;
  * lower bounds: C), floats (total: W; pairwise scratch: (8 + LEVELS) W), int64 (kept ids: T) */
 static int layout(const dp_cert_model *m, int64_t T, int64_t U, size_t *doubles, size_t *floats, size_t *longs) {
     size_t W = (size_t)m->width, MW = max_width(m);
     if (T < 0 || U < 0 || W > ((size_t)1 << 40) || MW > ((size_t)1 << 40) || (uint64_t)U > ((uint64_t)1 << 40) ||
         (uint64_t)T > ((uint64_t)1 << 40) || (uint64_t)m->classes > ((uint64_t)1 << 40))
         return -1;
-    *doubles = 4 * W + (size_t)U + 6 * MW + (size_t)m->classes;
+    *doubles = 4 * W + (size_t)U + 5 * MW + (size_t)m->classes;
     *floats = (9 + LEVELS) * W + 1; /* + 1: keeps the int64 part 8-byte aligned when W is odd (rounded below) */
     *floats += *floats % 2;
     *longs = (size_t)T + 1;
@@ -284,8 +285,36 @@ static void slot_hull(const dp_cert_model *m, const int64_t *slots, int64_t U, s
     double kept = (double)n, floor1 = kept > 1.0 ? kept : 1.0; /* np.maximum(kept, 1.0) */
     double g = gamma64((double)U + 4.0), spread = (double)U * m->largest;
     const double *minima = m->minima; /* (S, 2, W) */
+    int64_t first_slot = 0; /* the text's first slot (slots come first, pads after) */
+    while (slots[first_slot] < 0) first_slot++;
     for (int side = 0; side < 2; side++) {
-        for (size_t d = 0; d < W; d++) {
+        size_t d0 = 0;
+#if defined(__SSE2__)
+        if (!m->skipped || u == 1) { /* the common branches, two coordinates at a time (the same operations) */
+            const __m128d sign = _mm_set1_pd(-0.0), gg = _mm_set1_pd(g), sp = _mm_set1_pd(spread);
+            const __m128d f1 = _mm_set1_pd(floor1), k1 = _mm_set1_pd(kept + 1.0), ku = _mm_set1_pd(kept + (double)u);
+            const double *row = minima + ((size_t)slots[first_slot] * 2 + (size_t)side) * W;
+            for (; d0 + 2 <= W; d0 += 2) {
+                __m128d base = side ? _mm_xor_pd(_mm_loadu_pd(high + d0), sign) : _mm_loadu_pd(low + d0);
+                __m128d slack = _mm_div_pd(_mm_mul_pd(gg, _mm_add_pd(abs2(base), sp)), f1), bound;
+                if (!m->skipped) {
+                    __m128d sum = _mm_loadu_pd(row + d0);
+                    for (int64_t j = first_slot + 1; j < U; j++)
+                        if (slots[j] >= 0)
+                            sum = _mm_add_pd(sum, _mm_loadu_pd(minima + ((size_t)slots[j] * 2 + (size_t)side) * W + d0));
+                    bound = _mm_sub_pd(_mm_div_pd(_mm_add_pd(base, sum), ku), slack);
+                } else { /* k = 0 (the mean box's own lo, or -hi: base / max(n, 1)) or k = 1, NaN kept */
+                    __m128d none = side ? _mm_xor_pd(_mm_loadu_pd(hi + d0), sign) : _mm_loadu_pd(lo + d0);
+                    __m128d one = _mm_div_pd(_mm_add_pd(base, _mm_loadu_pd(row + d0)), k1);
+                    __m128d nan = _mm_or_pd(_mm_cmpunord_pd(none, none), _mm_cmpunord_pd(one, one));
+                    bound = _mm_sub_pd(_mm_or_pd(_mm_min_pd(none, one), nan), slack);
+                }
+                if (side) _mm_storeu_pd(hi + d0, _mm_xor_pd(bound, sign));
+                else _mm_storeu_pd(lo + d0, bound);
+            }
+        }
+#endif
+        for (size_t d = d0; d < W; d++) {
             double base = side ? -high[d] : low[d];
             /* this module's float64 sums of up to U + 1 terms and their divisions: γ64_{U+4} (|base| + U·largest) */
             double slack = g * (fabs(base) + spread) / floor1, bound;
@@ -301,10 +330,8 @@ static void slot_hull(const dp_cert_model *m, const int64_t *slots, int64_t U, s
                 bound = (base + sum) / (kept + (double)u) - slack;
             } else {
                 bound = base / floor1; /* k = 0: every unknown token left out */
-                if (u == 1) { /* the text's one slot (the first column: slots come first) */
-                    int64_t j = 0;
-                    while (slots[j] < 0) j++;
-                    double v = minima[((size_t)slots[j] * 2 + (size_t)side) * W + d];
+                if (u == 1) { /* the text's one slot */
+                    double v = minima[((size_t)slots[first_slot] * 2 + (size_t)side) * W + d];
                     bound = nmin(bound, (base + v) / (kept + 1.0));
                 } else { /* any k in 0..U: the k smallest (pads read the pad slot, as numpy's do), for every k */
                     size_t k = 0;
@@ -465,6 +492,19 @@ int dp_certify(const dp_cert_model *m, const int64_t *ids, int64_t B, int64_t T,
         ((m->envelope == DP_CERT_ENV_ONE || m->envelope == DP_CERT_ENV_SLOTS) && (!m->env_lo || !m->env_hi)) ||
         (!m->layers[m->nlayers - 1].w == !!m->contrast)) {
         snprintf(message, 256, "dp_certify: the model's envelope or output layer is incomplete");
+        return -1;
+    }
+    for (int64_t l = 0, width = m->width; l < m->nlayers; width = m->layers[l].out, l++) {
+        const dp_cert_layer *L = &m->layers[l];
+        if (L->w ? (L->in != width || !L->w_abs) : L->out != width) {
+            snprintf(message, 256, "dp_certify: layer %lld takes %lld inputs, the layer before gives %lld", (long long)l,
+                     (long long)(L->w ? L->in : L->out), (long long)width);
+            return -1;
+        }
+    }
+    if (m->layers[m->nlayers - 1].out != m->classes) {
+        snprintf(message, 256, "dp_certify: the output layer has %lld units for %lld classes",
+                 (long long)m->layers[m->nlayers - 1].out, (long long)m->classes);
         return -1;
     }
     double *dw = work;
