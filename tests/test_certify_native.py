@@ -36,10 +36,10 @@ RANDOM = {
     "unk tanh float32": (dict(hidden=(6,), activation="tanh", unk=True), dict(fold="no", quantize=False, pruned="unk")),
     "rest relu folded": (dict(hidden=(4,)), dict(fold="yes", pruned="rest")),
     "unk model packed skip, no hidden layer": (dict(hidden=(), unk=True), dict(fold="no", pruned="skip")),
-    "one envelope": (dict(hidden=(6,)), dict(fold="no", envelope=EnvelopeOptions(buckets=0, absent_min_count=0))),
+    "one envelope": (dict(hidden=(6,)), dict(fold="no", envelope=EnvelopeOptions(buckets=0, absent_min_count=0, outlier_tail=0.0))),
     "one envelope unk float32 folded": (dict(hidden=(5,), unk=True, activation="tanh"),
                                         dict(fold="yes", quantize=False, pruned="unk",
-                                             envelope=EnvelopeOptions(buckets=0, absent_min_count=0))),
+                                             envelope=EnvelopeOptions(buckets=0, absent_min_count=0, outlier_tail=0.0))),
     "every row kept": (dict(hidden=(6,), vocab=40), dict(fold="no", common=40)),
 }
 
@@ -154,8 +154,10 @@ def test_native_certifier_matches_numpy(cases):
         env = bound.envelope
         seen.add("none" if env is None else "by token" if env.by_token else "one" if env.rows else "kept")
         seen.add(f"skipped {env is not None and env.skipped}")
+        if unknown.ndim == 2 and (unknown == env.hash_buckets).any():  # slot K: the one envelope, by token
+            seen.add("whole-envelope slot")
         assert flags.any() or name == "no unknown field", name
-    assert {"none", "by token", "one", "kept", "skipped True", "skipped False"} <= seen
+    assert {"none", "by token", "one", "kept", "skipped True", "skipped False", "whole-envelope slot"} <= seen
 
 
 def test_native_certifier_takes_a_lone_folded_layer(cases):
