@@ -508,8 +508,8 @@ def encode_unknown(encoder: Encoder, texts: Sequence[str], envelope: Envelope | 
     """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, unknown): the tokens without a row of
     their own, as (B,) int64 counts, or, when the envelope tells tokens apart (`Envelope.by_token`), as (B, U)
     int64 slots of those tokens (`Envelope.slot_of`), padded with -1. With `native` (runtime/fastpath.py
-    NativeEncoder, same ids) the counts come from the compiled encoder and only texts with an unknown token are
-    tokenized again here, for their slots.
+    NativeEncoder, same ids) the compiled encoder reports the counts and each unknown token's FNV-1a hash, which
+    `Envelope.slots_of` maps to its slot: no text is tokenized again here.
 
     Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
@@ -520,16 +520,13 @@ def encode_unknown(encoder: Encoder, texts: Sequence[str], envelope: Envelope | 
         return list(map(envelope.slot_of, [t for t in tokens if t not in index] if oov is None else
                         [t for t in tokens if index.get(t, oov) == oov]))
 
-    encoded = native.encode_counted(texts) if native is not None else None
-    slots: list[int] = []
+    encoded = native.encode_unknown(texts) if native is not None else None
+    slots: list[int] | np.ndarray = []
     if encoded is not None:
-        ids, counts, _, tokens = encoded  # (B, T), (B,), (B,), (B,)
-        inside = np.arange(ids.shape[1])[None, :] < counts[:, None]  # (B, T)
         # skip: an unknown token is left out of the ids; unk / rest: it sits on the out-of-vocabulary row
-        unknown = tokens - counts if oov is None else ((ids == oov) & inside).sum(axis=1)  # (B,)
+        ids, counts, unknown, hashes = encoded  # (B, T), (B,), (B,), (N,) uint32: the N unknown tokens, in order
         if by_token:
-            for i in np.flatnonzero(unknown):  # only the texts with an unknown token, in order
-                slots.extend(unknown_slots(tokenize(texts[i])))
+            slots = envelope.slots_of(hashes)  # (N,)
     else:
         id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
         for i, text in enumerate(texts):

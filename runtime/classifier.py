@@ -12,7 +12,7 @@ from .backends import BACKENDS, open_backend
 from .bundle import Bundle, read_bundle
 from .encode import Encoder
 from .errors import BundleError, DanpackError
-from .fastpath import MIN_TEXTS, NativeEncoder
+from .fastpath import MIN_TEXTS, NativeCertifier, NativeEncoder
 from .forward import encode_batch
 from .tokenize import Tokenizer
 
@@ -58,11 +58,12 @@ class Classifier:
         return self.native is not None and self.backend.name == "numpy"
 
     def describe(self) -> dict:
-        """What runs: the backend, which encoder (the native fast path or Python, and why), which forward pass, the
-        bundle's sha256."""
+        """What runs: the backend, which encoder (the native fast path or Python, and why), which forward pass, which
+        certification arithmetic (predict_certified: native with the fast path, else numpy), the bundle's sha256."""
         forward = (f"native below {MIN_TEXTS} texts in predict/predict_proba, else {self.backend.name}"
                    if self._native_forward else self.backend.name)
         return {"backend": self.backend.name, "encoder": self.fast_path, "forward": forward,
+                "certify": "native" if self.native is not None else "numpy",
                 "labels": list(self.labels), "sha256": self.bundle.sha256}
 
     def _encode(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
@@ -167,20 +168,28 @@ class Classifier:
 
         return box_bound(self.bundle)
 
+    @cached_property
+    def _native_certifier(self):
+        """runtime/certify.py certify_box in C (runtime/fastpath.py NativeCertifier) when the fast path serves this
+        bundle; None: the numpy code (the reference) certifies."""
+        return NativeCertifier.open(self.box_bound) if self.native is not None else None
+
     def predict_certified(self, texts: Sequence[str]) -> tuple[list[str], np.ndarray, np.ndarray]:
         """(B,) texts -> (B labels, (B, C) probabilities, (B,) bool): True where the float original provably
         predicts the same label, whatever int8 quantisation and pruning changed (see runtime/certify.py). A text with
         no token the bundle knows is never certified: its answer says nothing about the text."""
         from .certify import certify_packed, encode_unknown
 
-        bound, texts = self.box_bound, as_texts(texts)
+        bound, texts, certifier = self.box_bound, as_texts(texts), self._native_certifier
         probs_parts, certified_parts = [], []
         for i in range(0, max(len(texts), 1), CALL_TEXTS):
             ids, counts, unknown = encode_unknown(self.encoder, texts[i : i + CALL_TEXTS], bound.envelope,
                                                  self.native)  # (b, T), (b,), (b,) or (b, U)
             probs, logits = self.backend.run(ids, counts)  # (b, C), (b, C)
-            top = probs.argmax(axis=1)  # (b,)
-            certified_parts.append(certify_packed(bound, logits, ids, counts, unknown) & (top == logits.argmax(axis=1)))
+            top = logits.argmax(axis=1)  # (b,)
+            certified = (certifier.certify(top, ids, counts, unknown) if certifier is not None
+                         else certify_packed(bound, logits, ids, counts, unknown))  # (b,)
+            certified_parts.append(certified & (probs.argmax(axis=1) == top))
             probs_parts.append(probs)
         probs, certified = np.concatenate(probs_parts), np.concatenate(certified_parts)  # (B, C), (B,)
         return self._label_names(probs), probs, certified

@@ -45,8 +45,14 @@ def _open_library() -> ctypes.CDLL | None:
         if spec is None or not spec.origin:
             return None
         lib = ctypes.CDLL(spec.origin)
-    except (OSError, ImportError, ValueError):
+        _declare(lib)
+    except (OSError, ImportError, ValueError, AttributeError):  # AttributeError: a stale build missing a function
         return None
+    return lib
+
+
+def _declare(lib: ctypes.CDLL) -> None:
+    """The argument and result types of every function the fast path calls."""
     p, size, i64 = ctypes.c_void_p, ctypes.c_size_t, ctypes.c_void_p  # int64 arrays passed as addresses
     lib.dp_load_path.restype, lib.dp_load_path.argtypes = p, [ctypes.c_char_p, ctypes.POINTER(_Error)]
     lib.dp_free.restype, lib.dp_free.argtypes = None, [p]
@@ -64,7 +70,13 @@ def _open_library() -> ctypes.CDLL | None:
     lib.dp_stream_ids.restype, lib.dp_stream_ids.argtypes = size, [p, i64, i64, i64]
     lib.dp_stream_format.restype = ctypes.c_int
     lib.dp_stream_format.argtypes = [p, p, ctypes.POINTER(ctypes.c_void_p), ctypes.POINTER(size), ctypes.POINTER(size), err]
-    return lib
+    lib.dp_encode_unknown_flat.restype = ctypes.c_longlong
+    lib.dp_encode_unknown_flat.argtypes = [p, p, ctypes.c_char_p, i64, size, i64, size, i64, i64, p, size,
+                                           ctypes.POINTER(ctypes.c_int64), err]
+    n64 = ctypes.c_int64
+    lib.dp_certify_work_bytes.restype, lib.dp_certify_work_bytes.argtypes = size, [p, n64, n64]
+    lib.dp_certify.restype = ctypes.c_int
+    lib.dp_certify.argtypes = [p, p, n64, n64, p, p, n64, p, p, p, p, p, p, size, ctypes.c_char_p]
 
 
 class _StreamOptions(ctypes.Structure):
@@ -147,25 +159,61 @@ class NativeEncoder:
         encoded = self.encode_counted(texts)
         return None if encoded is None else encoded[:3]
 
-    def encode_counted(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
-        """encode_known's (B, T) ids, (B,) counts and (B,) known-token counts, and (B,) each text's token count (what
-        the certification needs to count tokens without a row under `skip`); None as for encode_known."""
+    @staticmethod
+    def _flatten(texts: Sequence[str]) -> tuple[bytes, np.ndarray] | None:
+        """(B,) texts -> their UTF-8 bytes joined and (B + 1,) int64 offsets; None for fewer than MIN_TEXTS texts or a
+        text that is not UTF-8-encodable (a lone surrogate: the Python encoder takes it)."""
         if len(texts) < MIN_TEXTS:
             return None
         try:
             parts = [t.encode("utf-8") for t in texts]
-        except UnicodeEncodeError:  # a lone surrogate: the Python encoder takes it
+        except UnicodeEncodeError:
             return None
         lengths = np.fromiter(map(len, parts), dtype=np.int64, count=len(parts))  # (B,)
         offsets = np.zeros(len(parts) + 1, dtype=np.int64)  # (B + 1,)
         np.cumsum(lengths, out=offsets[1:])
-        data = b"".join(parts)
-        counts, known, tokens = (np.zeros(len(parts), dtype=np.int64) for _ in range(3))  # (B,) each
+        return b"".join(parts), offsets
+
+    def encode_unknown(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
+        """(B, T) ids and (B,) counts as `encode`, (B,) int64 counts of the tokens without a row of their own (as
+        runtime/certify.py encode_unknown counts them) and the (N,) uint32 FNV-1a hashes of those tokens, text after
+        text in token order (Envelope.slots_of maps them to slots); None as for encode_known."""
+        flat_texts = self._flatten(texts)
+        if flat_texts is None:
+            return None
+        data, offsets = flat_texts
+        n = len(offsets) - 1
+        counts, unknown = np.zeros(n, dtype=np.int64), np.zeros(n, dtype=np.int64)  # (B,) each
+        flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
+        hashes = np.empty(max(int(offsets[-1]) // 2, 64), dtype=np.uint32)  # (room,): a token takes a byte or more
+        hash_total, err, scratch = ctypes.c_int64(), _Error(), self._scratch()
+        while True:
+            total = self._lib.dp_encode_unknown_flat(self._handle, scratch, data, offsets.ctypes.data, n,
+                                                     flat.ctypes.data, flat.size, counts.ctypes.data,
+                                                     unknown.ctypes.data, hashes.ctypes.data, hashes.size,
+                                                     ctypes.byref(hash_total), ctypes.byref(err))
+            if total < 0:
+                raise MemoryError(err.message.decode("utf-8", "replace"))
+            if total <= flat.size and hash_total.value <= hashes.size:
+                break
+            flat = np.empty(max(total, flat.size), dtype=np.int64)  # ligatures: more tokens than bytes; once more
+            hashes = np.empty(max(hash_total.value, hashes.size), dtype=np.uint32)
+        return (*pad(flat[:total], counts), unknown, hashes[: hash_total.value])
+
+    def encode_counted(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
+        """encode_known's (B, T) ids, (B,) counts and (B,) known-token counts, and (B,) each text's token count; None
+        as for encode_known."""
+        flat_texts = self._flatten(texts)
+        if flat_texts is None:
+            return None
+        data, offsets = flat_texts
+        n = len(offsets) - 1
+        counts, known, tokens = (np.zeros(n, dtype=np.int64) for _ in range(3))  # (B,) each
         flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
         err = _Error()
         scratch = self._scratch()
         while True:
-            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, len(parts),
+            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, n,
                                              flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
                                              tokens.ctypes.data, ctypes.byref(err))
             if total < 0:
@@ -246,3 +294,110 @@ class NativeStream:
                                       ctypes.byref(size), ctypes.byref(errors), ctypes.byref(self._err)):
             raise MemoryError(self._err.message.decode("utf-8", "replace"))
         return ctypes.string_at(out, size.value), errors.value
+
+
+class _CertLayer(ctypes.Structure):
+    """runtime/native/certify.h dp_cert_layer"""
+
+    _fields_ = [("w", ctypes.c_void_p), ("w_abs", ctypes.c_void_p), ("bias", ctypes.c_void_p),
+                ("allowance", ctypes.c_void_p), ("act", ctypes.c_int64), ("inputs", ctypes.c_int64),
+                ("out", ctypes.c_int64)]
+
+
+class _CertModel(ctypes.Structure):
+    """runtime/native/certify.h dp_cert_model"""
+
+    _fields_ = [("rows", ctypes.c_int64), ("width", ctypes.c_int64), ("q", ctypes.c_void_p),
+                ("table", ctypes.c_void_p), ("steps", ctypes.c_void_p), ("row_terms", ctypes.c_void_p),
+                ("certifiable", ctypes.c_void_p), ("terms", ctypes.c_int64), ("nlayers", ctypes.c_int64),
+                ("layers", ctypes.c_void_p), ("contrast", ctypes.c_void_p), ("classes", ctypes.c_int64),
+                ("envelope", ctypes.c_int64), ("skipped", ctypes.c_int64), ("env_lo", ctypes.c_void_p),
+                ("env_hi", ctypes.c_void_p), ("nslots", ctypes.c_int64), ("minima", ctypes.c_void_p),
+                ("pad_slot", ctypes.c_int64), ("largest", ctypes.c_double)]
+
+
+_ACTIVATIONS = {None: 0, "relu": 1, "tanh": 2}  # certify.h DP_CERT_ACT_*
+_ENV_NONE, _ENV_KEEP, _ENV_ONE, _ENV_SLOTS = range(4)  # certify.h DP_CERT_ENV_*
+
+
+class NativeCertifier:
+    """runtime/certify.py `certify_box` computed by the native library (runtime/native/certify.c, a port of the numpy
+    code, which stays the reference): the bound's arrays are handed over once, each call passes the texts' ids,
+    counts, unknown tokens (counts or slots) and top classes."""
+
+    def __init__(self, lib: ctypes.CDLL, bound) -> None:
+        self._lib = lib
+        keep = []  # every array the C side points into, alive as long as this object
+
+        def address(array: np.ndarray | None, dtype) -> int | None:
+            if array is None:
+                return None
+            array = np.ascontiguousarray(array, dtype=dtype)
+            keep.append(array)
+            return array.ctypes.data
+
+        table = bound.table  # (R, W)
+        rows, width = table.shape
+        layers = (_CertLayer * len(bound.layers))()
+        for i, (w, w_abs, b, activation, allowance) in enumerate(bound.layers):
+            layers[i] = _CertLayer(address(w, np.float64), address(w_abs, np.float64), address(b, np.float64),
+                                   address(allowance, np.float64), _ACTIVATIONS[activation],
+                                   0 if w is None else w.shape[1], b.shape[0])
+        classes = bound.layers[-1][2].shape[0]
+        env = bound.envelope
+        model = _CertModel(rows, width, address(table, np.int8) if table.dtype == np.int8 else None,
+                           None if table.dtype == np.int8 else address(table, np.float32),
+                           address(bound.row_steps32, np.float32), address(bound.row_terms, np.float64),
+                           address(bound.certifiable, np.uint8), bound.terms, len(bound.layers),
+                           ctypes.addressof(layers), address(bound.contrast, np.float64), classes)
+        if env is None or (not env.rows and not env.skipped):  # mean_box's branches
+            model.envelope = _ENV_NONE
+        elif env.rows:
+            model.envelope = _ENV_SLOTS if env.by_token else _ENV_ONE
+            model.env_lo, model.env_hi = address(env.lo, np.float64), address(env.hi, np.float64)
+            if env.by_token:
+                slots = env.slots  # (S, 2, W): computes the table of lows and negated highs below
+                model.nslots, model.minima = slots.shape[0], address(env.__dict__["_minima"], np.float64)
+                model.pad_slot = slots.shape[0] - 1  # the slot _slot_hull's pads read (the empty slot)
+                model.largest = float(env.__dict__["_largest"])
+        else:
+            model.envelope = _ENV_KEEP
+        model.skipped = int(bool(env is not None and env.skipped))
+        self._model, self._layers, self._keep = model, layers, keep
+        self.classes = classes
+
+    @classmethod
+    def open(cls, bound) -> "NativeCertifier | None":
+        """A certifier for this bound (runtime/certify.py BoxBound), or None without the native library or for an
+        activation the port does not know."""
+        lib = library()
+        if lib is None or any(layer[3] not in _ACTIVATIONS for layer in bound.layers):
+            return None
+        return cls(lib, bound)
+
+    def certify(self, top: np.ndarray, ids: np.ndarray, counts: np.ndarray, unknown: np.ndarray,
+                lower: bool = False) -> np.ndarray | tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(B,) classes, (B, T) ids, (B,) counts, unknown ((B,) counts or (B, U) slots, as runtime/certify.py
+        encode_unknown gives them) -> (B,) bool as certify_box; with `lower`, also the (B, C) lower bounds and (B,)
+        covered of logit_gaps."""
+        ids = np.ascontiguousarray(ids, dtype=np.int64)  # (B, T)
+        counts, top = (np.ascontiguousarray(a, dtype=np.int64) for a in (counts, top))  # (B,) each
+        unknown = np.ascontiguousarray(unknown, dtype=np.int64)  # (B,) or (B, U)
+        slots = unknown if unknown.ndim == 2 else None
+        batch, width = ids.shape
+        if not (counts.shape == top.shape == (batch,) and unknown.shape[0] == batch):
+            raise ValueError(f"certify: shapes {ids.shape}, {counts.shape}, {unknown.shape}, {top.shape} disagree")
+        wide = 0 if slots is None else slots.shape[1]
+        work = np.empty(self._lib.dp_certify_work_bytes(ctypes.byref(self._model), width, wide), dtype=np.uint8)
+        certified = np.empty(batch, dtype=np.bool_)  # (B,)
+        low = np.empty((batch, self.classes)) if lower else None  # (B, C)
+        covered = np.empty(batch, dtype=np.bool_) if lower else None  # (B,)
+        message = ctypes.create_string_buffer(256)
+        if self._lib.dp_certify(ctypes.byref(self._model), ids.ctypes.data, batch, width, counts.ctypes.data,
+                                None if slots is None else slots.ctypes.data, wide,
+                                None if slots is not None else unknown.ctypes.data, top.ctypes.data,
+                                certified.ctypes.data, None if low is None else low.ctypes.data,
+                                None if covered is None else covered.ctypes.data, work.ctypes.data, work.size,
+                                message):
+            raise ValueError(message.value.decode("utf-8", "replace"))
+        return (certified, low, covered) if lower else certified

@@ -519,8 +519,8 @@ def test_outlier_filter_has_teeth(tmp_path, monkeypatch):
 
 @pytest.mark.parametrize("policy", ["skip", "rest", "unk", "unk-skip"])
 def test_native_counts_are_the_python_counts(tmp_path, policy):
-    """encode_unknown with the compiled encoder (counts from C, only texts with an unknown token tokenized again)
-    gives the Python encoder's ids, counts and bucket slots exactly, for every pruned-token policy."""
+    """encode_unknown with the compiled encoder (counts and unknown tokens' hashes from C, slots by slots_of) gives
+    the Python encoder's ids, counts and bucket slots exactly, for every pruned-token policy."""
     from danpack.runtime import load
 
     rng = np.random.default_rng(23)

@@ -54,6 +54,15 @@ long long dp_encode_flat(const dp_bundle *bundle, dp_scratch *scratch, const cha
                          size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens,
                          dp_error *err);
 
+/* As dp_encode_flat, and for the certification (runtime/certify.py encode_unknown): into unknown each text's count of
+ * tokens without a row of their own (left out by 'skip'; on the out-of-vocabulary row, the unknown-word token
+ * included, by 'unk' and 'rest'), into hashes (room for hash_cap) the FNV-1a 32-bit hash of each such token's UTF-8
+ * bytes, text after text in token order, and into *hash_total how many there are (when it exceeds hash_cap, call
+ * again with that much room). */
+long long dp_encode_unknown_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets,
+                                 size_t n, int64_t *ids, size_t cap, int64_t *counts, int64_t *unknown,
+                                 uint32_t *hashes, size_t hash_cap, int64_t *hash_total, dp_error *err);
+
 /* n texts as for dp_encode_flat -> n x dp_label_count() probabilities and (unless NULL) logits, row-major. */
 int dp_classify_flat(const dp_bundle *bundle, dp_scratch *scratch, const char *data, const int64_t *offsets, size_t n,
                      float *probs, float *logits, dp_error *err);

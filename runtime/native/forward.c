@@ -211,8 +211,28 @@ int dp_classify_batch(const dp_bundle *b, dp_scratch *s, const char *const *text
     return rc;
 }
 
-long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
-                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens, dp_error *err) {
+/* FNV-1a, 32 bits (runtime/certify.py hash_token), of each token without a row of its own, into hashes (room for cap);
+ * `total` counts them all, `text` those of the current text */
+typedef struct {
+    long oov_row;
+    uint32_t *hashes;
+    size_t cap, total, text;
+} unknown_hashes;
+
+static void hash_unknown(void *ctx, const char *token, size_t len, long id) {
+    unknown_hashes *h = ctx;
+    /* skip: left out (-1); unk / rest: on the out-of-vocabulary row, the literal unknown-word token included */
+    if (id >= 0 && id != h->oov_row) return;
+    uint32_t x = 2166136261u;
+    for (size_t i = 0; i < len; i++) x = (x ^ (uint8_t)token[i]) * 16777619u;
+    if (h->total < h->cap) h->hashes[h->total] = x;
+    h->total++;
+    h->text++;
+}
+
+static long long encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                             int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens,
+                             unknown_hashes *unknown, int64_t *unknown_counts, dp_error *err) {
     dp_scratch *own = NULL;
     if (!s && !(s = own = dp_scratch_new(b))) return dp_fail(err, "out of memory"), -1;
     size_t total = 0;
@@ -224,8 +244,10 @@ long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, co
             break;
         }
         size_t count, found;
+        if (unknown) unknown->text = 0;
         if (dp_utf8_decode((const uint8_t *)data + offsets[i], (size_t)(offsets[i + 1] - offsets[i]), &s->tok.cps) ||
-            dp_encode_cps(b, s, s->tok.cps.v, s->tok.cps.n, &count, &found, NULL, NULL, err)) {
+            dp_encode_cps(b, s, s->tok.cps.v, s->tok.cps.n, &count, &found, unknown ? hash_unknown : NULL, unknown,
+                          err)) {
             dp_fail(err, "out of memory");
             rc = -1;
             break;
@@ -233,11 +255,26 @@ long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, co
         counts[i] = (int64_t)count;
         if (known) known[i] = (int64_t)found;
         if (tokens) tokens[i] = (int64_t)s->tok.nspans;
+        if (unknown_counts) unknown_counts[i] = (int64_t)unknown->text;
         for (size_t k = 0; k < count; k++, total++)
             if (total < cap) ids[total] = (int64_t)s->ids[k];
     }
     dp_scratch_free(own);
     return rc < 0 ? rc : (long long)total;
+}
+
+long long dp_encode_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                         int64_t *ids, size_t cap, int64_t *counts, int64_t *known, int64_t *tokens, dp_error *err) {
+    return encode_flat(b, s, data, offsets, n, ids, cap, counts, known, tokens, NULL, NULL, err);
+}
+
+long long dp_encode_unknown_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
+                                 int64_t *ids, size_t cap, int64_t *counts, int64_t *unknown, uint32_t *hashes,
+                                 size_t hash_cap, int64_t *hash_total, dp_error *err) {
+    unknown_hashes h = {b->oov_row, hashes, hash_cap, 0, 0};
+    long long total = encode_flat(b, s, data, offsets, n, ids, cap, counts, NULL, NULL, &h, unknown, err);
+    *hash_total = (int64_t)h.total;
+    return total;
 }
 
 int dp_classify_flat(const dp_bundle *b, dp_scratch *s, const char *data, const int64_t *offsets, size_t n,
