@@ -309,20 +309,32 @@ class Envelope:
         """(N,) uint32 FNV-1a hashes of tokens the bundle does not know -> (N,) int64 slots: the empty slot (K + 1)
         for a listed absent token, else the one envelope (K) for a token the outlier filter holds or when the field
         has no buckets, else its bucket (h mod K). The one rule for both encoders (the compiled one reports hashes,
-        the Python one computes `hash_token`)."""
-        h = np.asarray(hashes, dtype=np.uint32)  # (N,)
+        the Python one computes `hash_token`); cached per hash, as unknown tokens repeat (typos, names)."""
+        cache = self.__dict__.setdefault("_hash_slots", {})
+        keys = np.asarray(hashes, dtype=np.uint32).tolist()
+        slots = [cache.get(h, -1) for h in keys]
+        new = [i for i, slot in enumerate(slots) if slot < 0]
+        if new:
+            fresh = self._rule(np.array([keys[i] for i in new], dtype=np.uint32)).tolist()
+            if len(cache) + len(new) > 65536:  # a stream of ever-new tokens stays bounded
+                cache.clear()
+            for i, slot in zip(new, fresh):
+                slots[i] = cache[keys[i]] = slot
+        return np.array(slots, dtype=np.int64)
+
+    def _rule(self, h: np.ndarray) -> np.ndarray:
+        """`slots_of` without the cache: (N,) uint32 -> (N,) int64."""
         k = self.hash_buckets
         slots = (h % np.uint32(k)).astype(np.int64) if k else np.zeros(h.shape, dtype=np.int64)  # (N,)
         if self.outliers is not None:
             slots[self.outliers.holds(h)] = k
-        empty = k + 1
         if self.absent:
             listed = self.__dict__.get("_absent_sorted")
             if listed is None:
                 listed = np.array(sorted(self.absent), dtype=np.uint32)
                 object.__setattr__(self, "_absent_sorted", listed)
             at = np.minimum(np.searchsorted(listed, h), listed.size - 1)  # (N,)
-            slots[listed[at] == h] = empty
+            slots[listed[at] == h] = k + 1  # the empty slot
         return slots
 
 
