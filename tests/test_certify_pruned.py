@@ -506,7 +506,7 @@ def test_outlier_filter_has_teeth(tmp_path, monkeypatch):
     field = bundle.manifest["unknown"]
     assert "outliers" in field and "buckets" in field and field["outliers"]["probes"] == options.probes
     env = certify.read_envelope(bundle)
-    outlier = _outlier_rows(model, False, options.outlier_tail)  # (V,)
+    outlier = _outlier_rows(model, False, options.outlier_tail, np.arange(len(model.vocab)))  # (V,)
     left = [t for t, out in zip(model.vocab, outlier) if out and t not in set(bundle.vocab)]
     assert len(left) >= 5
     assert (env.slots_of(np.array([certify.hash_token(t) for t in left], np.uint32)) == env.hash_buckets).all()

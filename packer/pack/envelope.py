@@ -35,6 +35,7 @@ from danpack.runtime.errors import DanpackError
 from danpack.runtime.certify import build_filter, decode_buckets, gamma, gamma64, hash_token
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
+OUTLIER_ROWS = 8192  # float rows per block when looking for the outliers (the mask is needed before the envelope)
 
 
 @dataclass(frozen=True)
@@ -178,24 +179,31 @@ def _merge(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.stack([np.minimum(a[..., 0, :], b[..., 0, :]), np.maximum(a[..., 1, :], b[..., 1, :])], axis=-2)
 
 
-def _outlier_rows(model: FloatModel, folded: bool, tail: float) -> np.ndarray | None:
-    """(V,) bool: the float rows beyond the `tail` quantiles (estimated on up to 65,536 evenly spaced rows) at either
-    end of any coordinate. Any split is sound (the core's bounds are taken over the core's rows); this one keeps the
-    few rows that set the extremes out of the buckets. None when `tail` is 0."""
-    if not tail:
+def _outlier_rows(model: FloatModel, folded: bool, tail: float, rows: np.ndarray) -> np.ndarray | None:
+    """(V,) bool: which of `rows` lie beyond the `tail` quantiles (estimated on up to 65,536 evenly spaced float rows)
+    at either end of any coordinate; False elsewhere. Any split is sound (the core's bounds are taken over the
+    core's rows); this one keeps the few rows that set the extremes out of the buckets. None when `tail` is 0 or no
+    row is asked about. Float32 midpoints in blocks of OUTLIER_ROWS rows bound the temporaries."""
+    if not tail or not rows.size:
         return None
     vocab = len(model.vocab)
     sample = np.unique(np.linspace(0, vocab - 1, min(vocab, 65536)).astype(np.int64))
-    lo, hi = _row_bounds(model, sample, folded)  # (s, W)
-    mid = 0.5 * (lo + hi)
+    mid = np.concatenate([_midpoints(model, sample[i : i + OUTLIER_ROWS], folded)
+                          for i in range(0, sample.size, OUTLIER_ROWS)])  # (s, W) float32
     low, high = np.quantile(mid, tail, axis=0), np.quantile(mid, 1.0 - tail, axis=0)  # (W,)
+    del mid
     out = np.zeros(vocab, dtype=bool)
-    for start in range(0, vocab, CHUNK_ROWS):
-        part = np.arange(start, min(start + CHUNK_ROWS, vocab))
-        lo, hi = _row_bounds(model, part, folded)
-        mid = 0.5 * (lo + hi)
+    for i in range(0, rows.size, OUTLIER_ROWS):
+        part = rows[i : i + OUTLIER_ROWS]
+        mid = _midpoints(model, part, folded)  # (r, W)
         out[part] = ((mid < low) | (mid > high)).any(axis=1)
     return out
+
+
+def _midpoints(model: FloatModel, rows: np.ndarray, folded: bool) -> np.ndarray:
+    """(r,) float rows -> (r, W) float32 midpoints of their table-space bounds (only where the outliers fall)."""
+    lo, hi = _row_bounds(model, rows, folded)
+    return (0.5 * (lo + hi)).astype(np.float32)
 
 
 def _finish(model: FloatModel, folded: bool, rows: int, groups: np.ndarray, outlier_hashes: np.ndarray,
@@ -239,7 +247,7 @@ def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: 
     rows = np.flatnonzero(left)  # (P,): every row left out, reachable or not (no reliance on the reachability test)
     width, k = _width(model, folded), options.bucket_count
     hashes = _token_hashes(tuple(model.vocab)) if k else None
-    outlier = _outlier_rows(model, folded, options.outlier_tail) if options.filtering else None
+    outlier = _outlier_rows(model, folded, options.outlier_tail, rows) if options.filtering else None
     groups = _group_bounds(rows[:0], np.zeros((0, width)), np.zeros((0, width)), hashes, outlier, k)
     for start in range(0, rows.size, CHUNK_ROWS):
         part = rows[start : start + CHUNK_ROWS]
@@ -267,13 +275,14 @@ class EnvelopeIndex:
         token_bytes = _token_bytes(tuple(model.vocab))
         self.suffix_bytes = np.append(np.cumsum(token_bytes[self.order][::-1])[::-1], 0)  # (n + 1,): order[i:]
         self.hashes = _token_hashes(tuple(model.vocab)) if k else None
-        self.outlier = _outlier_rows(model, folded, options.outlier_tail) if options.filtering else None
         fixed = np.ones(len(model.vocab), dtype=bool)  # (V,): left out whatever the cut
         fixed[self.order] = False
         self.unk = model.vocab.index(model.unk_token) if model.oov_policy == "unk" else None
         if self.unk is not None:
             fixed[self.unk] = True
         rest = np.flatnonzero(fixed)
+        self.outlier = (_outlier_rows(model, folded, options.outlier_tail, np.arange(len(model.vocab)))
+                        if options.filtering else None)  # every row: a cut can leave out any of them
         where = np.flatnonzero(self.order == self.unk) if self.unk is not None else np.zeros(0, np.int64)
         self.unk_position = int(where[0]) if where.size else None  # the unknown row's place in the ranking
         self.fixed_rows = int(rest.size)

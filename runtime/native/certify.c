@@ -14,10 +14,7 @@
 #include <string.h>
 
 #include "certify.h"
-
-#if defined(__SSE2__)
-#include <emmintrin.h>
-#endif
+#include "internal.h"
 
 #define INFLATE (1.0 + 0x1p-20)    /* runtime/certify.py INFLATE */
 #define TANH_ERROR 0x1p-20         /* runtime/certify.py TANH_ERROR */
@@ -37,37 +34,7 @@ static double gamma64(double k) { return k * 0x1p-53 / (1.0 - k * 0x1p-53); }
 static double nmin(double a, double b) { return a != a ? a : b != b ? b : a < b ? a : b; }
 static double nmax(double a, double b) { return a != a ? a : b != b ? b : a > b ? a : b; }
 
-#if defined(__SSE2__)
-/* four int8 elements -> four float32 products q·s: the same IEEE operations as the scalar loop, four lanes at once
- * (runtime/native/forward.c does the same; x86-64 always has SSE2, other machines take the scalar loops) */
-static __m128 four_products(const int8_t *row, __m128 step) {
-    int32_t four;
-    memcpy(&four, row, 4);
-    __m128i v = _mm_cvtsi32_si128(four);
-    v = _mm_unpacklo_epi8(v, v);
-    v = _mm_srai_epi32(_mm_unpacklo_epi16(v, v), 24); /* sign-extended */
-    return _mm_mul_ps(_mm_cvtepi32_ps(v), step);
-}
-#endif
-
-/* out = dequantised row id: int8 -> float32 (exact) times its float32 step, rounded to float32, as numpy does */
-static void load_row(const dp_cert_model *m, int64_t id, float *restrict out) {
-    size_t W = (size_t)m->width, d = 0;
-    float step = m->steps[id];
-    if (m->q) {
-        const int8_t *restrict row = m->q + (size_t)id * W;
-#if defined(__SSE2__)
-        __m128 sc = _mm_set1_ps(step);
-        for (; d + 4 <= W; d += 4) _mm_storeu_ps(out + d, four_products(row + d, sc));
-#endif
-        for (; d < W; d++) out[d] = (float)row[d] * step;
-    } else {
-        const float *restrict row = m->table + (size_t)id * W;
-        for (; d < W; d++) out[d] = row[d] * step;
-    }
-}
-
-/* acc += dequantised row id, in float32 */
+/* acc += dequantised row id, in float32 (int8 -> float32 is exact, times its float32 step, rounded as numpy does) */
 static void add_row(const dp_cert_model *m, int64_t id, float *restrict acc) {
     size_t W = (size_t)m->width, d = 0;
     float step = m->steps[id];
@@ -76,7 +43,7 @@ static void add_row(const dp_cert_model *m, int64_t id, float *restrict acc) {
 #if defined(__SSE2__)
         __m128 sc = _mm_set1_ps(step);
         for (; d + 4 <= W; d += 4)
-            _mm_storeu_ps(acc + d, _mm_add_ps(_mm_loadu_ps(acc + d), four_products(row + d, sc)));
+            _mm_storeu_ps(acc + d, _mm_add_ps(_mm_loadu_ps(acc + d), dp_four_products(row + d, sc)));
 #endif
         for (; d < W; d++) acc[d] += (float)row[d] * step;
     } else {
@@ -88,6 +55,12 @@ static void add_row(const dp_cert_model *m, int64_t id, float *restrict acc) {
 #endif
         for (; d < W; d++) acc[d] += row[d] * step;
     }
+}
+
+/* out = dequantised row id (0 + x is x for every x but -0, which every bound below treats as +0) */
+static void load_row(const dp_cert_model *m, int64_t id, float *restrict out) {
+    memset(out, 0, (size_t)m->width * sizeof *out);
+    add_row(m, id, out);
 }
 
 /* numpy's pairwise float32 sum of the dequantised rows ids[0..n) (its pairwise_sum, coordinate by coordinate);

@@ -53,12 +53,7 @@ static void forward(const dp_bundle *b, dp_scratch *s, const size_t *ids, size_t
              * to double, double sum (x86-64 always has SSE2; other machines take the loop below) */
             __m128 sc = _mm_set1_ps(scale);
             for (; d + 4 <= W; d += 4) {
-                int32_t four;
-                memcpy(&four, row + d, 4);
-                __m128i v = _mm_cvtsi32_si128(four);
-                v = _mm_unpacklo_epi8(v, v);
-                v = _mm_srai_epi32(_mm_unpacklo_epi16(v, v), 24); /* sign-extended */
-                __m128 f = _mm_mul_ps(_mm_cvtepi32_ps(v), sc);
+                __m128 f = dp_four_products(row + d, sc);
                 _mm_storeu_pd(a + d, _mm_add_pd(_mm_loadu_pd(a + d), _mm_cvtps_pd(f)));
                 _mm_storeu_pd(a + d + 2, _mm_add_pd(_mm_loadu_pd(a + d + 2), _mm_cvtps_pd(_mm_movehl_ps(f, f))));
             }
