@@ -264,7 +264,7 @@ class Envelope:
     lo: np.ndarray  # (W,) float64: per-coordinate minimum over those rows, less their float32 rounding reserve
     hi: np.ndarray  # (W,) float64: per-coordinate maximum, plus the reserve
     buckets: np.ndarray | None = None  # (K, 2, W) float64: lo and hi of the rows whose token hashes to bucket j
-    # (`bucket_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
+    # (`slots_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
     absent: frozenset = frozenset()  # FNV-1a hashes of tokens the float model never knew (no float token has one)
     outliers: OutlierFilter | None = None  # tokens of the rows outside the buckets (which then hold the core only)
 
@@ -287,23 +287,28 @@ class Envelope:
             own = self.buckets if self.buckets is not None else whole[:0]  # (K, 2, W)
             empty = np.stack([np.full_like(self.lo, np.inf), np.full_like(self.hi, -np.inf)])[None]  # (1, 2, W)
             slots = np.concatenate([own, whole, empty])
-            minima = np.stack([slots[:, 0], -slots[:, 1]], axis=1)  # (K + 1, 2, W): lows and negated highs
+            minima = np.stack([slots[:, 0], -slots[:, 1]], axis=1)  # (K + 2, 2, W): lows and negated highs
             finite = np.abs(minima[np.isfinite(minima)])
             object.__setattr__(self, "_slots", slots)
             object.__setattr__(self, "_minima", minima)
             object.__setattr__(self, "_largest", float(finite.max()) if finite.size else 0.0)
         return self.__dict__["_slots"]
 
+    @property
+    def minima(self) -> np.ndarray:
+        """(K + 2, 2, W) float64: each slot's lows and negated highs, so that both sides of a bound take minima."""
+        self.slots  # built and cached with the slots
+        return self.__dict__["_minima"]
+
+    @property
+    def largest(self) -> float:
+        """The largest finite |bound| of any slot (for the float64 rounding allowance of the slot hull)."""
+        self.slots  # built and cached with the slots
+        return self.__dict__["_largest"]
+
     def slot_of(self, token: str) -> int:
-        """The slot of a token the bundle does not know (`slots_of` on its hash), cached per token."""
-        cache = self.__dict__.setdefault("_slot_cache", {})
-        slot = cache.get(token)
-        if slot is None:
-            slot = int(self.slots_of(np.array([hash_token(token)], dtype=np.uint32))[0])
-            if len(cache) >= 65536:  # unknown tokens repeat (typos, names); a stream of new ones stays bounded
-                cache.clear()
-            cache[token] = slot
-        return slot
+        """The slot of a token the bundle does not know: `slots_of` on its hash."""
+        return int(self.slots_of(np.array([hash_token(token)], dtype=np.uint32))[0])
 
     def slots_of(self, hashes: np.ndarray) -> np.ndarray:
         """(N,) uint32 FNV-1a hashes of tokens the bundle does not know -> (N,) int64 slots: the empty slot (K + 1)
@@ -519,41 +524,38 @@ def encode_unknown(encoder: Encoder, texts: Sequence[str], envelope: Envelope | 
                    native=None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Texts -> ((B, T) ids and (B,) counts exactly as `encoder.encode`, unknown): the tokens without a row of
     their own, as (B,) int64 counts, or, when the envelope tells tokens apart (`Envelope.by_token`), as (B, U)
-    int64 slots of those tokens (`Envelope.slot_of`), padded with -1. With `native` (runtime/fastpath.py
-    NativeEncoder, same ids) the compiled encoder reports the counts and each unknown token's FNV-1a hash, which
-    `Envelope.slots_of` maps to its slot: no text is tokenized again here.
+    int64 slots of those tokens (`Envelope.slots_of` on their FNV-1a hashes), padded with -1. With `native`
+    (runtime/fastpath.py NativeEncoder, same ids) the compiled encoder reports the counts and the hashes.
 
     Not `Encoder.encode_known`'s complement: a token on the out-of-vocabulary row counts as unknown here even
     when it is the unknown-word token itself, whose float row the certification must then bound too."""
     oov, tokenize, map_tokens, index = encoder.oov_id, encoder.tokenizer.tokenize, encoder.map_tokens, encoder.index
     by_token = envelope is not None and envelope.by_token
-
-    def unknown_slots(tokens: list[str]) -> list[int]:
-        return list(map(envelope.slot_of, [t for t in tokens if t not in index] if oov is None else
-                        [t for t in tokens if index.get(t, oov) == oov]))
-
     encoded = native.encode_unknown(texts) if native is not None else None
-    slots: list[int] | np.ndarray = []
     if encoded is not None:
         # skip: an unknown token is left out of the ids; unk / rest: it sits on the out-of-vocabulary row
         ids, counts, unknown, hashes = encoded  # (B, T), (B,), (B,), (N,) uint32: the N unknown tokens, in order
-        if by_token:
-            slots = envelope.slots_of(hashes)  # (N,)
     else:
-        id_lists, unknown = [], np.zeros(len(texts), dtype=np.int64)
+        id_lists, unknown, hash_list = [], np.zeros(len(texts), dtype=np.int64), []
         for i, text in enumerate(texts):
             tokens = tokenize(text)
             rows = map_tokens(tokens)
             unknown[i] = len(tokens) - len(rows) if oov is None else rows.count(oov)
             if by_token and unknown[i]:
-                slots.extend(unknown_slots(tokens))
+                hash_list.extend(hash_token(t) for t in tokens if (t not in index if oov is None else
+                                                                   index.get(t, oov) == oov))
             id_lists.append(rows)
         ids, counts = encode_batch(id_lists)
-    if not by_token:
-        return ids, counts, unknown
-    table = np.full((len(texts), max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)
-    table[np.arange(table.shape[1])[None, :] < unknown[:, None]] = slots  # row-major: each text's slots first
-    return ids, counts, table
+        hashes = np.array(hash_list, dtype=np.uint32)  # (N,)
+    return (ids, counts, slot_table(unknown, envelope.slots_of(hashes))) if by_token else (ids, counts, unknown)
+
+
+def slot_table(unknown: np.ndarray, slots: Sequence[int] | np.ndarray) -> np.ndarray:
+    """(B,) counts of each text's unknown tokens and their (sum,) slots, text after text -> (B, U) slots padded with -1
+    (each text's slots first; U at least 1), the form `mean_box` takes."""
+    table = np.full((unknown.shape[0], max(int(unknown.max(initial=0)), 1)), -1, dtype=np.int64)  # (B, U)
+    table[np.arange(table.shape[1])[None, :] < unknown[:, None]] = slots  # row-major: text after text
+    return table
 
 
 def _as_box(lo: np.ndarray, hi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -615,7 +617,7 @@ def _slot_hull(env: Envelope, slots: np.ndarray, low: np.ndarray, high: np.ndarr
     valid = slots >= 0  # (b, U): a text's slots come first, pads (-1) after
     u = valid.sum(axis=1)  # (b,)
     empty = env.slots.shape[0] - 1  # pads read the empty slot: +inf on both sides, never the lowest
-    minima, largest = env.__dict__["_minima"], env.__dict__["_largest"]
+    minima, largest = env.minima, env.largest
     index = np.where(valid, slots, empty)  # (b, U)
     base = np.stack([low, -high], axis=1)  # (b, 2, W): lows and negated highs, so both sides take minima
     kept = n.astype(np.float64)[:, None, None]  # (b, 1, 1)

@@ -156,8 +156,25 @@ class NativeEncoder:
     def encode_known(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray] | None:
         """As Encoder.encode_known: (B, T) ids, (B,) counts and (B,) known-token counts; None as for encode, and for
         fewer than MIN_TEXTS texts."""
-        encoded = self.encode_counted(texts)
-        return None if encoded is None else encoded[:3]
+        flat_texts = self._flatten(texts)
+        if flat_texts is None:
+            return None
+        data, offsets = flat_texts
+        n = len(offsets) - 1
+        counts, known, tokens = (np.zeros(n, dtype=np.int64) for _ in range(3))  # (B,) each; tokens: not needed here
+        flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
+        err = _Error()
+        scratch = self._scratch()
+        while True:
+            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, n,
+                                             flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
+                                             tokens.ctypes.data, ctypes.byref(err))
+            if total < 0:
+                raise MemoryError(err.message.decode("utf-8", "replace"))
+            if total <= flat.size:
+                break
+            flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
+        return (*pad(flat[:total], counts), known)
 
     @staticmethod
     def _flatten(texts: Sequence[str]) -> tuple[bytes, np.ndarray] | None:
@@ -199,29 +216,6 @@ class NativeEncoder:
             flat = np.empty(max(total, flat.size), dtype=np.int64)  # ligatures: more tokens than bytes; once more
             hashes = np.empty(max(hash_total.value, hashes.size), dtype=np.uint32)
         return (*pad(flat[:total], counts), unknown, hashes[: hash_total.value])
-
-    def encode_counted(self, texts: Sequence[str]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None:
-        """encode_known's (B, T) ids, (B,) counts and (B,) known-token counts, and (B,) each text's token count; None
-        as for encode_known."""
-        flat_texts = self._flatten(texts)
-        if flat_texts is None:
-            return None
-        data, offsets = flat_texts
-        n = len(offsets) - 1
-        counts, known, tokens = (np.zeros(n, dtype=np.int64) for _ in range(3))  # (B,) each
-        flat = np.empty(max(int(offsets[-1]), 64), dtype=np.int64)  # (room,): usually one id per few bytes
-        err = _Error()
-        scratch = self._scratch()
-        while True:
-            total = self._lib.dp_encode_flat(self._handle, scratch, data, offsets.ctypes.data, n,
-                                             flat.ctypes.data, flat.size, counts.ctypes.data, known.ctypes.data,
-                                             tokens.ctypes.data, ctypes.byref(err))
-            if total < 0:
-                raise MemoryError(err.message.decode("utf-8", "replace"))
-            if total <= flat.size:
-                break
-            flat = np.empty(total, dtype=np.int64)  # ligatures can make more tokens than bytes: once more
-        return (*pad(flat[:total], counts), known, tokens)
 
 
 def pad(flat: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -356,10 +350,9 @@ class NativeCertifier:
             model.envelope = _ENV_SLOTS if env.by_token else _ENV_ONE
             model.env_lo, model.env_hi = address(env.lo, np.float64), address(env.hi, np.float64)
             if env.by_token:
-                slots = env.slots  # (S, 2, W): computes the table of lows and negated highs below
-                model.nslots, model.minima = slots.shape[0], address(env.__dict__["_minima"], np.float64)
-                model.pad_slot = slots.shape[0] - 1  # the slot _slot_hull's pads read (the empty slot)
-                model.largest = float(env.__dict__["_largest"])
+                model.nslots, model.minima = env.minima.shape[0], address(env.minima, np.float64)  # (S, 2, W)
+                model.pad_slot = env.minima.shape[0] - 1  # the slot _slot_hull's pads read (the empty slot)
+                model.largest = env.largest
         else:
             model.envelope = _ENV_KEEP
         model.skipped = int(bool(env is not None and env.skipped))

@@ -200,6 +200,11 @@ def _outlier_rows(model: FloatModel, folded: bool, tail: float, rows: np.ndarray
     return out
 
 
+def _outlier_hashes(hashes: np.ndarray | None, outlier: np.ndarray | None, rows: np.ndarray) -> np.ndarray:
+    """(r,) float rows -> the uint32 hashes of the tokens of those among them set apart (none without a filter)."""
+    return np.zeros(0, np.uint32) if outlier is None else hashes[rows[outlier[rows]]]
+
+
 def _midpoints(model: FloatModel, rows: np.ndarray, folded: bool) -> np.ndarray:
     """(r,) float rows -> (r, W) float32 midpoints of their table-space bounds (only where the outliers fall)."""
     lo, hi = _row_bounds(model, rows, folded)
@@ -254,9 +259,8 @@ def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: 
         row_lo, row_hi = _row_bounds(model, part, folded)  # (r, W) each
         groups = _merge(groups, _group_bounds(part, row_lo, row_hi, hashes, outlier, k))
     budget = parts_budget(model, width, rows.size, int(_token_bytes(tuple(model.vocab))[rows].sum()))
-    outlier_hashes = hashes[rows[outlier[rows]]] if outlier is not None else np.zeros(0, np.uint32)
-    return _finish(model, folded, rows.size, groups, outlier_hashes, _absent_hashes(model, absent, options), budget,
-                   options)
+    return _finish(model, folded, rows.size, groups, _outlier_hashes(hashes, outlier, rows),
+                   _absent_hashes(model, absent, options), budget, options)
 
 
 class EnvelopeIndex:
@@ -290,7 +294,7 @@ class EnvelopeIndex:
         self.fixed_groups = self._groups(rest[:0])  # (2K + 1, 2, W)
         for start in range(0, rest.size, CHUNK_ROWS):
             self.fixed_groups = _merge(self.fixed_groups, self._groups(rest[start : start + CHUNK_ROWS]))
-        self.fixed_outliers = self._outlier_hashes(rest)
+        self.fixed_outliers = _outlier_hashes(self.hashes, self.outlier, rest)
         # the ranked outlier rows' hashes, and their places in the ranking (a cut keeps those before `keep`)
         ranked_out = np.flatnonzero(self.outlier[self.order]) if self.outlier is not None else np.zeros(0, np.int64)
         self.outlier_places = ranked_out  # (o,) ascending
@@ -305,11 +309,6 @@ class EnvelopeIndex:
     def _groups(self, rows: np.ndarray) -> np.ndarray:
         lo, hi = _row_bounds(self.model, rows, self.folded) if rows.size else (np.zeros((0, self.width)),) * 2
         return _group_bounds(rows, lo, hi, self.hashes, self.outlier, self.options.bucket_count)
-
-    def _outlier_hashes(self, rows: np.ndarray) -> np.ndarray:
-        if self.outlier is None:
-            return np.zeros(0, np.uint32)
-        return self.hashes[rows[self.outlier[rows]]]
 
     def envelope(self, keep: int) -> dict:
         """The manifest field of a bundle keeping `order[:keep]` (equal to `unknown_envelope` of those rows)."""

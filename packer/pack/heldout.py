@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from danpack.runtime.bundle import Bundle
-from danpack.runtime.certify import box_bound, certify_packed, row_reach
+from danpack.runtime.certify import box_bound, certify_packed, hash_token, row_reach, slot_table
 from danpack.runtime.forward import Layer, forward_logits, softmax
 from danpack.runtime.tokenize import Tokenizer
 
@@ -128,14 +128,16 @@ class HeldOut:
         by_length = sorted(range(len(texts)), key=lambda i: len(row_lists[i]))
         texts = [texts[i] for i in by_length]
         row_lists = [row_lists[i] for i in by_length]
-        self.token_lists = [token_lists[i] for i in by_length]  # the tokens, for the envelope's hash slots
         self.texts = texts
         self.gold = None if gold is None else np.asarray(gold)[by_length]
         counts = np.fromiter(map(len, row_lists), np.int64, len(row_lists))  # (N,)
         width = max(int(counts.max()) if len(texts) else 0, 1)
         rows = np.full((len(texts), width), -1, np.int64)  # (N, T): float row, -1 for a token the model lacks
-        for i, r in enumerate(row_lists):
+        hashes = np.zeros((len(texts), width), np.uint32)  # (N, T): each token's FNV-1a, for the envelope's slots
+        for i, (r, j) in enumerate(zip(row_lists, by_length)):
             rows[i, : len(r)] = r
+            hashes[i, : len(r)] = [hash_token(t) for t in token_lists[j]]
+        self.hashes = hashes
         self.counts = counts
         self.valid = np.arange(width)[None, :] < counts[:, None]  # (N, T)
         # compact rows: every float row the slice uses, plus the unknown-token row
@@ -209,11 +211,7 @@ class HeldOut:
         envelope = t.envelopes.envelope(candidate.keep)
         bound = box_bound(_stand_in(self.model, q, scales, t.layers, oov, envelope))
         if bound.envelope is not None and bound.envelope.by_token:  # each unknown token's slot, as encode_unknown
-            slots = np.full((len(self), max(int(unknown.max(initial=0)), 1)), -1, np.int64)  # (N, U)
-            slot_of, tokens = bound.envelope.slot_of, self.token_lists
-            slots[np.arange(slots.shape[1])[None, :] < unknown[:, None]] = [
-                slot_of(tokens[i][j]) for i, j in zip(*np.nonzero(where))]
-            unknown = slots
+            unknown = slot_table(unknown, bound.envelope.slots_of(self.hashes[where]))  # (N, U)
         agree, moved, certified, right = [], [], [], []
         for s in range(0, len(self), BATCH):
             part = slice(s, s + BATCH)
