@@ -13,8 +13,9 @@ a user opens it (the native fast path when the compiled part is built; `DANPACK_
 the round-by-round ratios, the certified shares (all texts, texts whose tokens are all kept, texts with a
 token the bundle does not know), certified texts whose label differs from the float original's (always 0),
 and the bytes the manifest's `unknown` envelope adds to the bundle. `--envelopes` packs each model once per
-envelope setting BUCKETS/MIN_COUNT[/TAIL[/BITS]] (hash buckets; list corpus tokens the float model never knew seen
-at least MIN_COUNT times, 0: no list; outlier filter for rows beyond the TAIL quantiles, BITS per row; no TAIL: none) and prints them side by side, with the share the pre-envelope bound certified
+envelope setting BUCKETS/MIN_COUNT[/TAIL[/BITS[/SPREAD]]] (hash buckets; list corpus tokens the float model never
+knew seen at least MIN_COUNT times, 0: no list, as fingerprints with SPREAD values per float token; outlier filter
+for rows beyond the TAIL quantiles, BITS per row; no TAIL: none) and prints them side by side, with the share the pre-envelope bound certified
 ("before": the drift bound on texts whose tokens are all kept, no text with an unknown token).
 """
 
@@ -37,6 +38,12 @@ def envelope_bytes(bundle) -> int:
     """Bytes the manifest's `unknown` field takes in the payload (its msgpack key and value)."""
     field = bundle.manifest.get("unknown")
     return 0 if field is None else len(msgpack.packb("unknown")) + len(msgpack.packb(field))
+
+
+def absent_count(field: dict) -> int:
+    """Tokens the `unknown` field lists as never known to the float model (a fingerprint set, or older plain hashes)."""
+    absent = field.get("absent")
+    return 0 if absent is None else len(absent) // 4 if isinstance(absent, bytes) else int(absent["count"])
 
 
 def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[str], timing: bool,
@@ -62,7 +69,8 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
             parts = setting.split("/")
             options = EnvelopeOptions(buckets=int(parts[0]), absent_min_count=int(parts[1]),
                                       outlier_tail=float(parts[2]) if len(parts) > 2 else 0.0,
-                                      outlier_bits=int(parts[3]) if len(parts) > 3 else options.outlier_bits)
+                                      outlier_bits=int(parts[3]) if len(parts) > 3 else options.outlier_bits,
+                                      absent_spread=int(parts[4]) if len(parts) > 4 else options.absent_spread)
         packed = pack_model(model_dir, None, PackOptions(corpora=(str(stream),), envelope=options,
                                                          measure=not fixed_rules)).data
         bundle = decode_bundle(packed)
@@ -76,7 +84,7 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
         print(f"## {name} [buckets {options.buckets}, absent min count {options.absent_min_count}, outlier tail "
               f"{options.outlier_tail}, {options.outlier_bits} bits]: "
               f"{bundle.size:,} bytes, {len(bundle.vocab):,} rows, envelope {envelope_bytes(bundle):,} bytes "
-              f"({envelope_bytes(bundle) / bundle.size:.2%}; {len(field.get('absent', b'')) // 4:,} absent tokens, outlier filter {len((field.get('outliers') or {}).get('filter', b'')):,} B); "
+              f"({envelope_bytes(bundle) / bundle.size:.2%}; {absent_count(field):,} absent tokens, outlier filter {len((field.get('outliers') or {}).get('filter', b'')):,} B); "
               f"before {before.mean():.2%}, certified {report.share:.2%} of {report.texts:,} "
               f"(all kept {float(report.certified[report.covered].mean()):.2%}, with unknown tokens "
               f"{report.share_of_uncovered or 0.0:.2%}); certified with another label than the float original: "
@@ -101,7 +109,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--model", action="append", default=[], help="NAME=DIR of a float model (repeatable)")
     parser.add_argument("--work", default="bench/out/certified", help="where the deployment stream is written")
-    parser.add_argument("--envelopes", default="", help="BUCKETS/MIN_COUNT[/TAIL[/BITS]] settings, comma-separated (default: the "
+    parser.add_argument("--envelopes", default="", help="BUCKETS/MIN_COUNT[/TAIL[/BITS[/SPREAD]]] settings, comma-separated (default: the "
                         "packer's default only); timing runs on the last")
     parser.add_argument("--no-timing", action="store_true", help="certified shares only")
     parser.add_argument("--no-measure", action="store_true", help="pack with the fixed rules (coverage 0.995), "

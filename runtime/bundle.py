@@ -25,6 +25,7 @@ import msgpack
 import numpy as np
 
 from .errors import BundleError
+from .fingerprints import decode_fingerprints
 from .graph import first_difference, spec_from_tensors, write_graph
 from .onnx_wire import read_graph_names
 from .safe_text import labels_problem, token_problem
@@ -405,7 +406,8 @@ def _check_description(fail, m: dict) -> None:
 def _check_unknown(fail, field: object, width: int) -> None:
     """The optional envelope of tokens the bundle does not know (runtime/certify.py); absent in older bundles.
     Optional parts: `buckets` ((K, 2, width) uint8 steps; a bucket is all 255 or each coordinate's two steps sum
-    to at most 254), `absent` (strictly ascending uint32 hashes; only for a float model that skips) and `outliers`
+    to at most 254), `absent` (a fingerprint set, runtime/fingerprints.py, or strictly ascending uint32 hashes as
+    older packers wrote; only for a float model that skips) and `outliers`
     ({filter: bytes, probes: 1..16}; only with buckets)."""
     if field is None:
         return
@@ -428,11 +430,18 @@ def _check_unknown(fail, field: object, width: int) -> None:
         if (steps[~empty].sum(axis=1) > 254).any():
             raise fail("field 'unknown' buckets: a bucket must be all 255 (empty) or have lo + hi steps <= 254")
     absent = field.get("absent")
-    if absent is not None:
-        if not isinstance(absent, bytes) or not absent or len(absent) % 4 or not skipped:
-            raise fail("field 'unknown' absent must be bytes, a positive multiple of 4, and only where skipped is true")
+    if absent is not None and not skipped:
+        raise fail("field 'unknown' absent is allowed only where skipped is true")
+    if isinstance(absent, bytes):  # packers before the fingerprint set wrote plain uint32 hashes
+        if not absent or len(absent) % 4:
+            raise fail("field 'unknown' absent bytes must be a positive multiple of 4")
         if (np.diff(np.frombuffer(absent, "<u4").astype(np.int64)) <= 0).any():
             raise fail("field 'unknown' absent must hold strictly ascending uint32 hashes")
+    elif absent is not None:
+        try:
+            decode_fingerprints(absent)
+        except ValueError as e:
+            raise fail(f"field 'unknown' {e}") from None
     outliers = field.get("outliers")
     if outliers is not None:
         if (not isinstance(outliers, dict) or set(outliers) != OUTLIER_KEYS or not isinstance(outliers["filter"], bytes)

@@ -55,8 +55,9 @@ device's; the device's own rounding never enters (only its argmax is used).
      only what the DEVICE computed (its label), never this box. n = 0: never certified.
      By token (optional `buckets` / `absent`): a token's own text decides which rows it can stand for.
      A pruned row's token IS the token's text, so it hashes (FNV-1a) to the same bucket; its row lies in
-     that bucket's envelope [l_j, h_j]. A listed absent hash is no float token's, so a `skip` float
-     model left that token out (an empty slot). With an outlier filter (`outliers`), the buckets bound only
+     that bucket's envelope [l_j, h_j]. A listed absent fingerprint (top bits of the hash) is no float
+     token's, so a token that has it, listed or not, was no float token: a `skip` float model left it out
+     (an empty slot). With an outlier filter (`outliers`), the buckets bound only
      the rows inside the per-coordinate tails; every row beyond them has its token's hash in the filter, so a
      token the filter does not hold is no such row, and one it holds (or a false positive) takes the one
      envelope, which bounds every row. Per coordinate, the lowest mean with k tokens taken
@@ -80,6 +81,7 @@ This module's own float64 arithmetic is covered by γ64 terms, INFLATE and 2⁻�
 from __future__ import annotations
 
 from collections.abc import Sequence
+import dataclasses
 from dataclasses import dataclass
 
 import numpy as np
@@ -88,6 +90,7 @@ from .bundle import Bundle
 from .encode import Encoder
 from .errors import BundleError
 from .forward import encode_batch
+from .fingerprints import decode_fingerprints, fingerprint
 
 U = 2.0**-24  # unit roundoff of float32, round to nearest (IEEE 754 binary32: 24-bit significand)
 HALF_STEP = 0.5 + 2.0**-16  # radius of int8 rounding in steps: 1/2, plus ≥ 128u for fl(x/s) (see module doc)
@@ -265,7 +268,10 @@ class Envelope:
     hi: np.ndarray  # (W,) float64: per-coordinate maximum, plus the reserve
     buckets: np.ndarray | None = None  # (K, 2, W) float64: lo and hi of the rows whose token hashes to bucket j
     # (`slots_of`); lo = +inf, hi = -inf for a bucket no row hashes to. None: one envelope for every token
-    absent: frozenset = frozenset()  # FNV-1a hashes of tokens the float model never knew (no float token has one)
+    # (N,) ascending fingerprints (the top `absent_bits` bits of FNV-1a) of tokens the float model never knew; no
+    # float token has one of them
+    absent: np.ndarray = dataclasses.field(default_factory=lambda: np.zeros(0, np.uint64))
+    absent_bits: int = 32
     outliers: OutlierFilter | None = None  # tokens of the rows outside the buckets (which then hold the core only)
 
     @property
@@ -276,7 +282,7 @@ class Envelope:
     @property
     def by_token(self) -> bool:
         """True when the token's text narrows what it did (hash buckets or the list of absent tokens)."""
-        return self.buckets is not None or bool(self.absent)
+        return self.buckets is not None or bool(self.absent.size)
 
     @property
     def slots(self) -> np.ndarray:
@@ -333,13 +339,10 @@ class Envelope:
         slots = (h % np.uint32(k)).astype(np.int64) if k else np.zeros(h.shape, dtype=np.int64)  # (N,)
         if self.outliers is not None:
             slots[self.outliers.holds(h)] = k
-        if self.absent:
-            listed = self.__dict__.get("_absent_sorted")
-            if listed is None:
-                listed = np.array(sorted(self.absent), dtype=np.uint32)
-                object.__setattr__(self, "_absent_sorted", listed)
-            at = np.minimum(np.searchsorted(listed, h), listed.size - 1)  # (N,)
-            slots[listed[at] == h] = k + 1  # the empty slot
+        if self.absent.size:
+            f = fingerprint(h, self.absent_bits)  # (N,)
+            at = np.minimum(np.searchsorted(self.absent, f), self.absent.size - 1)  # (N,)
+            slots[self.absent[at] == f] = k + 1  # the empty slot
         return slots
 
 
@@ -396,13 +399,23 @@ def read_envelope(bundle: Bundle) -> Envelope | None:
     if field is None:
         return None
     lo, hi = np.asarray(field["lo"], np.float64), np.asarray(field["hi"], np.float64)  # (W,)
-    absent = np.frombuffer(field.get("absent", b""), dtype="<u4")  # (N,)
+    absent, absent_bits = read_absent(field.get("absent"))
     outliers = field.get("outliers")
     if outliers is not None:
         bits = np.unpackbits(np.frombuffer(outliers["filter"], np.uint8), bitorder="little").astype(bool)  # (M,)
         outliers = OutlierFilter(bits, int(outliers["probes"]))
     return Envelope(int(field["rows"]), bool(field["skipped"]), lo, hi, read_buckets(field, lo, hi),
-                    frozenset(absent.tolist()), outliers)
+                    absent, absent_bits, outliers)
+
+
+def read_absent(absent: bytes | dict | None) -> tuple[np.ndarray, int]:
+    """The field's `absent` list -> ((N,) ascending uint64 fingerprints, their bits): the Elias–Fano map
+    (runtime/fingerprints.py), or plain little-endian uint32 hashes as packers before it wrote them."""
+    if absent is None:
+        return np.zeros(0, np.uint64), 32
+    if isinstance(absent, bytes):
+        return np.frombuffer(absent, dtype="<u4").astype(np.uint64), 32
+    return decode_fingerprints(absent), int(absent["bits"])
 
 
 def read_buckets(field: dict, lo: np.ndarray, hi: np.ndarray) -> np.ndarray | None:

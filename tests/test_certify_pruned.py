@@ -29,6 +29,7 @@ from danpack.pack.build import PackOptions, pack_model
 from danpack.runtime.bundle import Bundle, decode_bundle
 from danpack.runtime.classifier import Classifier
 from danpack.runtime.forward import Layer, forward_logits, mean_embedding
+from danpack.runtime.fingerprints import decode_fingerprints, fingerprint
 from tests.test_bound import random_model
 
 SHIPPED = Path(__file__).resolve().parents[1] / "models_demo" / "shipped"
@@ -456,12 +457,19 @@ def test_absent_list_has_teeth(tmp_path, monkeypatch):
     assert containment_violation(model, bundle, texts) <= 0.0
     honest = certify.read_envelope
     pruned = [t for t in model.vocab if t not in set(bundle.vocab)]
-    monkeypatch.setattr(certify, "read_envelope", lambda b: replace(
-        honest(b), absent=honest(b).absent | {certify.hash_token(t) for t in pruned}))
+    def listing_pruned(b):
+        env = honest(b)
+        pruned_prints = fingerprint(np.array([certify.hash_token(t) for t in pruned], np.uint32), env.absent_bits)
+        return replace(env, absent=np.union1d(env.absent, pruned_prints))
+
+    monkeypatch.setattr(certify, "read_envelope", listing_pruned)
     assert containment_violation(model, bundle, texts) > 0.0
     monkeypatch.undo()
     field = unknown_envelope(model, np.arange(12), False, (("w40", 5), ("zzz", 3)), EnvelopeOptions())
-    assert np.frombuffer(field["absent"], "<u4").tolist() == [certify.hash_token("zzz")]  # w40 is a float token
+    bits = EnvelopeOptions().fingerprint_bits(len(model.vocab))
+    assert field["absent"]["bits"] == bits == 12  # ⌈log2(32 × 80)⌉
+    zzz = fingerprint(np.array([certify.hash_token("zzz")], np.uint32), bits)
+    assert decode_fingerprints(field["absent"]).tolist() == zzz.tolist()  # w40 is a float token
 
 
 def test_absent_list_needs_a_skipping_float_model(tmp_path):

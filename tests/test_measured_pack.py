@@ -162,3 +162,33 @@ def test_envelope_index_equals_the_envelope_of_each_cut(unk, folded):
     for keep in (0, 1, 700, 1023, 1024, 1025, 2048, 2499, 2500, *at):
         assert index.envelope(keep) == unknown_envelope(model, order[:keep], folded), keep
     assert at and "outliers" in index.envelope(at[0])  # the outlier filter's rows follow the cut too
+
+
+def test_held_out_tokens_join_the_absent_list_once_measured(tmp_path):
+    """Tokens the float model never knew that only the held-out slice holds are listed in the written bundle (they
+    measured the candidates first); under --max-bytes, whose fit was measured without them, they are not."""
+    from danpack.runtime.certify import hash_token, read_envelope
+    from danpack.runtime.fingerprints import fingerprint
+
+    model_dir = make_model(tmp_path, vocab_size=150, dim=12, hidden=(6,), oov="skip", seed=3)
+    texts = zipf_texts([token(i) for i in range(150)], 1200, seed=4)
+    novel = [(f"{token(i % 150)} {token((7 * i) % 150)} novel{i}", f"novel{i}") for i in range(600)]
+    held = [word for text, word in novel if is_heldout(text)]
+    chosen = [word for text, word in novel if not is_heldout(text)]
+    corpus = make_corpus(tmp_path, texts + [text for text, _ in novel])
+    bits = 13  # ⌈log2(32 × 150)⌉
+
+    def listed(options: PackOptions) -> set[int]:
+        bundle = decode_bundle(pack_model(model_dir, None, options).data)
+        assert len(bundle.vocab) < 140  # rows left out: the list matters
+        return set(read_envelope(bundle).absent.tolist())
+
+    def prints(words: list[str]) -> set[int]:  # less those a float token has (never listed)
+        found = set(fingerprint(np.array([hash_token(w) for w in words], np.uint32), bits).tolist())
+        return found - set(fingerprint(np.array([hash_token(token(i)) for i in range(150)], np.uint32), bits).tolist())
+
+    assert len(held) > 50 and len(chosen) > 300
+    measured = listed(PackOptions(corpora=(str(corpus),), top=100))
+    assert prints(chosen) <= measured and prints(held) <= measured
+    capped = listed(PackOptions(corpora=(str(corpus),), max_bytes=5_000))
+    assert prints(chosen) <= capped and not (prints(held) - prints(chosen)) & capped

@@ -496,6 +496,56 @@ def test_label_edge_code_points_match_safe_text(native_lib, relabel):
         _same_verdict(native_lib, relabel([*problem, "payment", "cable"][:3]))
 
 
+# --- the absent list's fingerprint set: the C reader refuses what runtime/fingerprints.py refuses --------------------
+
+@st.composite
+def absent_fields(draw):
+    """A valid fingerprint set (runtime/fingerprints.py), then perhaps one damage to it."""
+    from danpack.runtime.fingerprints import encode_fingerprints
+
+    bits = draw(st.integers(1, 32))
+    values = sorted(draw(st.sets(st.integers(0, 2**bits - 1), min_size=1, max_size=40)))
+    field = encode_fingerprints(np.array(values, np.uint64), bits)
+    part = draw(st.sampled_from(["none", "low", "high", "count", "bits", "append", "drop"]))
+    if part in ("low", "high") and field[part]:
+        raw = bytearray(field[part])
+        raw[draw(st.integers(0, len(raw) - 1))] ^= 1 << draw(st.integers(0, 7))
+        field[part] = bytes(raw)
+    elif part in ("count", "bits"):
+        field[part] += draw(st.sampled_from([-1, 1]))
+    elif part in ("append", "drop"):
+        key = draw(st.sampled_from(["low", "high"]))
+        field[key] = field[key] + b"\x00" if part == "append" else field[key][:-1]
+    return field, values if part == "none" else None
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(case=absent_fields())
+def test_fingerprint_sets_are_judged_by_c_as_by_python(native_lib, bundles, case):
+    """Random valid sets and single damages to them, in a bundle: the C reader accepts exactly what the Python
+    reader accepts, and refuses the rest with the same message."""
+    import msgpack
+
+    from danpack.pack.bundle import encode_bundle
+    from danpack.runtime.bundle import decode_bundle
+    from danpack.runtime.certify import read_envelope
+    from danpack.runtime.errors import BundleError
+
+    field, values = case
+    body = msgpack.unpackb(msgpack.unpackb(bundles[0].read_bytes(), raw=False)["payload"], raw=False)
+    body["manifest"]["unknown"] = {**body["manifest"]["unknown"], "skipped": True, "absent": field}
+    data = encode_bundle(msgpack.packb(body, use_bin_type=True))
+    try:
+        python = None
+        bundle = decode_bundle(data, "labels")
+    except BundleError as e:
+        python = str(e)
+    native = _c_load_error(native_lib, data)
+    assert python == native, (field, python, native)
+    if values is not None:
+        assert python is None and read_envelope(bundle).absent.tolist() == values
+
+
 # --- the golden kit (packer/golden) run on the C program -------------------------------------------------------------
 
 @pytest.fixture(scope="module")

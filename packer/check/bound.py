@@ -168,7 +168,8 @@ def _describe_envelope(bundle: Bundle) -> dict | None:
     buckets = env.buckets[np.isfinite(env.buckets[:, 0]).all(axis=1)] if env.buckets is not None else None
     return {"rows": env.rows, "skipped": env.skipped,
             "mean_width": float((env.hi - env.lo).mean()) if env.rows else 0.0,
-            "buckets": env.hash_buckets, "absent_tokens": len(env.absent),
+            "buckets": env.hash_buckets, "absent_tokens": int(env.absent.size),
+            "absent_bits": env.absent_bits,
             "bucket_mean_width": float((buckets[:, 1] - buckets[:, 0]).mean()) if buckets is not None and
             buckets.size else None,
             "outlier_filter_bytes": env.outliers.bits.size // 8 if env.outliers is not None else 0}
@@ -201,7 +202,8 @@ def _envelope_line(env: dict | None) -> str:
                if env.get("bucket_mean_width") is not None else "")
             + (f" over the rows inside the tails; a {env['outlier_filter_bytes']:,}-byte filter sends the tokens of "
                "the rows beyond them to the one envelope" if env.get("outlier_filter_bytes") else "")
-            + (f"; {env['absent_tokens']:,} listed tokens the float model never knew" if env.get("absent_tokens") else "")
+            + (f"; {env['absent_tokens']:,} listed {env['absent_bits']}-bit fingerprints of tokens the float model "
+               "never knew" if env.get("absent_tokens") else "")
             + "); texts holding them are certified per text")
 
 

@@ -43,7 +43,8 @@ def pack_command(
     measure: bool = typer.Option(True, "--measure/--no-measure", help="Hold out about 1 in 7 corpus texts and choose by measurement (the default); --no-measure: rank on every text and use the fixed rules (coverage 0.995, policy unk when the model has one, else skip)."),
     token_sample: Optional[Path] = typer.Option(None, metavar="FILE", help="JSONL of {text, tokens|ids} from your own pipeline; danpack must reproduce every record before packing."),
     envelope_buckets: int = typer.Option(16, metavar="N", help="Split the envelope of what a token the bundle does not know may have done into N hash buckets (2 x table width bytes each; 0: one envelope); see the README's bound section."),
-    absent_min_count: int = typer.Option(2, metavar="N", help="List (4 bytes each) the corpus tokens the float model never knew that occur at least N times, so texts holding them can be certified; 0: no list."),
+    absent_min_count: int = typer.Option(1, metavar="N", help="List the corpus tokens the float model never knew that occur at least N times (the 8,192 most frequent, as short hash fingerprints, under 2 bytes each), so texts holding them can be certified; 0: no list."),
+    absent_spread: int = typer.Option(32, metavar="N", help="Fingerprint values per float token in that list: fingerprints get ceil(log2(N x float rows)) bits, at most 32 (larger N: fewer corpus tokens lost to a float token's fingerprint, about 1 in N, and about one bit more per listed token for each doubling)."),
     outlier_tail: float = typer.Option(0.0001, metavar="SHARE", help="Set apart the float rows beyond this quantile at either end of any table coordinate (the few that widen the envelope most): the buckets then bound the other rows, and a filter of the set-apart rows' tokens sends those tokens to the one envelope; 0: no filter."),
     outlier_bits: int = typer.Option(5, metavar="N", help="Filter bits per set-apart row (more bits: fewer tokens wrongly sent to the one envelope, about 0.6^N of them)."),
     json_out: bool = typer.Option(False, "--json", help="Print the summary as JSON on stdout."),
@@ -89,6 +90,7 @@ def pack_command(
                               keep_words=_read_keep_words(keep_words), pruned=pruned, fold=fold, rank=rank,
                               measure=measure, envelope=EnvelopeOptions(buckets=envelope_buckets,
                                                                         absent_min_count=absent_min_count,
+                                                                        absent_spread=absent_spread,
                                                                         outlier_tail=outlier_tail,
                                                                         outlier_bits=outlier_bits))
         steps = Steps(5 + (bool(corpus) and measure) + (max_bytes is not None and not (corpus and measure)),

@@ -31,7 +31,7 @@ from danpack.pack.quantize import quantize_rows
 from danpack.textfile import iter_records
 from danpack.pack.choose import Searcher
 from danpack.pack.heldout import Candidate, Estimator, HeldOut, Measure, split_heldout
-from danpack.pack.vocab import VocabOptions, VocabPlan, plan_vocab, pruned_mean_row, row_effects
+from danpack.pack.vocab import VocabOptions, VocabPlan, count_absent, plan_vocab, pruned_mean_row, row_effects
 
 PRUNED_POLICIES = ("skip", "unk", "rest")
 RANKINGS = ("frequency", "effect")
@@ -386,6 +386,8 @@ def pack_model(model_dir: str | os.PathLike, out: str | os.PathLike | None, opti
                 plan = _fit_budget(model, plan, options.max_bytes, fold_mode, options.quantize,
                                    lambda p: prep.build(p, policy, fold_mode))
     measured = None if chosen is None else measured_record(chosen, choice, plan, len(heldout_texts))
+    if heldout_texts and options.max_bytes is None:  # measured without them; the bundle lists their tokens too
+        plan = count_absent(plan, model.vocab, Tokenizer(model.tokenizer), heldout_texts)
     with steps.step("quantising, folding and exporting the graph"):
         data, breakdown, folded, rows, width = prep.build(plan, policy, fold_mode, measured)
     with steps.step("verifying the bundle with the runtime reader"):

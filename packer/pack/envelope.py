@@ -10,15 +10,16 @@ nothing else (runtime/certify.py, `mean_box`). Costs 2 × width floats in the ma
 Two optional parts let the device narrow it by the token's text (FNV-1a of its UTF-8 bytes, `hash_token`):
   * `buckets`: the same envelope per hash bucket (rows grouped by their token's hash mod K), as uint8 steps
     inward from the one envelope, rounded outward: 2 × K × width bytes;
-  * `absent`: hashes of deployment-corpus tokens the float model never knew (a `skip` float model left them
-    out), dropping any hash a float token shares: 4 bytes each.
+  * `absent`: fingerprints (top bits of the hash) of deployment-corpus tokens the float model never knew (a
+    `skip` float model left them out), dropping any fingerprint a float token shares, as an Elias–Fano set
+    (runtime/fingerprints.py): about 2 + bits − log2 N bits each.
   * `outliers`: a Bloom filter over the tokens of the few rows that set the envelope's extremes (outside the
     per-coordinate `outlier_tail` quantiles of the float table): the buckets then hold the other rows only (the
     core), and a token the filter holds takes the one envelope. A false positive only widens a token's envelope.
 Each is sound by construction: every float row the device may meet under a token is inside that token's
-envelope, and a listed hash is no float token's. Together they never take more bytes than keeping the left-out
-rows would (`parts_budget`): past that, keeping the rows is both smaller and exact. Measured in the README's
-bound section.
+envelope, and a listed fingerprint is no float token's. Together they never take more bytes than keeping the
+left-out rows would (`parts_budget`): past that, keeping the rows is both smaller and exact. Measured in the
+README's bound section.
 """
 
 from __future__ import annotations
@@ -28,11 +29,13 @@ import math
 from dataclasses import dataclass
 from functools import lru_cache
 
+import msgpack
 import numpy as np
 
 from danpack.model import FloatModel
 from danpack.runtime.errors import DanpackError
 from danpack.runtime.certify import build_filter, decode_buckets, gamma, gamma64, hash_token
+from danpack.runtime.fingerprints import encode_fingerprints, fingerprint
 
 CHUNK_ROWS = 65536  # float rows per block: bounds the (rows, width) float64 temporaries
 OUTLIER_ROWS = 8192  # float rows per block when looking for the outliers (the mask is needed before the envelope)
@@ -43,8 +46,10 @@ class EnvelopeOptions:
     """How finely the `unknown` envelope tells tokens apart (README, "The guaranteed drift bound", measured)."""
 
     buckets: int = 16  # hash buckets (0: one envelope); 2 × width bytes each
-    absent_min_count: int = 2  # list corpus tokens the float model never knew seen this often (0: no list)
-    absent_max: int = 8192  # at most this many listed, most frequent first; 4 bytes each
+    absent_min_count: int = 1  # list corpus tokens the float model never knew seen this often (0: no list)
+    absent_max: int = 8192  # at most this many listed, most frequent first (about 14 kB at GloVe's 24 bits)
+    absent_spread: int = 32  # fingerprint values per float token: bits = ⌈log2(spread × V)⌉ (at most 32), so
+    # about 1 in `spread` corpus tokens shares a float token's fingerprint and cannot be listed
     outlier_tail: float = 0.0001  # rows beyond this quantile at either end of any coordinate leave the buckets (0: none)
     outlier_bits: int = 5  # filter bits per such row (false positives about 0.6^bits)
 
@@ -53,6 +58,8 @@ class EnvelopeOptions:
                             ("absent-max", self.absent_max), ("outlier-bits", self.outlier_bits)):
             if value < 0:
                 raise DanpackError(f"{name} {value} must be 0 or more (0 turns that part of the envelope off)")
+        if self.absent_spread < 1:
+            raise DanpackError(f"absent-spread {self.absent_spread} must be 1 or more (fingerprint values per float token)")
         if not 0.0 <= self.outlier_tail < 0.5:
             raise DanpackError(f"outlier-tail {self.outlier_tail} must be from 0 (no outlier filter) to below 0.5")
 
@@ -65,6 +72,10 @@ class EnvelopeOptions:
     def bucket_count(self) -> int:
         """K: the buckets asked for, at least one when outliers are set apart (the core then needs its own)."""
         return max(self.buckets, 1) if self.filtering else self.buckets
+
+    def fingerprint_bits(self, vocab: int) -> int:
+        """Bits of an absent-list fingerprint for a float model of `vocab` tokens."""
+        return min(max((self.absent_spread * vocab - 1).bit_length(), 1), 32)
 
     @property
     def probes(self) -> int:
@@ -137,15 +148,28 @@ def encode_buckets(lo: np.ndarray, hi: np.ndarray, bucket_lo: np.ndarray, bucket
     return steps.tobytes()
 
 
-def _absent_hashes(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> np.ndarray:
-    """(N,) uint32 hashes of the corpus tokens the float model never knew, most frequent first, none a float
+def _absent_fingerprints(model: FloatModel, absent: Sequence[tuple[str, int]], options: EnvelopeOptions) -> np.ndarray:
+    """(N,) uint64 fingerprints of the corpus tokens the float model never knew, most frequent first, none a float
     token's, each once."""
     if model.oov_policy != "skip" or not options.absent_min_count or not options.absent_max:
-        return np.zeros(0, np.uint32)  # an unk float model gave such a token its unknown row: nothing to gain
-    taken = np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count], dtype=np.uint32)
-    taken = taken[~np.isin(taken, _token_hashes(tuple(model.vocab)))]
+        return np.zeros(0, np.uint64)  # an unk float model gave such a token its unknown row: nothing to gain
+    bits = options.fingerprint_bits(len(model.vocab))
+    taken = fingerprint(np.array([hash_token(t) for t, c in absent if c >= options.absent_min_count], np.uint32), bits)
+    taken = taken[~np.isin(taken, fingerprint(_token_hashes(tuple(model.vocab)), bits))]
     _, first = np.unique(taken, return_index=True)
     return taken[np.sort(first)][: options.absent_max]
+
+
+def _fit_absent(ranked: np.ndarray, bits: int, budget: int) -> dict | None:
+    """The `absent` set of the most frequent fingerprints whose encoding fits `budget` bytes (None: not one)."""
+    def fits(n: int) -> bool:
+        return len(msgpack.packb(encode_fingerprints(np.sort(ranked[:n]), bits))) <= budget
+
+    lo, hi = 0, int(ranked.size)  # the largest n that fits lies in lo..hi (the size grows with n)
+    while lo < hi:
+        mid = (lo + hi + 1) // 2
+        lo, hi = (mid, hi) if fits(mid) else (lo, mid - 1)
+    return encode_fingerprints(np.sort(ranked[:lo]), bits) if lo else None
 
 
 def _width(model: FloatModel, folded: bool) -> int:
@@ -215,7 +239,7 @@ def _finish(model: FloatModel, folded: bool, rows: int, groups: np.ndarray, outl
             ranked: np.ndarray, budget: int, options: EnvelopeOptions) -> dict:
     """The manifest field from the group bounds (`_group_bounds`) and the left-out outlier rows' hashes, within
     `budget` bytes, parts in the order they measured most per byte: the buckets, the outlier filter (then the buckets
-    hold the core only), the most frequent absent hashes. The unknown row joins every bucket."""
+    hold the core only), the most frequent absent fingerprints. The unknown row joins every bucket."""
     field = _field(rows, groups[0, 0], groups[0, 1], model)
     k = options.bucket_count
     outlier_hashes = np.unique(outlier_hashes)  # a hash once (the unknown row may be listed twice, tokens may collide)
@@ -234,17 +258,17 @@ def _finish(model: FloatModel, folded: bool, rows: int, groups: np.ndarray, outl
             field["outliers"] = {"filter": build_filter(outlier_hashes, filter_bytes, options.probes),
                                  "probes": options.probes}
             budget -= filter_bytes
-    listed = np.sort(ranked[: max(budget, 0) // 4]) if rows else ranked[:0]
-    if listed.size:
-        field["absent"] = listed.astype("<u4").tobytes()
+    listed = _fit_absent(ranked, options.fingerprint_bits(len(model.vocab)), budget) if rows else None
+    if listed is not None:
+        field["absent"] = listed
     return field
 
 
 def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: Sequence[tuple[str, int]] = (),
                      options: EnvelopeOptions = EnvelopeOptions()) -> dict:
     """The manifest field for the kept float rows: {"rows": P, "skipped": bool, "lo": [W floats], "hi": [W floats]},
-    plus "buckets" (bytes), "outliers" ({filter, probes}) and "absent" (bytes) as `options` ask; `absent`: (token,
-    corpus count) pairs of tokens the float model does not know, most frequent first."""
+    plus "buckets" (bytes), "outliers" ({filter, probes}) and "absent" (a fingerprint set) as `options` ask;
+    `absent`: (token, corpus count) pairs of tokens the float model does not know, most frequent first."""
     left = np.ones(len(model.vocab), dtype=bool)  # (V,)
     left[np.asarray(kept, dtype=np.int64)] = False
     if model.oov_policy == "unk":  # a word the float model does not know takes its unknown row
@@ -260,7 +284,7 @@ def unknown_envelope(model: FloatModel, kept: np.ndarray, folded: bool, absent: 
         groups = _merge(groups, _group_bounds(part, row_lo, row_hi, hashes, outlier, k))
     budget = parts_budget(model, width, rows.size, int(_token_bytes(tuple(model.vocab))[rows].sum()))
     return _finish(model, folded, rows.size, groups, _outlier_hashes(hashes, outlier, rows),
-                   _absent_hashes(model, absent, options), budget, options)
+                   _absent_fingerprints(model, absent, options), budget, options)
 
 
 class EnvelopeIndex:
@@ -275,7 +299,7 @@ class EnvelopeIndex:
                  options: EnvelopeOptions = EnvelopeOptions()) -> None:
         self.model, self.order, self.folded, self.options = model, np.asarray(order, np.int64), folded, options
         width, n, k = _width(model, folded), len(self.order), options.bucket_count
-        self.ranked, self.width = _absent_hashes(model, absent, options), width
+        self.ranked, self.width = _absent_fingerprints(model, absent, options), width
         token_bytes = _token_bytes(tuple(model.vocab))
         self.suffix_bytes = np.append(np.cumsum(token_bytes[self.order][::-1])[::-1], 0)  # (n + 1,): order[i:]
         self.hashes = _token_hashes(tuple(model.vocab)) if k else None

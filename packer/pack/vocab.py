@@ -9,8 +9,8 @@ never produce are dropped and reported; keep-words are always kept when known.
 from __future__ import annotations
 
 from collections import Counter
-from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from collections.abc import Container, Iterable, Sequence
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -57,8 +57,6 @@ class VocabPlan:
 
     def with_keep(self, keep: int) -> "VocabPlan":
         """The same ranking with a different cut (never below the forced rows)."""
-        from dataclasses import replace
-
         return replace(self, keep=max(self.forced, min(keep, len(self.ranked_rows))))
 
 
@@ -75,6 +73,19 @@ def count_tokens(tokenizer: Tokenizer, texts: Iterable[str]) -> tuple[Counter, i
         counts.update(tokenizer.tokenize(text))
         n += 1
     return counts, n
+
+
+def absent_tokens(counter: Counter, known: Container[str]) -> tuple[tuple[str, int], ...]:
+    """The counted tokens the float model does not know, with their counts, most frequent first (then by token)."""
+    return tuple(sorted(((t, c) for t, c in counter.items() if t not in known), key=lambda x: (-x[1], x[0])))
+
+
+def count_absent(plan: VocabPlan, vocab: Sequence[str], tokenizer: Tokenizer, texts: Iterable[str]) -> VocabPlan:
+    """The plan whose list of tokens the float model does not know also counts `texts` (the held-out slice, once
+    it has measured the candidates: the bundle may list its tokens too)."""
+    counter, _ = count_tokens(tokenizer, texts)
+    counter.update(dict(plan.absent))
+    return replace(plan, absent=absent_tokens(counter, set(vocab)))
 
 
 def plan_vocab(
@@ -98,8 +109,7 @@ def plan_vocab(
             if row is not None:
                 freq[row] = c
     known_tokens = int(freq.sum())
-    absent = tuple(sorted(((t, c) for t, c in counter.items() if t not in index), key=lambda x: (-x[1], x[0]))
-                   ) if corpus is not None else ()
+    absent = absent_tokens(counter, index) if corpus is not None else ()
 
     # keep-words as the tokenizer would see them ("Not" -> "not"); those the model lacks, or has only on
     # rows no text can reach, are reported in the user's spelling, never invented

@@ -434,9 +434,43 @@ static int check_probe(const char *src, const dp_mp *probe, size_t rows, size_t 
     return 0;
 }
 
+static int bit_at(const uint8_t *p, uint64_t j) { return p[j / 8] >> (j % 8) & 1; }
+
+/* The Elias-Fano fingerprint set of the `absent` list (runtime/fingerprints.py decode_fingerprints): 0 when it is
+ * the one encoding of `count` strictly ascending values below 2^bits, 1 for a wrong shape, 2 for wrong values.
+ * Reads only the bytes present: count is bounded by the bits of `high` before anything is decoded. */
+static int check_fingerprints(const dp_mp *f) {
+    static const char *keys[4] = {"bits", "count", "low", "high"};
+    if (!dp_mp_keys_are(f, keys, 4)) return 1;
+    const dp_mp *bits = dp_mp_get(f, "bits"), *count = dp_mp_get(f, "count");
+    const dp_mp *low = dp_mp_get(f, "low"), *high = dp_mp_get(f, "high");
+    if (!is_count(bits) || !is_count(count) || low->type != MP_BIN || high->type != MP_BIN) return 1;
+    if (bits->i < 1 || bits->i > 32 || count->i < 1 || (uint64_t)count->i > 8 * (uint64_t)high->len ||
+        (uint64_t)count->i > (uint64_t)1 << bits->i)
+        return 1;
+    uint64_t n = (uint64_t)count->i, b = (uint64_t)bits->i, ceil_log2 = 0;
+    while (((uint64_t)1 << ceil_log2) < n) ceil_log2++;
+    uint64_t s = b > ceil_log2 ? b - ceil_log2 : 0; /* split: low bits per value */
+    if (low->len != (n * s + 7) / 8 || high->p[high->len - 1] == 0) return 2;
+    for (uint64_t j = n * s; j < 8 * (uint64_t)low->len; j++)
+        if (bit_at(low->p, j)) return 2;
+    uint64_t seen = 0, prev = 0;
+    for (uint64_t j = 0; j < 8 * (uint64_t)high->len; j++) {
+        if (!bit_at(high->p, j)) continue;
+        if (seen == n || (j - seen) >> (b - s)) return 2; /* one bit too many, or a value at or past 2^bits */
+        uint64_t v = (j - seen) << s;
+        for (uint64_t t = 0; t < s; t++) v |= (uint64_t)bit_at(low->p, seen * s + t) << t;
+        if (seen && v <= prev) return 2;
+        prev = v;
+        seen++;
+    }
+    return seen == n ? 0 : 2;
+}
+
 /* The optional envelope of the rows the bundle leaves out (runtime/bundle.py _check_unknown); absent in older bundles.
  * Optional parts: buckets ((K, 2, width) uint8 steps: a bucket all 255, or each coordinate's two steps summing to at
- * most 254), absent (strictly ascending little-endian uint32 hashes, only where skipped is true) and outliers
+ * most 254), absent (a fingerprint set, check_fingerprints, or strictly ascending little-endian uint32 hashes as
+ * older packers wrote; only where skipped is true) and outliers
  * ({filter: non-empty bytes, probes: 1..16}, only with buckets). */
 static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error *err) {
     if (!f || f->type == MP_NIL) return 0;
@@ -477,10 +511,11 @@ static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error
                                         "lo + hi steps <= 254", src), -1;
         }
     }
-    if (absent) {
-        if (absent->type != MP_BIN || absent->len == 0 || absent->len % 4 || !skipped->i)
-            return dp_fail(err, "%s: manifest field 'unknown' absent must be bytes, a positive multiple of 4, and only "
-                                "where skipped is true", src), -1;
+    if (absent && !skipped->i)
+        return dp_fail(err, "%s: manifest field 'unknown' absent is allowed only where skipped is true", src), -1;
+    if (absent && absent->type == MP_BIN) { /* packers before the fingerprint set wrote plain uint32 hashes */
+        if (absent->len == 0 || absent->len % 4)
+            return dp_fail(err, "%s: manifest field 'unknown' absent bytes must be a positive multiple of 4", src), -1;
         uint32_t prev = 0;
         for (size_t i = 0; i < absent->len / 4; i++) {
             const uint8_t *q = absent->p + 4 * i;
@@ -490,6 +525,15 @@ static int check_unknown(const char *src, const dp_mp *f, size_t width, dp_error
                                src), -1;
             prev = h;
         }
+    } else if (absent) {
+        int bad = check_fingerprints(absent);
+        if (bad == 1)
+            return dp_fail(err, "%s: manifest field 'unknown' absent must be a map with bits (1 to 32), count (1 to "
+                                "2^bits, at most 8 per byte of high), low and high (bytes)", src), -1;
+        if (bad == 2)
+            return dp_fail(err, "%s: manifest field 'unknown' absent does not decode to count strictly ascending "
+                                "fingerprints below 2^bits (low: count x split bits, zero-padded; high: one set bit "
+                                "per fingerprint, ending in its last byte)", src), -1;
     }
     if (outliers) {
         static const char *filter_keys[2] = {"filter", "probes"};

@@ -438,6 +438,21 @@ CASES: list[tuple[str, str, object]] = [
      lambda b: with_body(b, edit_value(("manifest", "unknown", "buckets"), bytes([200] * 12)))),
     ("unknown_absent_unsorted.bundle", "absent-token hashes out of order",
      lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"), np.array([2, 1], "<u4").tobytes()))),
+    ("unknown_absent_count_past_high.bundle", "a fingerprint set claiming 100 values in one byte of high bits",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"),
+                                       {"bits": 16, "count": 100, "low": bytes(112), "high": b"\x01"}))),
+    ("unknown_absent_repeated.bundle", "a fingerprint set holding the value 5 twice",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"),  # split 7: low 5, 5; high parts 0, 0
+                                       {"bits": 8, "count": 2, "low": bytes([0x85, 0x02]), "high": b"\x03"}))),
+    ("unknown_absent_spare_byte.bundle", "a fingerprint set whose high bits end in a spare zero byte",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"),
+                                       {"bits": 8, "count": 1, "low": b"\x05", "high": b"\x01\x00"}))),
+    ("unknown_absent_padding_set.bundle", "a fingerprint set with a padding bit set after its low bits",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"),  # split 7: values 5, 6 take bits 0-13; bit 14 is padding
+                                       {"bits": 8, "count": 2, "low": bytes([0x05, 0x43]), "high": b"\x03"}))),
+    ("unknown_absent_past_bits.bundle", "a 4-bit fingerprint set holding the value 21",
+     lambda b: with_body(b, edit_value(("manifest", "unknown", "absent"),  # split 4: low 5, high part 1
+                                       {"bits": 4, "count": 1, "low": b"\x05", "high": b"\x02"}))),
     ("unknown_outliers_without_buckets.bundle", "an outlier filter with no buckets for the other rows",
      lambda b: with_body(b, lambda d: d["manifest"]["unknown"].update(
          {"outliers": {"filter": bytes(8), "probes": 3}}) or d["manifest"]["unknown"].pop("buckets", None))),
