@@ -53,9 +53,11 @@ def decode_fingerprints(field: object) -> np.ndarray:
         raise ValueError(SHAPE_MESSAGE)
     bits, n, low, high = field["bits"], field["count"], field["low"], field["high"]
     s = split_of(bits, n)
+    if high[-1] == 0 or len(low) != -(-n * s // 8):  # lengths first: nothing unpacked beyond what they allow
+        raise ValueError(VALUE_MESSAGE)
     set_bits = np.flatnonzero(np.unpackbits(np.frombuffer(high, np.uint8), bitorder="little"))  # (≤ 8·len,)
     stream = np.unpackbits(np.frombuffer(low, np.uint8), bitorder="little")  # (8·len,)
-    if set_bits.size != n or high[-1] == 0 or len(low) != -(-n * s // 8) or stream[n * s:].any():
+    if set_bits.size != n or stream[n * s:].any():
         raise ValueError(VALUE_MESSAGE)
     highs = (set_bits - np.arange(n)).astype(np.uint64)  # (N,) v >> s, nondecreasing
     if (highs >> np.uint64(bits - s)).any():  # a value at or past 2^bits
