@@ -40,12 +40,6 @@ def envelope_bytes(bundle) -> int:
     return 0 if field is None else len(msgpack.packb("unknown")) + len(msgpack.packb(field))
 
 
-def absent_count(field: dict) -> int:
-    """Tokens the `unknown` field lists as never known to the float model (a fingerprint set, or older plain hashes)."""
-    absent = field.get("absent")
-    return 0 if absent is None else len(absent) // 4 if isinstance(absent, bytes) else int(absent["count"])
-
-
 def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[str], timing: bool,
             fixed_rules: bool = False) -> None:
     from danpack.check.bound import certify_texts
@@ -81,10 +75,12 @@ def measure(name: str, model_dir: Path, task: str, work: Path, envelopes: list[s
         before = certify.certify_margins(logits, certify.logit_bounds(certify.drift_bound(bundle), ids, counts))
         before &= unknown == 0
         field = bundle.manifest.get("unknown") or {}
+        envelope = certify.read_envelope(bundle)
+        listed = 0 if envelope is None else envelope.absent.size  # the runtime's own reading of the list
         print(f"## {name} [buckets {options.buckets}, absent min count {options.absent_min_count}, outlier tail "
-              f"{options.outlier_tail}, {options.outlier_bits} bits]: "
+              f"{options.outlier_tail}, {options.outlier_bits} bits, spread {options.absent_spread}]: "
               f"{bundle.size:,} bytes, {len(bundle.vocab):,} rows, envelope {envelope_bytes(bundle):,} bytes "
-              f"({envelope_bytes(bundle) / bundle.size:.2%}; {absent_count(field):,} absent tokens, outlier filter {len((field.get('outliers') or {}).get('filter', b'')):,} B); "
+              f"({envelope_bytes(bundle) / bundle.size:.2%}; {listed:,} absent tokens, outlier filter {len((field.get('outliers') or {}).get('filter', b'')):,} B); "
               f"before {before.mean():.2%}, certified {report.share:.2%} of {report.texts:,} "
               f"(all kept {float(report.certified[report.covered].mean()):.2%}, with unknown tokens "
               f"{report.share_of_uncovered or 0.0:.2%}); certified with another label than the float original: "
